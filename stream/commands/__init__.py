@@ -1,0 +1,1 @@
+"""One module per ``ranktide`` subcommand (see :mod:`stream.cli`)."""
