@@ -160,7 +160,9 @@ def save_npz(path: str | os.PathLike, arrays: Mapping[str, np.ndarray]) -> None:
     fsync_dir(p.parent)
 
 
-def load_npz(path: str | os.PathLike, *, error: type[Exception] = ModelError) -> dict[str, np.ndarray]:
+def load_npz(
+    path: str | os.PathLike, *, error: type[Exception] = ModelError
+) -> dict[str, np.ndarray]:
     """Load every array of an ``.npz`` file without pickle.
 
     Raises ``error`` (a ranktide error) with a one-line message when the file
@@ -169,6 +171,10 @@ def load_npz(path: str | os.PathLike, *, error: type[Exception] = ModelError) ->
     p = Path(path)
     if not p.is_file():
         raise error(f"{p}: file not found")
+    with open(p, "rb") as fh:
+        magic = fh.read(4)
+    if magic[:2] != b"PK":
+        raise error(f"{p}: not a readable .npz file (no zip header); re-create it")
     try:
         with np.load(p, allow_pickle=False) as z:
             return {k: z[k] for k in z.files}
