@@ -1,0 +1,334 @@
+"""The solver-style pass: every per-pass figure from one read of the data.
+
+For a model ``W = U diag(s) V^T`` with intercept ``b``, one pass computes
+(DESIGN §2 and §7 step 1), with ``R = w * dloss/dz / sum(w)`` the ``n x k``
+weighted residual and ``G = X^T R`` the gradient of ``f``:
+
+* ``f(W, b)``, the weighted mean loss, and ``grad_b f = 1^T R``;
+* ``G [V, Omega]`` (d x (r+p)) and ``G^T Psi`` (k x p') — the two products of
+  the two-sided subspace iteration — and ``G^T U`` (k x r);
+* ``<G, W> = sum_j s_j u_j^T G v_j``;
+* optionally the dense ``G`` (when the memory planner says it fits) and the
+  cached projections ``X [U, Psi]`` of every block.
+
+Blocks work with raw weights; the combine only sums, and the division by the
+total weight comes after the last block, so nothing needs the total in
+advance. ``R`` never exists beyond one block.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .errors import ConfigError, InputError, ModelError
+from .losses import check_loss_source, get_loss
+from .memsource import as_source
+from .passes import PassProfile, phase, run_pass
+
+__all__ = ["PassRequest", "PassResult", "Projection", "gradient_pass",
+           "block_products_numpy"]
+
+
+def _mat(name: str, a: Any, ndim: int) -> np.ndarray:
+    arr = np.ascontiguousarray(a, dtype=np.float64)
+    if arr.ndim != ndim:
+        raise ConfigError(f"pass request: {name} must be {ndim}-D, got shape {arr.shape}")
+    if not np.all(np.isfinite(arr)):
+        raise ModelError(f"pass request: {name} has a non-finite entry; the model is damaged")
+    return arr
+
+
+@dataclass(frozen=True)
+class PassRequest:
+    """What a gradient pass computes, at which model.
+
+    Parameters
+    ----------
+    loss : {"softmax", "squared", "multilabel"}
+    U : (d, r) array
+        Left factor (orthonormal columns).
+    s : (r,) array
+        Singular values (``>= 0``).
+    V : (k, r) array
+        Right factor (orthonormal columns).
+    b : (k,) array
+        Intercept.
+    Omega : (k, p) array, optional
+        Power block for ``G Omega`` (p = 0 when omitted).
+    Psi : (d, p') array, optional
+        Expansion block for ``G^T Psi`` and the cached ``X Psi`` (p' = 0
+        when omitted).
+    class_weights : (k,) array, optional
+        See :mod:`stream.losses`.
+    keep_projections : bool
+        Keep ``X [U, Psi]`` of every block (with its targets and weights).
+    dense_gradient : bool
+        Also accumulate the dense ``G`` (d x k).
+
+    All arrays are stored as C-contiguous float64.
+    """
+
+    loss: str
+    U: np.ndarray
+    s: np.ndarray
+    V: np.ndarray
+    b: np.ndarray
+    Omega: np.ndarray | None = None
+    Psi: np.ndarray | None = None
+    class_weights: np.ndarray | None = None
+    keep_projections: bool = False
+    dense_gradient: bool = False
+
+    def __post_init__(self) -> None:
+        get_loss(self.loss)
+        U, s, V, b = (_mat("U", self.U, 2), _mat("s", self.s, 1),
+                      _mat("V", self.V, 2), _mat("b", self.b, 1))
+        d, r = U.shape
+        k = b.shape[0]
+        Om = np.zeros((k, 0)) if self.Omega is None else _mat("Omega", self.Omega, 2)
+        Ps = np.zeros((d, 0)) if self.Psi is None else _mat("Psi", self.Psi, 2)
+        if s.shape != (r,) or V.shape != (k, r):
+            raise ConfigError(f"pass request: U {U.shape}, s {s.shape}, V {V.shape} and "
+                              f"b {b.shape} disagree; expect U (d, r), s (r,), V (k, r), b (k,)")
+        if Om.shape[0] != k or Ps.shape[0] != d:
+            raise ConfigError(f"pass request: Omega {Om.shape} needs {k} rows and Psi "
+                              f"{Ps.shape} needs {d} rows")
+        cw = None
+        if self.class_weights is not None:
+            cw = _mat("class_weights", self.class_weights, 1)
+            if cw.shape != (k,) or np.any(cw < 0):
+                raise ConfigError(f"pass request: class_weights must be {k} values >= 0")
+        for name, val in (("U", U), ("s", s), ("V", V), ("b", b), ("Omega", Om),
+                          ("Psi", Ps), ("class_weights", cw)):
+            object.__setattr__(self, name, val)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """``(d, k)`` of the weight matrix."""
+        return (self.U.shape[0], self.b.shape[0])
+
+    @property
+    def rank(self) -> int:
+        return int(self.U.shape[1])
+
+
+@dataclass(frozen=True)
+class Projection:
+    """Cached projections of one block: ``XQ = X[start:stop] @ [U, Psi]``.
+
+    ``XQ`` is float64 ``(stop - start, r + p')``; ``targets`` and ``weights``
+    are the block's own (raw weights, float32 or None).
+    """
+
+    start: int
+    stop: int
+    XQ: np.ndarray
+    targets: Any
+    weights: np.ndarray | None
+
+
+@dataclass(frozen=True)
+class PassResult:
+    """The figures of one gradient pass (all divided by ``weight_total``).
+
+    Attributes
+    ----------
+    n_rows : int
+    weight_total : float
+        ``sum_i w_i`` (softmax with class weights: ``sum_i w_i c_{y_i}``).
+    loss : float
+        ``f(W, b)``, the weighted mean loss.
+    grad_b : (k,) array
+    G_VO : (d, r + p) array
+        ``G [V, Omega]``; :attr:`GV` and :attr:`GOmega` are its two parts.
+    Gt_Psi : (k, p') array
+    Gt_U : (k, r) array
+    inner : float
+        ``<G, W>``.
+    G : (d, k) array or None
+    projections : list of Projection or None
+    profile : PassProfile or None
+    """
+
+    n_rows: int
+    weight_total: float
+    loss: float
+    grad_b: np.ndarray
+    G_VO: np.ndarray
+    Gt_Psi: np.ndarray
+    Gt_U: np.ndarray
+    inner: float
+    G: np.ndarray | None = None
+    projections: list[Projection] | None = None
+    profile: PassProfile | None = field(default=None, repr=False)
+
+    @property
+    def GV(self) -> np.ndarray:
+        """``G V`` (d x r)."""
+        return self.G_VO[:, : self.Gt_U.shape[1]]
+
+    @property
+    def GOmega(self) -> np.ndarray:
+        """``G Omega`` (d x p)."""
+        return self.G_VO[:, self.Gt_U.shape[1]:]
+
+
+# ---------------------------------------------------------------------------
+# per block
+# ---------------------------------------------------------------------------
+@dataclass
+class _Partial:
+    """Raw-weighted sums of one or more consecutive blocks."""
+
+    rows: int
+    weight: float
+    loss: float
+    grad_b: np.ndarray
+    G_VO: np.ndarray
+    Gt_Psi: np.ndarray
+    Gt_U: np.ndarray
+    G: np.ndarray | None
+    projections: list[Projection] | None
+
+
+@dataclass(frozen=True)
+class _State:
+    loss: str
+    U: np.ndarray
+    s: np.ndarray
+    V: np.ndarray
+    b: np.ndarray
+    UPsi: np.ndarray  # (d, r + p')
+    VO: np.ndarray  # (k, r + p)
+    class_weights: np.ndarray | None
+    keep_projections: bool
+    dense_gradient: bool
+
+
+def _state(req: PassRequest) -> _State:
+    return _State(
+        loss=req.loss, U=req.U, s=req.s, V=req.V, b=req.b,
+        UPsi=np.ascontiguousarray(np.hstack([req.U, req.Psi])),
+        VO=np.ascontiguousarray(np.hstack([req.V, req.Omega])),
+        class_weights=req.class_weights, keep_projections=req.keep_projections,
+        dense_gradient=req.dense_gradient,
+    )
+
+
+def block_products_numpy(block: Any, st: _State) -> _Partial:
+    """Block function written with scipy.sparse and numpy (reference / fallback).
+
+    Computes, for the block's rows with raw weights ``w``: ``XQ = X [U, Psi]``,
+    the scores ``Z = XQ_U diag(s) V^T + b``, the raw residual ``R = w *
+    dloss/dz``, and the sums ``1^T R``, ``X^T (R [V, Omega])``,
+    ``R^T X Psi``, ``R^T X U`` (and ``X^T R`` when asked).
+    """
+    X = block.X
+    r = st.U.shape[1]
+    with phase("project"):
+        XQ = np.asarray(X @ st.UPsi, dtype=np.float64)
+    with phase("scores"):
+        Z = (XQ[:, :r] * st.s) @ st.V.T + st.b
+    with phase("loss"):
+        loss, wsum, R = get_loss(st.loss).value_residual(
+            Z, block.targets, block.weights, class_weights=st.class_weights)
+    with phase("products"):
+        grad_b = R.sum(axis=0)
+        G_VO = np.asarray(X.T @ (R @ st.VO), dtype=np.float64)
+        Gt_Psi = R.T @ XQ[:, r:]
+        Gt_U = R.T @ XQ[:, :r]
+        G = np.asarray(X.T @ R, dtype=np.float64) if st.dense_gradient else None
+    proj = None
+    if st.keep_projections:
+        proj = [Projection(start=int(block.start), stop=int(block.stop), XQ=XQ,
+                           targets=block.targets, weights=block.weights)]
+    return _Partial(rows=int(block.stop - block.start), weight=wsum, loss=loss, grad_b=grad_b,
+                    G_VO=G_VO, Gt_Psi=Gt_Psi, Gt_U=Gt_U, G=G, projections=proj)
+
+
+def _combine(parts: list[_Partial]) -> _Partial:
+    """Sum partials in order; accumulates into the first (the engine owns it)."""
+    acc = parts[0]
+    for p in parts[1:]:
+        acc.rows += p.rows
+        acc.weight += p.weight
+        acc.loss += p.loss
+        acc.grad_b += p.grad_b
+        acc.G_VO += p.G_VO
+        acc.Gt_Psi += p.Gt_Psi
+        acc.Gt_U += p.Gt_U
+        if acc.G is not None:
+            acc.G += p.G
+        if acc.projections is not None:
+            acc.projections.extend(p.projections)
+    return acc
+
+
+def _finalize(acc: _Partial, st: _State, profile: PassProfile | None, where: str) -> PassResult:
+    if not acc.weight > 0:
+        raise InputError(f"{where}: every row has weight 0; give some rows a positive weight")
+    inv = 1.0 / acc.weight
+    Gt_U = acc.Gt_U * inv
+    inner = float(np.einsum("j,kj,kj->", st.s, st.V, Gt_U))
+    return PassResult(
+        n_rows=acc.rows, weight_total=acc.weight, loss=acc.loss * inv, grad_b=acc.grad_b * inv,
+        G_VO=acc.G_VO * inv, Gt_Psi=acc.Gt_Psi * inv, Gt_U=Gt_U, inner=inner,
+        G=None if acc.G is None else acc.G * inv, projections=acc.projections, profile=profile,
+    )
+
+
+def _block_fn():
+    return block_products_numpy
+
+
+def gradient_pass(
+    source: Any,
+    request: PassRequest,
+    *,
+    backend: str = "serial",
+    block_rows: int | None = None,
+    block_bytes: int | None = None,
+    n_threads: int | None = None,
+    profile: PassProfile | bool | None = None,
+    progress: bool = False,
+) -> PassResult:
+    """One pass over ``source`` at the model of ``request``.
+
+    Parameters
+    ----------
+    source : Store, path, scipy CSR tuple ``(X, targets[, weights])`` or source
+    request : PassRequest
+    backend, block_rows, block_bytes, n_threads, progress
+        As in :func:`stream.passes.run_pass`.
+    profile : PassProfile or bool, optional
+        A profile to append this pass's timings to, or True for a new one.
+
+    Returns
+    -------
+    PassResult
+    """
+    opened = isinstance(source, (str, os.PathLike))
+    src = as_source(source)
+    try:
+        where = getattr(src, "path", None) or "in-memory source"
+        check_loss_source(request.loss, src)
+        n, d = src.shape
+        if request.shape != (d, src.n_outputs):
+            raise ModelError(
+                f"{where}: has {d} features and {src.n_outputs} outputs but the model is "
+                f"{request.shape[0]} x {request.shape[1]}; use a model trained on this data")
+        if n == 0:
+            raise InputError(f"{where}: has no rows")
+        prof = PassProfile() if profile is True else (profile or None)
+        st = _state(request)
+        acc = run_pass(src, _block_fn(), _combine, state=st, backend=backend,
+                       block_rows=block_rows, block_bytes=block_bytes, n_threads=n_threads,
+                       profile=prof, progress=progress, desc="gradient pass")
+        return _finalize(acc, st, prof, where)
+    finally:
+        if opened:
+            src.close()
