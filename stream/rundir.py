@@ -24,14 +24,16 @@ from pathlib import Path
 from typing import Any
 
 from .atomic import atomic_write_bytes, atomic_write_json, fsync_dir
-from .checkpoint import CheckpointManager, canonical_json
+from .checkpoint import CheckpointManager, CheckpointSchedule, canonical_json
 from .errors import CheckpointError, ConfigError, OutputExistsError
+from .signals import StopFlag
 
 __all__ = [
     "RUN_FORMAT",
     "RUN_VERSION",
     "RESUME_MUTABLE",
     "RunDir",
+    "RunRecorder",
     "check_resume_compatible",
     "check_format_version",
 ]
@@ -308,3 +310,86 @@ class RunDir:
         kept = self.read_history()[: max(0, int(n_records))]
         data = "".join(canonical_json(r) + "\n" for r in kept).encode()
         atomic_write_bytes(self.history_path, data)
+
+
+class RunRecorder:
+    """The trainer's per-pass hook: history, checkpoints on cadence, stop requests.
+
+    Parameters
+    ----------
+    run : RunDir
+        Where to record.
+    schedule : CheckpointSchedule
+        When a checkpoint is due (by seconds and/or passes).
+    stop : StopFlag or None
+        Checked after every pass; when set, a checkpoint is written and
+        :meth:`after_pass` returns True (stop now).
+
+    Notes
+    -----
+    A checkpoint's metadata is ``{"solver": <state meta>, "history_len": n,
+    "settings": <run settings>, **extra}``: ``history_len`` lets a resumed run
+    drop the history lines logged after the checkpoint, ``settings`` lets
+    resume detect a ``config.json`` edited by hand.
+    """
+
+    def __init__(
+        self,
+        run: RunDir,
+        *,
+        schedule: CheckpointSchedule,
+        stop: StopFlag | None = None,
+    ) -> None:
+        self.run = run
+        self.schedule = schedule
+        self.stop = stop
+        self.history_len = len(run.read_history())
+        self.checkpoints_written = 0
+        self.last_checkpoint: Path | None = None
+
+    @property
+    def checkpoint_seconds(self) -> float:
+        """Seconds spent writing checkpoints by this recorder's manager."""
+        return self.run.checkpoints.total_save_seconds
+
+    def record(self, entry: Mapping[str, Any]) -> None:
+        """Append one history line (one per pass)."""
+        self.run.append_history(entry)
+        self.history_len += 1
+
+    def checkpoint(self, state: Any, **extra: Any) -> Path:
+        """Write a checkpoint of ``state`` (anything with ``to_checkpoint()``) now."""
+        arrays, meta = state.to_checkpoint()
+        doc = dict(extra, solver=meta, history_len=self.history_len, settings=self.run.settings)
+        path = self.run.checkpoints.save(arrays, doc)
+        self.schedule.reset()
+        self.checkpoints_written += 1
+        self.last_checkpoint = path
+        return path
+
+    def after_pass(
+        self,
+        state: Any,
+        entry: Mapping[str, Any] | None = None,
+        *,
+        step_done: bool = False,
+        **extra: Any,
+    ) -> bool:
+        """Record a finished pass; checkpoint when due; True when the run must stop.
+
+        Parameters
+        ----------
+        state : object with ``to_checkpoint() -> (arrays, meta)``
+            The solver state after the pass.
+        entry : mapping, optional
+            The pass's history record.
+        step_done : bool
+            The pass ended a regularization-path step (always checkpointed).
+        """
+        if entry is not None:
+            self.record(entry)
+        due = self.schedule.tick()
+        stopping = bool(self.stop)
+        if due or step_done or stopping:
+            self.checkpoint(state, **extra)
+        return stopping

@@ -403,3 +403,41 @@ def test_stop_flag_request():
     flag.request(signal.SIGTERM)
     flag.request(signal.SIGINT)  # the first reason is kept
     assert flag.signal_name == "SIGTERM" and flag.exit_code == 143
+
+
+# ---------------------------------------------------------------- recorder
+class _FakeState:
+    def __init__(self):
+        self.passes = 0
+
+    def to_checkpoint(self):
+        return {"x": np.full(3, float(self.passes))}, {"passes": self.passes}
+
+
+def test_recorder_cadence_step_end_and_stop(tmp_path):
+    from stream.rundir import RunRecorder
+
+    run = _run(tmp_path)
+    now = [0.0]
+    sched = CheckpointSchedule(seconds=60.0, passes=None, clock=lambda: now[0])
+    stop = StopFlag()
+    rec = RunRecorder(run, schedule=sched, stop=stop)
+    state = _FakeState()
+    written = []
+    for i in range(1, 7):
+        state.passes = i
+        now[0] += 25.0  # 25 s per pass: a checkpoint every third pass (75 s >= 60 s)
+        if i == 4:
+            stop.request(signal.SIGTERM)
+        stopping = rec.after_pass(state, {"pass": i}, step_done=(i == 2))
+        if rec.last_checkpoint is not None and rec.last_checkpoint not in written:
+            written.append(rec.last_checkpoint)
+        if stopping:
+            break
+    # pass 2 ends a path step, 3 is not due yet (25 s after pass 2), 4 is the stop
+    assert i == 4 and rec.checkpoints_written == 2 and len(written) == 2
+    arrays, meta, _p = run.checkpoints.load_latest()
+    assert meta["solver"] == {"passes": 4} and meta["history_len"] == 4
+    assert meta["settings"] == run.settings
+    np.testing.assert_array_equal(arrays["x"], np.full(3, 4.0))
+    assert [r["pass"] for r in run.read_history()] == [1, 2, 3, 4]
