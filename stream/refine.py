@@ -1,0 +1,476 @@
+"""Refinement of the model on cached projections ``X Q``.
+
+Given an orthonormal basis ``Q`` (d x q) and the cached dense projections
+``A = X Q`` (n x q), the solver re-optimizes
+
+    min over N (q x k), b (k):  f(A N + 1 b^T) + lam * ||N||_*
+
+which equals the full objective at ``W = Q N`` because ``||Q N||_* = ||N||_*``.
+Nothing here touches the sparse data.
+
+Method (chosen after measuring, see :func:`refine`): accelerated proximal
+gradient (FISTA, Beck & Teboulle 2009) with singular value thresholding as the
+prox of the trace norm (Cai, Candes & Shen 2010), function-value restart
+(O'Donoghue & Candes 2015) and backtracking on the step (started from, and
+capped by, a proven Lipschitz bound). For the squared loss the intercept is
+eliminated in closed form and every step works on q x q / q x k sufficient
+statistics only.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+
+from .errors import ConfigError
+
+__all__ = ["RefineResult", "refine", "svt", "loss_and_residual"]
+
+_SLACK = 0.0
+_SHRINK = 1.25
+_LOSSES = ("softmax", "squared", "multilabel")
+# Curvature bound of each loss in the scores: the Hessian of logsumexp is
+# diag(p) - p p^T, whose largest eigenvalue is <= 1/2; sigmoid' <= 1/4;
+# the squared loss has Hessian I (standard bounds, e.g. Boehning 1992 for softmax).
+_CURVATURE = {"softmax": 0.5, "multilabel": 0.25, "squared": 1.0}
+
+
+@dataclass(frozen=True)
+class RefineResult:
+    """Outcome of :func:`refine`.
+
+    Attributes
+    ----------
+    N : ndarray, shape (q, k)
+        Coefficients in the basis ``Q`` (the prox output, exactly low-rank).
+    b : ndarray, shape (k,)
+        Intercept.
+    A : ndarray, shape (q, r)
+        Left singular vectors of ``N`` with positive singular values.
+    s : ndarray, shape (r,)
+        The positive singular values of ``N``, descending.
+    B : ndarray, shape (k, r)
+        Right singular vectors of ``N``.
+    objective : float
+        ``f + lam * ||N||_*`` at ``(N, b)``.
+    loss : float
+        The smooth part ``f`` at ``(N, b)``.
+    iterations : int
+        Proximal steps taken (accepted or rejected by restart).
+    converged : bool
+        Whether the inner certificate reached ``tol``.
+    gap_estimate : float
+        Relative inner gap estimate at the last check (conditional-gradient bound).
+    grad_b_norm : float
+        Infinity norm of the intercept gradient at the last check.
+    evaluations : int
+        Dense ``n x q x k`` products spent (0 for the squared loss).
+    """
+
+    N: np.ndarray
+    b: np.ndarray
+    A: np.ndarray
+    s: np.ndarray
+    B: np.ndarray
+    objective: float
+    loss: float
+    iterations: int
+    converged: bool
+    gap_estimate: float
+    grad_b_norm: float
+    evaluations: int
+
+
+# ---------------------------------------------------------------- helpers
+
+
+def svt(M: np.ndarray, thresh: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Singular value thresholding: the prox of ``thresh * ||.||_*``.
+
+    Parameters
+    ----------
+    M : ndarray, shape (q, k)
+    thresh : float
+        Non-negative threshold.
+
+    Returns
+    -------
+    A : ndarray, shape (q, r)
+    s : ndarray, shape (r,)
+        ``max(sigma - thresh, 0)`` restricted to the positive ones.
+    B : ndarray, shape (k, r)
+        So that the prox is ``A @ diag(s) @ B.T`` (Cai, Candes & Shen 2010).
+    """
+    if M.size == 0:
+        return np.zeros((M.shape[0], 0)), np.zeros(0), np.zeros((M.shape[1], 0))
+    u, sig, vt = np.linalg.svd(M, full_matrices=False)
+    shrunk = sig - thresh
+    keep = shrunk > 0.0
+    return u[:, keep], shrunk[keep], vt[keep].T
+
+
+def _as_array(parts, name: str):
+    if parts is None:
+        return None
+    if isinstance(parts, (list, tuple)):
+        if len(parts) == 0:
+            raise ConfigError(f"refine: {name} is an empty list; pass at least one block")
+        if any(p is None for p in parts):
+            if all(p is None for p in parts):
+                return None
+            raise ConfigError(
+                f"refine: {name} mixes blocks with and without values; give all or none"
+            )
+        if sp.issparse(parts[0]):
+            return sp.vstack(parts, format="csr")
+        return np.concatenate([np.asarray(p) for p in parts], axis=0)
+    return parts
+
+
+def _dense_targets(Y, n: int, k: int, loss: str) -> np.ndarray:
+    """Targets as the array the loss needs: int64 (n,) or float64 (n, k)."""
+    if loss == "softmax":
+        y = np.asarray(Y).reshape(-1)
+        if y.shape[0] != n:
+            raise ConfigError(f"refine: {y.shape[0]} class ids for {n} rows; give one per row")
+        if y.size and (y.min() < 0 or y.max() >= k):
+            raise ConfigError(
+                f"refine: class ids must lie in 0..{k - 1}; found {y.min()}..{y.max()}"
+            )
+        return y.astype(np.int64, copy=False)
+    if sp.issparse(Y):
+        Y = Y.toarray()
+    Y = np.asarray(Y, dtype=np.float64)
+    if Y.shape != (n, k):
+        raise ConfigError(f"refine: targets have shape {Y.shape}, expected ({n}, {k})")
+    return Y
+
+
+def loss_and_residual(
+    Z: np.ndarray,
+    Y: np.ndarray,
+    w: np.ndarray,
+    loss: str,
+    *,
+    want_residual: bool = True,
+) -> tuple[float, np.ndarray | None]:
+    """Weighted mean loss and residual of dense scores (vectorized numpy).
+
+    Parameters
+    ----------
+    Z : ndarray, shape (n, k)
+        Scores.
+    Y : ndarray, shape (n,) int (softmax) or (n, k) float (squared, multilabel)
+    w : ndarray, shape (n,)
+        Row weights already divided by their total (they sum to 1).
+    loss : {"softmax", "squared", "multilabel"}
+    want_residual : bool
+        Also return ``R = w_i * dloss/dz_i`` (n, k).
+
+    Returns
+    -------
+    f : float
+    R : ndarray, shape (n, k), or None
+    """
+    n = Z.shape[0]
+    if loss == "softmax":
+        m = Z.max(axis=1, keepdims=True)
+        E = np.exp(Z - m)
+        se = E.sum(axis=1, keepdims=True)
+        lse = m[:, 0] + np.log(se[:, 0])
+        zy = Z[np.arange(n), Y]
+        f = float(w @ (lse - zy))
+        if not want_residual:
+            return f, None
+        E /= se
+        E[np.arange(n), Y] -= 1.0
+        E *= w[:, None]
+        return f, E
+    if loss == "multilabel":
+        # log(1 + exp(z)) - y z, written stably as logaddexp(0, z)
+        f = float(w @ (np.logaddexp(0.0, Z) - Y * Z).sum(axis=1))
+        if not want_residual:
+            return f, None
+        R = 0.5 * (1.0 + np.tanh(0.5 * Z))  # sigmoid without overflow
+        R -= Y
+        R *= w[:, None]
+        return f, R
+    D = Z - Y
+    f = float(0.5 * (w @ (D * D).sum(axis=1)))
+    if not want_residual:
+        return f, None
+    D *= w[:, None]
+    return f, D
+
+
+def _certificate(GN: np.ndarray, N: np.ndarray, nuc: float, F: float, lam: float) -> float:
+    """Relative conditional-gradient gap bound of the subproblem (DESIGN section 2)."""
+    if GN.size == 0:
+        return 0.0
+    sigma1 = float(np.linalg.norm(GN, 2))
+    tau = F / lam
+    gap = float(np.sum(GN * N)) + lam * nuc + tau * max(0.0, sigma1 - lam)
+    return max(gap, 0.0) / max(abs(F), 1e-300)
+
+
+def _validate(A, N0, b0, lam, tol, max_iter, loss):
+    if loss not in _LOSSES:
+        raise ConfigError(f"refine: unknown loss {loss!r}; use one of {', '.join(_LOSSES)}")
+    if not np.isfinite(lam) or lam <= 0:
+        raise ConfigError(f"refine: lam must be a positive finite number, got {lam!r}")
+    if not (tol > 0):
+        raise ConfigError(f"refine: tol must be positive, got {tol!r}")
+    if int(max_iter) < 1:
+        raise ConfigError(f"refine: max_iter must be >= 1, got {max_iter!r}")
+    if A.ndim != 2 or N0.ndim != 2 or N0.shape[0] != A.shape[1] or b0.shape != (N0.shape[1],):
+        raise ConfigError(
+            f"refine: shapes disagree: XQ {A.shape}, N0 {N0.shape}, b0 {b0.shape}; "
+            "N0 must be (q, k) and b0 (k,)"
+        )
+
+
+# ---------------------------------------------------------------- main entry
+
+
+def refine(
+    XQ_blocks,
+    targets,
+    weights,
+    loss: str,
+    lam: float,
+    N0: np.ndarray,
+    b0: np.ndarray,
+    *,
+    tol: float,
+    max_iter: int,
+    class_weights: np.ndarray | None = None,
+    check_every: int = 5,
+) -> RefineResult:
+    """Solve the refinement ``min f(XQ N + b) + lam ||N||_*`` on cached projections.
+
+    Parameters
+    ----------
+    XQ_blocks : list of ndarray (n_b, q), or ndarray (n, q)
+        Cached projections ``X Q`` per row block (or already concatenated).
+    targets : list or array
+        Per block (or concatenated): int class ids (n_b,) for softmax, float
+        values (n_b, k) for squared, 0/1 tags (n_b, k; dense or CSR) for multilabel.
+    weights : list of ndarray (n_b,), ndarray (n,), or None
+        Raw row weights (None: all ones). They are normalized by their total.
+    loss : {"softmax", "squared", "multilabel"}
+    lam : float
+        Trace-norm penalty (> 0).
+    N0 : ndarray, shape (q, k)
+        Warm start (the current model expressed in ``Q``: ``[diag(s) V^T; 0]``).
+    b0 : ndarray, shape (k,)
+        Warm-start intercept.
+    tol : float
+        Relative inner tolerance on the subproblem's conditional-gradient gap
+        estimate; the solver ties it to the current outer gap.
+    max_iter : int
+        Maximum number of proximal steps.
+    class_weights : ndarray, shape (k,), optional
+        Softmax only: row ``i`` weighs ``w_i * class_weights[y_i]``.
+    check_every : int
+        Steps between two certificate checks (each costs one extra ``n q k`` product).
+
+    Returns
+    -------
+    RefineResult
+
+    Notes
+    -----
+    Choice of method: the objective is smooth + trace norm on a small q x k
+    variable, but each gradient costs about ``2 n q k`` flops while the prox
+    (an SVD of q x k) is negligible, so the method should need few gradients.
+    FISTA with restart needs O(sqrt(L/mu) log(1/eps)) of them on these
+    locally well-conditioned problems. The scores ``Z = A N + 1 b^T`` are cached
+    for the last two iterates, so the extrapolated point's scores are a linear
+    combination (no product), and each step costs one gradient product
+    ``A^T R`` plus one score product for the backtracking test, whose loss value
+    also drives the function-value restart. The step starts from the proven
+    curvature bound ``c * lambda_max([A, 1]^T diag(w) [A, 1]) / sum(w)``
+    (c = 1/2 softmax, 1/4 multilabel), is tried 1.25x longer each step and
+    halved on a failed sufficient-decrease test, never shorter than the bound.
+    Measured (n = 2000-5000, q = 12-20, k = 20-50, relative tol 1e-7): softmax
+    needs 2.3-3x fewer products than the fixed bound step, multilabel 1.2-1.7x
+    (the bound is loose once predictions are confident); growth factors 1.5 and
+    2 were no better. The sufficient-decrease test has no slack: a slack of
+    even 1e-14 |f| let the step grow past the curvature near the optimum and
+    the iterates wandered at the 1e-7 level, which stalls the certificate.
+    The squared loss eliminates ``b`` exactly
+    (``b = ybar - N^T abar``), then runs FISTA with the exact step
+    ``1 / lambda_max(C)`` on the statistics ``C = A^T W A - abar abar^T`` and
+    ``D = A^T W Y - abar ybar^T``: no ``n x k`` work per step.
+
+    Stopping: every ``check_every`` steps the subproblem's own gap bound
+    ``<G_N, N> + lam ||N||_* + (F / lam) max(0, ||G_N||_2 - lam)`` (relative to
+    F) must be <= ``tol`` and ``||grad_b||_inf <= tol`` (common practice, no
+    source, for the unpenalized intercept).
+
+    References
+    ----------
+    Beck & Teboulle (2009), A fast iterative shrinkage-thresholding algorithm.
+    Cai, Candes & Shen (2010), A singular value thresholding algorithm.
+    O'Donoghue & Candes (2015), Adaptive restart for accelerated gradient schemes.
+    """
+    A = np.ascontiguousarray(_as_array(XQ_blocks, "XQ_blocks"), dtype=np.float64)
+    N0 = np.array(N0, dtype=np.float64, ndmin=2)
+    b0 = np.array(b0, dtype=np.float64).reshape(-1)
+    _validate(A, N0, b0, lam, tol, max_iter, loss)
+    n, q = A.shape
+    k = N0.shape[1]
+    Y = _dense_targets(_as_array(targets, "targets"), n, k, loss)
+    wraw = _as_array(weights, "weights")
+    w = np.ones(n) if wraw is None else np.asarray(wraw, dtype=np.float64).reshape(-1)
+    if w.shape[0] != n:
+        raise ConfigError(f"refine: {w.shape[0]} weights for {n} rows; give one per row")
+    if class_weights is not None:
+        if loss != "softmax":
+            raise ConfigError("refine: class_weights apply to the softmax loss only; drop them")
+        w = w * np.asarray(class_weights, dtype=np.float64)[Y]
+    total = float(w.sum())
+    if not total > 0:
+        raise ConfigError("refine: the row weights sum to zero; give some rows positive weight")
+    w = w / total
+    if loss == "squared":
+        return _refine_squared(A, Y, w, lam, N0, b0, tol, int(max_iter), check_every)
+    return _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, int(max_iter), check_every)
+
+
+def _lipschitz_bound(A: np.ndarray, w: np.ndarray, curvature: float) -> float:
+    """``curvature * lambda_max([A, 1]^T diag(w) [A, 1])`` (w sums to 1)."""
+    q = A.shape[1]
+    M = np.empty((q + 1, q + 1))
+    Aw = A * w[:, None]
+    M[:q, :q] = A.T @ Aw
+    M[:q, q] = M[q, :q] = Aw.sum(axis=0)
+    M[q, q] = 1.0
+    return curvature * float(np.linalg.eigvalsh(M)[-1]) * (1.0 + 1e-12)
+
+
+def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every) -> RefineResult:
+    L_max = _lipschitz_bound(A, w, _CURVATURE[loss])
+    L = L_max
+    # current iterate x, previous iterate, and their cached scores
+    Ux, sx, Bx = svt(N0, 0.0)
+    N_x, b_x = N0.copy(), b0.copy()
+    Z_x = A @ N_x
+    Z_x += b_x
+    f_x, _ = loss_and_residual(Z_x, Y, w, loss, want_residual=False)
+    nuc_x = float(sx.sum())
+    F_x = f_x + lam * nuc_x
+    N_p, b_p, Z_p = N_x, b_x, Z_x
+    t = 1.0
+    evals = 1
+    it = 0
+    gap_rel, gb = np.inf, np.inf
+    converged = False
+    while it < max_iter:
+        it += 1
+        t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
+        beta = (t - 1.0) / t_next
+        if beta > 0:
+            N_y = N_x + beta * (N_x - N_p)
+            b_y = b_x + beta * (b_x - b_p)
+            Z_y = Z_x + beta * (Z_x - Z_p)
+        else:
+            N_y, b_y, Z_y = N_x, b_x, Z_x
+        f_y, R = loss_and_residual(Z_y, Y, w, loss)
+        G_N = A.T @ R
+        g_b = R.sum(axis=0)
+        evals += 1
+        L = max(L / _SHRINK, 1e-12 * L_max)
+        while True:
+            Un, sn, Bn = svt(N_y - G_N / L, lam / L)
+            N_n = (Un * sn) @ Bn.T
+            b_n = b_y - g_b / L
+            Z_n = A @ N_n
+            Z_n += b_n
+            evals += 1
+            f_n, _ = loss_and_residual(Z_n, Y, w, loss, want_residual=False)
+            dN, db = N_n - N_y, b_n - b_y
+            model = f_y + np.sum(G_N * dN) + g_b @ db + 0.5 * L * (np.sum(dN * dN) + db @ db)
+            if f_n <= model + _SLACK * abs(f_y) or L >= L_max:
+                break
+            L = min(2.0 * L, L_max)
+        F_n = f_n + lam * float(sn.sum())
+        if F_n > F_x and beta > 0:
+            # function-value restart: drop momentum, retry from x (monotone step)
+            t = 1.0
+            N_p, b_p, Z_p = N_x, b_x, Z_x
+            continue
+        N_p, b_p, Z_p = N_x, b_x, Z_x
+        N_x, b_x, Z_x, f_x, F_x = N_n, b_n, Z_n, f_n, F_n
+        Ux, sx, Bx = Un, sn, Bn
+        t = t_next
+        if it % check_every == 0 or it >= max_iter:
+            _, R_x = loss_and_residual(Z_x, Y, w, loss)
+            evals += 1
+            gap_rel = _certificate(A.T @ R_x, N_x, float(sx.sum()), F_x, lam)
+            gb = float(np.abs(R_x.sum(axis=0)).max())
+            if gap_rel <= tol and gb <= tol:
+                converged = True
+                break
+    return RefineResult(
+        N=N_x, b=b_x, A=Ux, s=sx, B=Bx, objective=float(F_x), loss=float(f_x),
+        iterations=it, converged=converged, gap_estimate=float(gap_rel),
+        grad_b_norm=float(gb), evaluations=evals,
+    )
+
+
+def _refine_squared(A, Y, w, lam, N0, b0, tol, max_iter, check_every) -> RefineResult:
+    abar = A.T @ w
+    ybar = Y.T @ w
+    Aw = A * w[:, None]
+    C = A.T @ Aw - np.outer(abar, abar)
+    D = Aw.T @ Y - np.outer(abar, ybar)
+    c0 = float(w @ (Y * Y).sum(axis=1) - ybar @ ybar)
+    L = float(np.linalg.eigvalsh(C)[-1]) * (1.0 + 1e-12) if C.size else 1.0
+    L = max(L, 1e-300)
+
+    def smooth(N):
+        CN = C @ N
+        return 0.5 * (float(np.sum(N * CN)) - 2.0 * float(np.sum(N * D)) + c0), CN - D
+
+    Ux, sx, Bx = svt(N0, 0.0)
+    N_x = N0.copy()
+    f_x, _ = smooth(N_x)
+    F_x = f_x + lam * float(sx.sum())
+    N_p = N_x
+    t = 1.0
+    it = 0
+    gap_rel = np.inf
+    converged = False
+    while it < max_iter:
+        it += 1
+        t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
+        beta = (t - 1.0) / t_next
+        N_y = N_x + beta * (N_x - N_p) if beta > 0 else N_x
+        _, G = smooth(N_y)
+        Un, sn, Bn = svt(N_y - G / L, lam / L)
+        N_n = (Un * sn) @ Bn.T
+        f_n, G_n = smooth(N_n)
+        F_n = f_n + lam * float(sn.sum())
+        if F_n > F_x and beta > 0:
+            t = 1.0
+            N_p = N_x
+            continue
+        N_p, N_x, f_x, F_x, G_x = N_x, N_n, f_n, F_n, G_n
+        Ux, sx, Bx = Un, sn, Bn
+        t = t_next
+        if it % check_every == 0 or it >= max_iter:
+            gap_rel = _certificate(G_x, N_x, float(sx.sum()), F_x, lam)
+            if gap_rel <= tol:
+                converged = True
+                break
+    b = ybar - N_x.T @ abar
+    # intercept exact => grad_b = 0 up to rounding; recompute the loss exactly from data-free
+    # statistics (the trace form above equals the weighted mean squared loss at this b)
+    return RefineResult(
+        N=N_x, b=b, A=Ux, s=sx, B=Bx, objective=float(F_x), loss=float(f_x),
+        iterations=it, converged=converged, gap_estimate=float(gap_rel),
+        grad_b_norm=0.0, evaluations=0,
+    )
