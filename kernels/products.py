@@ -1,0 +1,342 @@
+"""Fused per-block products of the solver pass (DESIGN §7 step 1).
+
+For one CSR row block ``X`` (n_b x d) and the model ``W = U diag(s) V^T``,
+intercept ``b``, expansion block ``Psi`` (d x p') and power block ``Omega``
+(k x p), :func:`block_products` computes, in one sweep over ``X``::
+
+    XQ     = X [U, Psi]                       (n_b x (r + p'), returned: the cached projections)
+    scores = XQ[:, :r] diag(s) V^T + b        (n_b x k)
+    R      = w_i * dloss/dz_i                 (n_b x k, in place of the scores, block-local)
+
+and accumulates into a :class:`ProductBuffers` (all UNNORMALIZED: sums with
+the raw row weights; divide by ``weight_sum`` once all blocks are in)::
+
+    loss_sum   += sum_i w_i loss_i
+    weight_sum += sum_i w_i
+    grad_b     += 1^T R                                   (k,)
+    G_VO       += X^T (R [V, Omega])                      (d x (r + p))
+    Gt_Psi     += R^T (X Psi)                             (k x p')
+    Gt_U       += R^T (X U)                               (k x r)
+    gw         += sum_j s_j (X u_j)^T R v_j               (<G, W>)
+    G          += X^T R            (optional dense gradient, d x k)
+
+The sparse sweeps are the numba kernels of :mod:`kernels.sparse` and
+:mod:`kernels.losses`; the dense n_b x k products use numpy's BLAS. No Python
+loop runs over rows.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from stream.errors import ConfigError, InputError
+
+from . import losses as _losses
+from .sparse import csr_matmul_dense, csr_t_matmul_accumulate
+
+LOSSES = ("softmax", "squared", "multilabel")
+
+
+def _as_f64_2d(name: str, a: np.ndarray | None, rows: int, cols: int | None = None) -> np.ndarray:
+    if a is None:
+        return np.zeros((rows, 0 if cols is None else cols))
+    arr = np.asarray(a, dtype=np.float64)
+    if arr.ndim != 2 or arr.shape[0] != rows or (cols is not None and arr.shape[1] != cols):
+        want = f"({rows}, {'any' if cols is None else cols})"
+        raise ConfigError(f"block operands: {name} must have shape {want}, got {arr.shape}")
+    return arr
+
+
+@dataclass(frozen=True)
+class BlockOperands:
+    """Model-side operands of a pass, prepared once per pass.
+
+    Attributes
+    ----------
+    Q : (d, r + p') float64, C order
+        ``[U, Psi]``: one sweep over ``X`` gives both projections.
+    SVt : (r, k) float64
+        ``diag(s) V^T``.
+    VO : (k, r + p) float64
+        ``[V, Omega]``.
+    s : (r,) float64
+    V : (k, r) float64
+    b : (k,) float64
+    loss : str
+        ``"softmax"``, ``"squared"`` or ``"multilabel"``.
+    class_weights : (k,) float64 or None
+        Softmax only: folded into the row weights (``w_i * cw[y_i]``).
+    """
+
+    Q: np.ndarray
+    SVt: np.ndarray
+    VO: np.ndarray
+    s: np.ndarray
+    V: np.ndarray
+    b: np.ndarray
+    loss: str
+    class_weights: np.ndarray | None = None
+
+    @property
+    def d(self) -> int:
+        return self.Q.shape[0]
+
+    @property
+    def k(self) -> int:
+        return self.b.shape[0]
+
+    @property
+    def r(self) -> int:
+        return self.s.shape[0]
+
+    @property
+    def p_psi(self) -> int:
+        return self.Q.shape[1] - self.r
+
+    @property
+    def p_omega(self) -> int:
+        return self.VO.shape[1] - self.r
+
+
+def prepare_operands(
+    *,
+    U: np.ndarray | None,
+    s: np.ndarray | None,
+    V: np.ndarray | None,
+    b: np.ndarray,
+    loss: str,
+    Psi: np.ndarray | None = None,
+    Omega: np.ndarray | None = None,
+    class_weights: np.ndarray | None = None,
+    n_cols: int | None = None,
+) -> BlockOperands:
+    """Check and pack the model-side operands of a pass.
+
+    Parameters
+    ----------
+    U : (d, r) or None
+        Left factor (None or r = 0 for the zero model; then ``n_cols`` is needed).
+    s : (r,) or None
+    V : (k, r) or None
+    b : (k,)
+    loss : {"softmax", "squared", "multilabel"}
+    Psi : (d, p') or None
+    Omega : (k, p) or None
+    class_weights : (k,) or None
+    n_cols : int, optional
+        d, when neither U nor Psi gives it.
+
+    Returns
+    -------
+    BlockOperands
+    """
+    if loss not in LOSSES:
+        raise ConfigError(f"block operands: unknown loss {loss!r}; use one of {', '.join(LOSSES)}")
+    b = np.ascontiguousarray(b, dtype=np.float64)
+    if b.ndim != 1 or b.shape[0] < 1:
+        raise ConfigError(f"block operands: b must be a 1-D array of k >= 1 values, got {b.shape}")
+    k = b.shape[0]
+    if n_cols is None:
+        src = U if U is not None else Psi
+        if src is None:
+            raise ConfigError("block operands: give U, Psi or n_cols so that d is known")
+        n_cols = np.shape(src)[0]
+    d = int(n_cols)
+    U2 = _as_f64_2d("U", U, d)
+    r = U2.shape[1]
+    s1 = np.zeros(0) if s is None else np.asarray(s, dtype=np.float64).reshape(-1)
+    if s1.shape[0] != r:
+        raise ConfigError(f"block operands: s has {s1.shape[0]} values but U has {r} columns")
+    V2 = _as_f64_2d("V", V, k, r)
+    Psi2 = _as_f64_2d("Psi", Psi, d)
+    Om2 = _as_f64_2d("Omega", Omega, k)
+    cw = None
+    if class_weights is not None:
+        if loss != "softmax":
+            raise ConfigError("block operands: class weights apply to the softmax loss only")
+        cw = np.asarray(class_weights, dtype=np.float64)
+        if cw.shape != (k,):
+            raise ConfigError(f"block operands: class_weights must have {k} values")
+    return BlockOperands(
+        Q=np.ascontiguousarray(np.hstack([U2, Psi2])),
+        SVt=np.ascontiguousarray(s1[:, None] * V2.T),
+        VO=np.ascontiguousarray(np.hstack([V2, Om2])),
+        s=s1,
+        V=np.ascontiguousarray(V2),
+        b=b,
+        loss=loss,
+        class_weights=cw,
+    )
+
+
+@dataclass
+class ProductBuffers:
+    """Accumulators of one pass (unnormalized sums over the blocks seen).
+
+    Attributes
+    ----------
+    loss_sum : (1,) float64       sum_i w_i loss_i
+    weight_sum : (1,) float64     sum_i w_i
+    n_rows : (1,) int64           rows seen
+    grad_b : (k,) float64         1^T R
+    G_VO : (d, r + p) float64     X^T R [V, Omega]
+    Gt_Psi : (k, p') float64      R^T X Psi
+    Gt_U : (k, r) float64         R^T X U
+    gw : (1,) float64             sum_j s_j (X u_j)^T R v_j
+    G : (d, k) float64 or None    X^T R (only when asked for)
+    """
+
+    loss_sum: np.ndarray
+    weight_sum: np.ndarray
+    n_rows: np.ndarray
+    grad_b: np.ndarray
+    G_VO: np.ndarray
+    Gt_Psi: np.ndarray
+    Gt_U: np.ndarray
+    gw: np.ndarray
+    G: np.ndarray | None = field(default=None)
+
+    @classmethod
+    def zeros(cls, ops: BlockOperands, *, dense_G: bool = False) -> ProductBuffers:
+        """Zeroed buffers shaped for ``ops``."""
+        d, k, r = ops.d, ops.k, ops.r
+        return cls(
+            loss_sum=np.zeros(1),
+            weight_sum=np.zeros(1),
+            n_rows=np.zeros(1, dtype=np.int64),
+            grad_b=np.zeros(k),
+            G_VO=np.zeros((d, ops.VO.shape[1])),
+            Gt_Psi=np.zeros((k, ops.p_psi)),
+            Gt_U=np.zeros((k, r)),
+            gw=np.zeros(1),
+            G=np.zeros((d, k)) if dense_G else None,
+        )
+
+    def add(self, other: ProductBuffers) -> ProductBuffers:
+        """In place ``self += other`` (combine partials in block order)."""
+        for name in ("loss_sum", "weight_sum", "n_rows", "grad_b", "G_VO", "Gt_Psi", "Gt_U", "gw"):
+            getattr(self, name)[...] += getattr(other, name)
+        if self.G is not None and other.G is not None:
+            self.G += other.G
+        return self
+
+
+def _tags_arrays(targets) -> tuple[np.ndarray, np.ndarray]:
+    if isinstance(targets, tuple) and len(targets) == 2:
+        return targets[0], targets[1]
+    if hasattr(targets, "indptr") and hasattr(targets, "indices"):
+        return targets.indptr, targets.indices
+    raise InputError(
+        "block targets: tags must be a scipy CSR matrix or an (indptr, indices) pair"
+    )
+
+
+def _check_buffers(bufs: ProductBuffers, ops: BlockOperands) -> None:
+    want = {
+        "grad_b": (ops.k,),
+        "G_VO": (ops.d, ops.VO.shape[1]),
+        "Gt_Psi": (ops.k, ops.p_psi),
+        "Gt_U": (ops.k, ops.r),
+    }
+    for name, shape in want.items():
+        if getattr(bufs, name).shape != shape:
+            raise ConfigError(
+                f"product buffers: {name} has shape {getattr(bufs, name).shape}, the operands "
+                f"need {shape}; build them with ProductBuffers.zeros(ops)"
+            )
+
+
+def block_products(
+    X,
+    targets,
+    weights: np.ndarray | None,
+    ops: BlockOperands,
+    bufs: ProductBuffers,
+    *,
+    out_XQ: np.ndarray | None = None,
+    scratch: np.ndarray | None = None,
+    row_offset: int = 0,
+    where: str = "block",
+) -> np.ndarray:
+    """All per-block products of a solver pass; accumulates into ``bufs``.
+
+    Parameters
+    ----------
+    X : scipy.sparse CSR matrix (n_b, d)
+        The block (float32 or float64 data, int32 or int64 indices).
+    targets
+        softmax: (n_b,) int class ids; squared: (n_b, k) float values;
+        multilabel: scipy CSR (n_b, k) tag matrix or an ``(indptr, indices)`` pair.
+    weights : (n_b,) float or None
+        Raw row weights (None: all ones).
+    ops : BlockOperands
+        From :func:`prepare_operands`, once per pass.
+    bufs : ProductBuffers
+        Accumulators, from ``ProductBuffers.zeros(ops)``.
+    out_XQ : (n_b, r + p') float64, optional
+        Caller-owned output for the projections (allocated when None).
+    scratch : (>= n_b * k,) float64, optional
+        Reused memory for the block's scores/residual.
+    row_offset : int
+        Absolute row index of the block's first row (error messages).
+    where : str
+        Data source name (error messages).
+
+    Returns
+    -------
+    XQ : (n_b, r + p') float64
+        ``X [U, Psi]``; ``XQ[:, :r]`` is ``X U``, ``XQ[:, r:]`` is ``X Psi``.
+    """
+    _check_buffers(bufs, ops)
+    n, d = X.shape
+    if d != ops.d:
+        raise InputError(
+            f"{where}: block has {d} columns but the model has {ops.d}; "
+            "use the model trained on this store's features"
+        )
+    k, r, q = ops.k, ops.r, ops.Q.shape[1]
+    if out_XQ is None:
+        out_XQ = np.empty((n, q))
+    csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where)
+    if scratch is not None and scratch.dtype == np.float64 and scratch.size >= n * k:
+        S = scratch.reshape(-1)[: n * k].reshape(n, k)
+    else:
+        S = np.empty((n, k))
+    if r:
+        np.dot(out_XQ[:, :r], ops.SVt, out=S)
+        S += ops.b
+    else:
+        S[...] = ops.b
+
+    w = weights
+    if ops.class_weights is not None:
+        w = _losses.fold_class_weights(targets, ops.class_weights, weights,
+                                       row_offset=row_offset, where=where)
+    kw = {"row_offset": row_offset, "where": where}
+    if ops.loss == "softmax":
+        _losses.softmax_residual(S, targets, w, bufs.loss_sum, bufs.grad_b, **kw)
+    elif ops.loss == "squared":
+        _losses.squared_residual(S, targets, w, bufs.loss_sum, bufs.grad_b, **kw)
+    else:
+        tp, ti = _tags_arrays(targets)
+        _losses.multilabel_residual(S, tp, ti, w, bufs.loss_sum, bufs.grad_b, **kw)
+    R = S
+    bufs.weight_sum[0] += float(n) if w is None else float(np.sum(w, dtype=np.float64))
+    bufs.n_rows[0] += n
+    if n == 0:
+        return out_XQ
+
+    if ops.VO.shape[1]:
+        RVO = R @ ops.VO
+        csr_t_matmul_accumulate(X.indptr, X.indices, X.data, RVO, bufs.G_VO, where=where)
+    if q:
+        T = R.T @ out_XQ  # (k, q) = [R^T X U, R^T X Psi]
+        bufs.Gt_U += T[:, :r]
+        bufs.Gt_Psi += T[:, r:]
+        if r:
+            bufs.gw[0] += float(ops.s @ np.einsum("kj,kj->j", T[:, :r], ops.V))
+    if bufs.G is not None:
+        csr_t_matmul_accumulate(X.indptr, X.indices, X.data, R, bufs.G, where=where)
+    return out_XQ
