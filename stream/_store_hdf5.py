@@ -1,0 +1,186 @@
+"""HDF5 backend of the store: one file, same layout as the zarr group.
+
+All h5py calls serialize on one global lock (DESIGN §11), so this backend
+reports ``parallel_reads = False``. The chunk cache (``rdcc_nbytes``) is sized
+above a few chunks so a sequential reader never decodes a chunk twice.
+zstd and lz4 come from the ``hdf5plugin`` filters; without that package the
+store falls back to gzip + shuffle (for zstd) or lzf (for lz4) and records the
+filter actually used in the attributes.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .errors import StoreError
+from .store import ATTRS_KEY, StoreBackend
+
+__all__ = ["Hdf5Backend"]
+
+_CACHE_BYTES = 64 * 1024 * 1024
+_SIGNATURE = b"\x89HDF\r\n\x1a\n"
+
+
+def _filters(codec: str, level: int | None) -> tuple[dict[str, Any], str]:
+    """h5py dataset keywords for ``codec`` and a description of the filter."""
+    if codec == "none":
+        return {}, "hdf5 uncompressed"
+    try:
+        import hdf5plugin
+    except ImportError:
+        hdf5plugin = None
+    if codec == "zstd":
+        lvl = 1 if level is None else level
+        if hdf5plugin is not None:
+            return dict(hdf5plugin.Zstd(clevel=lvl)), f"hdf5 zstd level {lvl} (hdf5plugin)"
+        return {"compression": "gzip", "compression_opts": 1, "shuffle": True}, (
+            "hdf5 gzip level 1 + shuffle (hdf5plugin not installed)"
+        )
+    lvl = 5 if level is None else level
+    if hdf5plugin is not None:
+        kw = dict(hdf5plugin.Blosc(cname="lz4", clevel=lvl, shuffle=hdf5plugin.Blosc.SHUFFLE))
+        return kw, f"hdf5 blosc lz4 level {lvl} + shuffle (hdf5plugin)"
+    return {"compression": "lzf", "shuffle": True}, "hdf5 lzf + shuffle (hdf5plugin not installed)"
+
+
+def _load_plugins() -> None:
+    """Register the hdf5plugin filters for reading, when the package is there."""
+    try:
+        import hdf5plugin  # noqa: F401
+    except ImportError:
+        pass
+
+
+class Hdf5Backend(StoreBackend):
+    """Arrays of a store kept in one HDF5 file."""
+
+    name = "hdf5"
+    parallel_reads = False
+
+    def __init__(self, fh: Any, path: Path, *, writable: bool) -> None:
+        self._fh = fh
+        self.path = path
+        self.writable = writable
+        self._kw: dict[str, Any] = {}
+        self._impl = "hdf5 uncompressed"
+
+    @classmethod
+    def create(cls, path: Path, *, codec: str, level: int | None = None) -> Hdf5Backend:
+        import h5py
+
+        _load_plugins()
+        fh = h5py.File(str(path), "w-", libver="latest")
+        self = cls(fh, Path(path), writable=True)
+        self._kw, self._impl = _filters(codec, level)
+        return self
+
+    @classmethod
+    def open(cls, path: Path) -> Hdf5Backend:
+        import h5py
+
+        p = Path(path)
+        if not p.is_file():
+            raise StoreError(
+                f"{p}: not a ranktide store (no such HDF5 file); "
+                "create one with `ranktide ingest` or write_store()"
+            )
+        with open(p, "rb") as fh:
+            head = fh.read(len(_SIGNATURE))
+        if head != _SIGNATURE:
+            raise StoreError(f"{p}: not a ranktide store (not an HDF5 file); check the path")
+        _load_plugins()
+        try:
+            fh = h5py.File(str(p), "r", rdcc_nbytes=_CACHE_BYTES, rdcc_nslots=10007)
+        except OSError as exc:
+            raise StoreError(
+                f"{p}: not a readable HDF5 file ({exc}); re-create the store"
+            ) from None
+        return cls(fh, p, writable=False)
+
+    def codec_impl(self) -> str:
+        return self._impl
+
+    def create_array(
+        self, name: str, *, dtype: np.dtype, shape: tuple[int, ...], chunk_rows: int
+    ) -> None:
+        shape = tuple(int(s) for s in shape)
+        chunks = (max(1, int(chunk_rows)),) + shape[1:]
+        if any(c == 0 for c in chunks):
+            chunks = tuple(max(1, c) for c in chunks)
+        self._fh.create_dataset(
+            name,
+            shape=shape,
+            maxshape=(None,) + shape[1:],
+            chunks=chunks,
+            dtype=np.dtype(dtype),
+            **self._kw,
+        )
+
+    def _ds(self, name: str) -> Any:
+        try:
+            return self._fh[name]
+        except KeyError:
+            raise StoreError(
+                f"{self.path}: dataset {name!r} is missing; the store is damaged, re-create it"
+            ) from None
+
+    def has(self, name: str) -> bool:
+        return name in self._fh
+
+    def write(self, name: str, start: int, values: np.ndarray) -> None:
+        if values.shape[0]:
+            self._ds(name)[start : start + values.shape[0]] = values
+
+    def resize(self, name: str, n_rows: int) -> None:
+        self._ds(name).resize(int(n_rows), axis=0)
+
+    def read(self, name: str, start: int, stop: int) -> np.ndarray:
+        ds = self._ds(name)
+        out = np.empty((max(0, stop - start),) + ds.shape[1:], dtype=ds.dtype)
+        if out.shape[0] and out.size:
+            try:
+                ds.read_direct(out, np.s_[start:stop])
+            except OSError as exc:
+                raise StoreError(
+                    f"{self.path}: dataset {name!r} rows {start}..{stop} cannot be decoded "
+                    f"({exc}); the store is damaged, re-create it"
+                ) from None
+        return out
+
+    def shape(self, name: str) -> tuple[int, ...]:
+        return tuple(int(s) for s in self._ds(name).shape)
+
+    def dtype(self, name: str) -> np.dtype:
+        return np.dtype(self._ds(name).dtype)
+
+    def chunk_rows(self, name: str) -> int:
+        return int(self._ds(name).chunks[0])
+
+    def stored_nbytes(self, name: str) -> int:
+        return int(self._ds(name).id.get_storage_size())
+
+    def get_attrs(self) -> dict[str, Any] | None:
+        raw = self._fh.attrs.get(ATTRS_KEY)
+        if raw is None:
+            return None
+        if isinstance(raw, bytes):
+            raw = raw.decode()
+        try:
+            value = json.loads(str(raw))
+        except json.JSONDecodeError:
+            return None
+        return value if isinstance(value, dict) else None
+
+    def set_attrs(self, attrs: dict[str, Any]) -> None:
+        self._fh.attrs[ATTRS_KEY] = json.dumps(attrs, sort_keys=True)
+        self._fh.flush()
+
+    def close(self) -> None:
+        try:
+            self._fh.close()
+        except Exception:  # closing twice or after a failed write
+            pass
