@@ -1,0 +1,510 @@
+"""Byte-level parsers for numeric text lines and label/tag tokens.
+
+The kernels scan a ``uint8`` buffer that holds whole lines, validate every
+token and write the results into caller-owned arrays. Values with at most 18
+significant digits whose decimal exponent keeps the product exact are
+converted on the fast path of Clinger (1990): ``m * 10**e`` or ``m / 10**-e``
+with ``m <= 2**53`` and ``|e| <= 22`` involves exactly one rounding, so the
+result is the correctly rounded double. Every other value token is reported
+back (entry, start, length) for the caller to convert with a correctly
+rounding library routine (:func:`gather_tokens` packs them for numpy).
+
+References
+----------
+W. D. Clinger, "How to read floating point numbers accurately", PLDI 1990.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+__all__ = [
+    "ERR_OK",
+    "ERR_FEW_FIELDS",
+    "ERR_MANY_FIELDS",
+    "ERR_NOT_NUMBER",
+    "ERR_FRACTIONAL",
+    "ERR_NEGATIVE",
+    "ERR_INDEX_OVERFLOW",
+    "ERR_NAN",
+    "ERR_INF",
+    "ERR_BINARY",
+    "ERR_NOT_INTEGER",
+    "ST_CODE",
+    "ST_POS",
+    "ST_LINES",
+    "ST_ENTRIES",
+    "ST_FALLBACK",
+    "ST_FIELD",
+    "ST_ERR_LINE",
+    "parse_numeric_lines",
+    "entry_line",
+    "gather_tokens",
+    "split_tokens",
+]
+
+ERR_OK = 0
+ERR_FEW_FIELDS = 1
+ERR_MANY_FIELDS = 2
+ERR_NOT_NUMBER = 3
+ERR_FRACTIONAL = 4
+ERR_NEGATIVE = 5
+ERR_INDEX_OVERFLOW = 6
+ERR_NAN = 7
+ERR_INF = 8
+ERR_BINARY = 9
+ERR_NOT_INTEGER = 10
+
+# slots of the int64 ``status`` array shared by the kernels
+ST_CODE = 0  # error code (ERR_*)
+ST_POS = 1  # byte offset after the last complete line consumed
+ST_LINES = 2  # lines consumed (data, blank and comment lines)
+ST_ENTRIES = 3  # entries written to the output arrays
+ST_FALLBACK = 4  # value tokens left for the caller to convert
+ST_FIELD = 5  # 0-based field of the error
+ST_ERR_LINE = 6  # 0-based line (relative to ``start``) of the error
+
+_POW10 = np.array([10.0**i for i in range(23)], dtype=np.float64)
+_TWO53 = 9007199254740992
+_INT64_MAX = 9223372036854775807
+
+_NL = 10
+_CR = 13
+_SP = 32
+_TAB = 9
+_COMMA = 44
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _is_space(c):
+    return c == _SP or c == _TAB or c == _CR
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _is_end(c, comment):
+    return c == _SP or c == _TAB or c == _CR or c == _NL or c == comment
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _is_digit(c):
+    return 48 <= c <= 57
+
+
+@njit(nogil=True, cache=True)
+def _word_kind(buf, p, stop, comment):
+    """Classify a letter token at ``p``: 1 = nan, 2 = inf/infinity, 0 = other."""
+    q = p
+    if q < stop and (buf[q] == 43 or buf[q] == 45):
+        q += 1
+    e = q
+    while e < stop and not _is_end(buf[e], comment):
+        e += 1
+    n = e - q
+    if n == 3:
+        a, b, c = buf[q] | 32, buf[q + 1] | 32, buf[q + 2] | 32
+        if a == 110 and b == 97 and c == 110:
+            return 1
+        if a == 105 and b == 110 and c == 102:
+            return 2
+    if n == 8:
+        word = (105, 110, 102, 105, 110, 105, 116, 121)  # "infinity"
+        for i in range(8):
+            if (buf[q + i] | 32) != word[i]:
+                return 0
+        return 2
+    return 0
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _scan_float(buf, p, stop, comment):
+    """Validate a decimal float token at ``p``.
+
+    Returns (end, code, mantissa, exp10, flags) with flags bit 0 = needs
+    fallback, bit 1 = negative, bit 2 = integer syntax.
+    """
+    q = p
+    neg = False
+    if buf[q] == 43 or buf[q] == 45:
+        neg = buf[q] == 45
+        q += 1
+    mant = 0
+    sig = 0
+    drop = 0  # digits beyond the 18 kept, before the point
+    exp10 = 0
+    ndig = 0
+    while q < stop and _is_digit(buf[q]):
+        d = buf[q] - 48
+        ndig += 1
+        if sig < 18:
+            if mant != 0 or d != 0:
+                mant = mant * 10 + d
+                sig += 1
+        else:
+            drop += 1
+        q += 1
+    integer = True
+    if q < stop and buf[q] == 46:
+        integer = False
+        q += 1
+        while q < stop and _is_digit(buf[q]):
+            d = buf[q] - 48
+            ndig += 1
+            if sig < 18:
+                if mant != 0 or d != 0:
+                    mant = mant * 10 + d
+                    sig += 1
+                exp10 -= 1
+            else:
+                drop += 1  # marks precision lost; exponent unaffected
+            q += 1
+    if ndig == 0:
+        return q, ERR_NOT_NUMBER, 0, 0, 0
+    if q < stop and (buf[q] == 101 or buf[q] == 69):
+        integer = False
+        q += 1
+        eneg = False
+        if q < stop and (buf[q] == 43 or buf[q] == 45):
+            eneg = buf[q] == 45
+            q += 1
+        if q >= stop or not _is_digit(buf[q]):
+            return q, ERR_NOT_NUMBER, 0, 0, 0
+        ev = 0
+        while q < stop and _is_digit(buf[q]):
+            if ev < 100000:
+                ev = ev * 10 + (buf[q] - 48)
+            q += 1
+        exp10 += -ev if eneg else ev
+    if q < stop and not _is_end(buf[q], comment):
+        return q, ERR_NOT_NUMBER, 0, 0, 0
+    flags = 0
+    if drop > 0:
+        # digits beyond 18 scale the kept mantissa
+        flags |= 1
+    if neg:
+        flags |= 2
+    if integer:
+        flags |= 4
+    return q, ERR_OK, mant, exp10, flags
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _fast_value(mant, exp10, neg):
+    """Clinger's exact fast path; returns (ok, value)."""
+    if mant == 0:
+        return True, -0.0 if neg else 0.0
+    if mant > _TWO53:
+        return False, 0.0
+    m = mant
+    e = exp10
+    if e > 22:
+        # move powers of ten into the mantissa while it stays exact
+        while e > 22 and m <= _TWO53 // 10:
+            m *= 10
+            e -= 1
+        if e > 22:
+            return False, 0.0
+    if e < -22:
+        return False, 0.0
+    v = float(m)
+    if e >= 0:
+        v = v * _POW10[e]
+    else:
+        v = v / _POW10[-e]
+    return True, -v if neg else v
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _scan_index(buf, p, stop, comment):
+    """Parse a non-negative integer index token at ``p``.
+
+    Returns (end, value, code).
+    """
+    c = buf[p]
+    q = p
+    if c == 43:
+        q += 1
+    elif c == 45:
+        f = _scan_float(buf, p, stop, comment)
+        return f[0], 0, ERR_NEGATIVE if f[1] == ERR_OK else ERR_NOT_NUMBER
+    v = 0
+    nd = 0
+    over = False
+    while q < stop and _is_digit(buf[q]):
+        d = buf[q] - 48
+        if v > (_INT64_MAX - d) // 10:
+            over = True
+        else:
+            v = v * 10 + d
+        nd += 1
+        q += 1
+    if nd > 0 and (q >= stop or _is_end(buf[q], comment)):
+        return q, v, ERR_INDEX_OVERFLOW if over else ERR_OK
+    # not a plain integer: tell a fractional number from garbage
+    f = _scan_float(buf, p, stop, comment)
+    return f[0], 0, ERR_FRACTIONAL if f[1] == ERR_OK else ERR_NOT_NUMBER
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _skip_line(buf, p, stop):
+    while p < stop and buf[p] != _NL:
+        p += 1
+    return p
+
+
+@njit(nogil=True, cache=True)
+def parse_numeric_lines(
+    buf,
+    start,
+    stop,
+    n_index,
+    has_value,
+    int_values,
+    comment,
+    rows,
+    cols,
+    vals,
+    fb_entry,
+    fb_start,
+    fb_len,
+    status,
+):
+    """Parse whitespace-separated numeric lines into index and value arrays.
+
+    Each non-blank, non-comment line must hold ``n_index`` non-negative
+    integer fields followed by one value field if ``has_value``. Parsing stops
+    at ``stop``, at the first error, or when the output arrays are full, always
+    at a line boundary (``buf[stop - 1]`` must be a newline).
+
+    Parameters
+    ----------
+    buf : uint8 array (n_bytes,)
+        Text; only ``buf[start:stop]`` is read.
+    start, stop : int
+        Byte range to parse.
+    n_index : int
+        Integer fields per line (0, 1 or 2).
+    has_value : bool
+        Whether a value field follows the indices.
+    int_values : bool
+        Values must be written as integers (Matrix Market ``integer`` field).
+    comment : int
+        Byte that starts a comment running to the end of the line.
+    rows, cols : int64 arrays (cap,)
+        Out: first and second index of each entry (as written, not shifted).
+    vals : float64 array (cap,)
+        Out: values (0 for the entries listed in ``fb_entry``).
+    fb_entry, fb_start, fb_len : int64 arrays (cap,)
+        Out: entries whose value token the caller must convert, with the
+        token's byte offset and length in ``buf``.
+    status : int64 array (8,)
+        Out: see the ``ST_*`` slots.
+    """
+    cap = rows.shape[0]
+    for i in range(status.shape[0]):
+        status[i] = 0
+    n_fields = n_index + (1 if has_value else 0)
+    p = start
+    lines = 0
+    ne = 0
+    nfb = 0
+    while p < stop:
+        if ne >= cap:
+            break
+        line_start = p
+        while p < stop and _is_space(buf[p]):
+            p += 1
+        if p >= stop:
+            p = stop
+            break
+        c = buf[p]
+        if c == _NL or c == comment:
+            p = _skip_line(buf, p, stop) + 1
+            lines += 1
+            continue
+        field = 0
+        r = 0
+        k = 0
+        code = ERR_OK
+        while True:
+            while p < stop and _is_space(buf[p]):
+                p += 1
+            c = buf[p] if p < stop else _NL
+            if c == _NL or c == comment:
+                if field < n_fields:
+                    code = ERR_FEW_FIELDS
+                break
+            if c == 0 or c >= 128 or (c < 32 and c != _TAB):
+                code = ERR_BINARY
+                break
+            if field >= n_fields:
+                code = ERR_MANY_FIELDS
+                break
+            if field < n_index:
+                q, v, icode = _scan_index(buf, p, stop, comment)
+                if icode != ERR_OK:
+                    code = icode
+                    break
+                if field == 0:
+                    r = v
+                else:
+                    k = v
+                p = q
+            else:
+                fend, fcode, fmant, fexp, fflags = _scan_float(buf, p, stop, comment)
+                if fcode != ERR_OK:
+                    w = _word_kind(buf, p, stop, comment)
+                    code = ERR_NAN if w == 1 else (ERR_INF if w == 2 else ERR_NOT_NUMBER)
+                    break
+                if int_values and (fflags & 4) == 0:
+                    code = ERR_NOT_INTEGER
+                    break
+                ok = False
+                v = 0.0
+                if (fflags & 1) == 0:
+                    ok, v = _fast_value(fmant, fexp, (fflags & 2) != 0)
+                if ok:
+                    vals[ne] = v
+                else:
+                    vals[ne] = 0.0
+                    fb_entry[nfb] = ne
+                    fb_start[nfb] = p
+                    fb_len[nfb] = fend - p
+                    nfb += 1
+                p = fend
+            field += 1
+        if code != ERR_OK:
+            status[ST_CODE] = code
+            status[ST_FIELD] = field
+            status[ST_ERR_LINE] = lines
+            status[ST_POS] = line_start
+            status[ST_LINES] = lines
+            status[ST_ENTRIES] = ne
+            status[ST_FALLBACK] = nfb
+            return
+        rows[ne] = r
+        cols[ne] = k
+        ne += 1
+        p = _skip_line(buf, p, stop) + 1
+        lines += 1
+    status[ST_POS] = min(p, stop)
+    status[ST_LINES] = lines
+    status[ST_ENTRIES] = ne
+    status[ST_FALLBACK] = nfb
+
+
+@njit(nogil=True, cache=True)
+def entry_line(buf, start, stop, comment, entry):
+    """Return the 0-based line (relative to ``start``) of data entry ``entry``.
+
+    Blank lines and comment lines are counted as lines but not as entries,
+    matching :func:`parse_numeric_lines`. Returns -1 if there are fewer entries.
+    """
+    p = start
+    lines = 0
+    ne = 0
+    while p < stop:
+        q = p
+        while q < stop and _is_space(buf[q]):
+            q += 1
+        data = q < stop and buf[q] != _NL and buf[q] != comment
+        if data:
+            if ne == entry:
+                return lines
+            ne += 1
+        p = _skip_line(buf, q, stop) + 1
+        lines += 1
+    return -1
+
+
+@njit(nogil=True, cache=True)
+def gather_tokens(buf, tok_start, tok_len, n, out):
+    """Copy ``n`` tokens into the zero-padded rows of ``out`` (n_cap, width) uint8."""
+    width = out.shape[1]
+    for i in range(n):
+        s = tok_start[i]
+        m = min(tok_len[i], width)
+        for j in range(m):
+            out[i, j] = buf[s + j]
+        for j in range(m, width):
+            out[i, j] = 0
+
+
+@njit(nogil=True, cache=True)
+def split_tokens(buf, start, stop, split, tok_start, tok_len, line_ntok, status):
+    """Cut lines into tokens: the whole stripped line, or words.
+
+    Parameters
+    ----------
+    buf : uint8 array (n_bytes,)
+        Text with whole lines in ``buf[start:stop]``.
+    split : bool
+        False: one token per line (the line without surrounding white space,
+        possibly empty). True: tokens separated by spaces, tabs or commas.
+    tok_start, tok_len : int64 arrays (tok_cap,)
+        Out: byte offset and length of each token.
+    line_ntok : int64 array (line_cap,)
+        Out: number of tokens on each line.
+    status : int64 array (8,)
+        Out: ``ST_POS``, ``ST_LINES`` (lines written), ``ST_ENTRIES`` (tokens
+        written), ``ST_CODE`` = ``ERR_BINARY`` with ``ST_ERR_LINE`` for a NUL
+        or control byte.
+    """
+    for i in range(status.shape[0]):
+        status[i] = 0
+    tcap = tok_start.shape[0]
+    lcap = line_ntok.shape[0]
+    p = start
+    nl = 0
+    nt = 0
+    while p < stop and nl < lcap:
+        e = p
+        bad = False
+        while e < stop and buf[e] != _NL:
+            c = buf[e]
+            if c == 0 or (c < 32 and c != _TAB and c != _CR):
+                bad = True
+            e += 1
+        if bad:
+            status[ST_CODE] = ERR_BINARY
+            status[ST_ERR_LINE] = nl
+            status[ST_POS] = p
+            status[ST_LINES] = nl
+            status[ST_ENTRIES] = nt
+            return
+        # worst case this line adds (e - p + 1) // 2 + 1 tokens
+        if nt + (e - p) // 2 + 1 > tcap and nl > 0:
+            break
+        if not split:
+            a = p
+            b = e
+            while a < b and _is_space(buf[a]):
+                a += 1
+            while b > a and _is_space(buf[b - 1]):
+                b -= 1
+            tok_start[nt] = a
+            tok_len[nt] = b - a
+            nt += 1
+            line_ntok[nl] = 1
+        else:
+            cnt = 0
+            q = p
+            while q < e:
+                while q < e and (_is_space(buf[q]) or buf[q] == _COMMA):
+                    q += 1
+                if q >= e:
+                    break
+                a = q
+                while q < e and not (_is_space(buf[q]) or buf[q] == _COMMA):
+                    q += 1
+                if nt < tcap:
+                    tok_start[nt] = a
+                    tok_len[nt] = q - a
+                    nt += 1
+                    cnt += 1
+            line_ntok[nl] = cnt
+        nl += 1
+        p = e + 1
+    status[ST_POS] = min(p, stop)
+    status[ST_LINES] = nl
+    status[ST_ENTRIES] = nt
