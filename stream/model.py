@@ -1,0 +1,416 @@
+"""Model files: the factored weight matrix W = U diag(s) V^T, the intercept, and metadata.
+
+A model directory holds
+
+* ``factors.npz``: ``U`` (d, r), ``s`` (r,), ``V`` (k, r), ``b`` (k,), float64,
+  written without pickle (:func:`stream.atomic.save_npz`);
+* ``model.json``: format name and version, loss, shapes, the output names in
+  column order (under ``classes``, ``tags`` or ``outputs`` by loss), and the
+  fit's figures (lam, lam_max, store fingerprint, objective, gap estimate,
+  sigma_ratio, passes, seconds) and package versions.
+
+The directory is built under a temporary name and renamed into place, so a
+half-written model never appears under the final name.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from importlib import metadata as _metadata
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from .atomic import atomic_dir, atomic_write_json, load_npz, save_npz
+from .errors import ConfigError, InputError, ModelError
+
+__all__ = ["Model", "save_model", "load_model", "MODEL_FORMAT", "MODEL_VERSION", "NAMES_KEY"]
+
+MODEL_FORMAT = "ranktide-model"
+MODEL_VERSION = 1
+FACTORS_FILE = "factors.npz"
+META_FILE = "model.json"
+#: key under which model.json lists the output names, by loss
+NAMES_KEY: dict[str, str] = {"softmax": "classes", "multilabel": "tags", "squared": "outputs"}
+_ARRAYS = ("U", "s", "V", "b")
+# keys of model.json that save_model owns; everything else comes from the metadata
+_STRUCTURAL = ("format", "format_version", "loss", "d", "k", "rank", "versions",
+               *NAMES_KEY.values())
+_VERSIONED = ("numpy", "scipy", "numba", "zarr", "h5py")
+
+
+@dataclass(frozen=True, eq=False)
+class Model:
+    """A fitted model: W = U diag(s) V^T (never formed) and the intercept b.
+
+    Parameters
+    ----------
+    U : ndarray, shape (d, r)
+        Left factor (orthonormal columns from the solver).
+    s : ndarray, shape (r,)
+        Singular values, >= 0.
+    V : ndarray, shape (k, r)
+        Right factor.
+    b : ndarray, shape (k,)
+        Intercept.
+    loss : {"softmax", "squared", "multilabel"}
+    names : list of str, optional
+        Output names in column order (classes, tags or outputs).
+    meta : dict
+        Fit figures and provenance (lam, lam_max, objective, gap, ...).
+    """
+
+    U: np.ndarray
+    s: np.ndarray
+    V: np.ndarray
+    b: np.ndarray
+    loss: str
+    names: list[str] | None = None
+    meta: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        arrays = _check_factors(
+            {"U": self.U, "s": self.s, "V": self.V, "b": self.b}, where="model"
+        )
+        for key, arr in arrays.items():
+            object.__setattr__(self, key, arr)
+        if self.loss not in NAMES_KEY:
+            raise ModelError(
+                f"model: unknown loss {self.loss!r}; expected one of {', '.join(NAMES_KEY)}"
+            )
+        if self.names is not None:
+            object.__setattr__(self, "names", _check_names(self.names, self.n_outputs, "model"))
+        object.__setattr__(self, "meta", dict(self.meta))
+
+    # ------------------------------------------------------------------ shapes
+
+    @property
+    def n_features(self) -> int:
+        """d, the number of input columns."""
+        return int(self.U.shape[0])
+
+    @property
+    def n_outputs(self) -> int:
+        """k, the number of classes, tags or outputs."""
+        return int(self.V.shape[0])
+
+    @property
+    def rank(self) -> int:
+        """r, the number of atoms."""
+        return int(self.s.shape[0])
+
+    @classmethod
+    def from_dense(
+        cls,
+        W: np.ndarray,
+        b: np.ndarray,
+        *,
+        loss: str,
+        names: Sequence[str] | None = None,
+        meta: Mapping[str, Any] | None = None,
+        rtol: float = 1e-12,
+    ) -> Model:
+        """Factor a dense W (d, k) by SVD, dropping singular values <= rtol * s_1."""
+        W = np.asarray(W, dtype=np.float64)
+        U, s, Vt = np.linalg.svd(W, full_matrices=False)
+        keep = s > (rtol * s[0] if s.size else 0.0)
+        keep &= s > 0
+        return cls(U=U[:, keep], s=s[keep], V=Vt[keep].T, b=np.asarray(b, dtype=np.float64),
+                   loss=loss, names=None if names is None else list(names),
+                   meta=dict(meta or {}))
+
+    # ------------------------------------------------------------------ prediction
+
+    def scores(self, X: Any) -> np.ndarray:
+        """Scores X W + b, computed as (X U) (diag(s) V^T) + b without forming W.
+
+        Parameters
+        ----------
+        X : scipy sparse matrix or ndarray, shape (n, d)
+
+        Returns
+        -------
+        ndarray, shape (n, k), float64
+        """
+        XU = self._project(X)
+        out = XU @ (self.s[:, None] * self.V.T)
+        out += self.b
+        return out
+
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """Class probabilities (softmax) or tag probabilities (sigmoid), shape (n, k).
+
+        Raises
+        ------
+        ConfigError
+            For the squared loss, which has no probabilities.
+        """
+        if self.loss == "squared":
+            raise ConfigError(
+                "model: the squared loss predicts values, not probabilities; use predict()"
+            )
+        Z = self.scores(X)
+        if self.loss == "softmax":
+            Z -= Z.max(axis=1, keepdims=True)
+            np.exp(Z, out=Z)
+            Z /= Z.sum(axis=1, keepdims=True)
+            return Z
+        # sigmoid, written to avoid overflow for large |z|
+        return 0.5 * (1.0 + np.tanh(0.5 * Z))
+
+    def predict(self, X: Any) -> Any:
+        """Predictions: class ids (n,) int64 (softmax), a CSR (n, k) tag indicator of the
+        tags whose probability is >= 0.5 (multilabel), or values (n, k) float64 (squared)."""
+        Z = self.scores(X)
+        if self.loss == "softmax":
+            return np.argmax(Z, axis=1).astype(np.int64)
+        if self.loss == "multilabel":
+            # sigmoid(z) >= 0.5  <=>  z >= 0
+            return sp.csr_matrix((Z >= 0.0).astype(np.float32))
+        return Z
+
+    def top_k(self, X: Any, k: int) -> tuple[np.ndarray, np.ndarray]:
+        """The k best-scoring outputs of each row, best first (ties: lower index first).
+
+        Returns
+        -------
+        indices : ndarray, shape (n, k), int64
+        scores : ndarray, shape (n, k), float64
+        """
+        if not (isinstance(k, (int, np.integer)) and 1 <= k <= self.n_outputs):
+            raise ConfigError(f"top_k: k = {k!r} must be an integer in 1..{self.n_outputs}")
+        Z = self.scores(X)
+        order = np.argsort(-Z, axis=1, kind="stable")[:, :k]
+        return order.astype(np.int64), np.take_along_axis(Z, order, axis=1)
+
+    def _project(self, X: Any) -> np.ndarray:
+        """X U, shape (n, r), float64."""
+        if not sp.issparse(X):
+            X = np.asarray(X, dtype=np.float64)
+        if X.ndim != 2:
+            raise InputError(f"X: expected a 2-D matrix of rows x features, got {X.ndim}-D")
+        if X.shape[1] != self.n_features:
+            raise InputError(
+                f"X: has {X.shape[1]} columns but the model was fitted on {self.n_features} "
+                "features; use data with the same feature columns"
+            )
+        n = X.shape[0]
+        out = np.zeros((n, self.rank), dtype=np.float64)
+        if self.rank == 0 or n == 0:
+            return out
+        if sp.issparse(X):
+            from kernels.sparse import csr_matmul_dense
+
+            Xc = sp.csr_matrix(X)
+            data = Xc.data
+            if data.dtype not in (np.float32, np.float64):
+                data = data.astype(np.float64)
+            return csr_matmul_dense(Xc.indptr, Xc.indices, data, self.U, out, where="X")
+        return X @ self.U
+
+
+# --------------------------------------------------------------------------- validation
+
+
+def _check_factors(arrays: Mapping[str, Any], *, where: str) -> dict[str, np.ndarray]:
+    """Check dtypes and mutually consistent shapes of U, s, V, b; return float64 copies."""
+    out: dict[str, np.ndarray] = {}
+    for key in _ARRAYS:
+        if key not in arrays:
+            raise ModelError(f"{where}: array {key!r} is missing; re-save the model")
+        arr = np.asarray(arrays[key])
+        if arr.dtype.hasobject or not (np.issubdtype(arr.dtype, np.floating)
+                                       or np.issubdtype(arr.dtype, np.integer)):
+            raise ModelError(
+                f"{where}: array {key!r} has dtype {arr.dtype}, not a real number type; "
+                "re-save the model"
+            )
+        arr = np.array(arr, dtype=np.float64, order="C")
+        if not np.all(np.isfinite(arr)):
+            raise ModelError(f"{where}: array {key!r} holds NaN or infinite values; refit")
+        out[key] = arr
+    U, s, V, b = (out[key] for key in _ARRAYS)
+    if U.ndim != 2 or V.ndim != 2 or s.ndim != 1 or b.ndim != 1:
+        raise ModelError(
+            f"{where}: expected U (d, r), s (r,), V (k, r), b (k,); got shapes "
+            f"{U.shape}, {s.shape}, {V.shape}, {b.shape}"
+        )
+    r = s.shape[0]
+    if U.shape[1] != r or V.shape[1] != r or V.shape[0] != b.shape[0]:
+        raise ModelError(
+            f"{where}: inconsistent shapes U {U.shape}, s {s.shape}, V {V.shape}, b {b.shape}; "
+            "need U (d, r), s (r,), V (k, r), b (k,)"
+        )
+    if np.any(s < 0):
+        raise ModelError(f"{where}: singular value {int(np.argmin(s))} is negative; refit")
+    return out
+
+
+def _check_names(names: Any, k: int, where: str) -> list[str]:
+    if isinstance(names, (str, bytes)) or not isinstance(names, Sequence):
+        raise ModelError(f"{where}: output names must be a list of {k} strings")
+    names = list(names)
+    if len(names) != k:
+        raise ModelError(f"{where}: {len(names)} output names for {k} outputs; give one each")
+    for i, nm in enumerate(names):
+        if not isinstance(nm, str):
+            raise ModelError(f"{where}: output name {i} is {nm!r}, not a string")
+    return names
+
+
+def _jsonable(value: Any, key: str) -> Any:
+    """Convert numpy scalars / arrays in metadata to JSON types."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, np.ndarray):
+        value = value.tolist()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, Mapping):
+        return {str(k): _jsonable(v, f"{key}.{k}") for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v, key) for v in value]
+    if value is None or isinstance(value, (str, int, float, bool)):
+        return value
+    raise ConfigError(
+        f"model metadata {key!r}: {type(value).__name__} is not JSON data; pass numbers, "
+        "strings, lists or dicts"
+    )
+
+
+def _versions() -> dict[str, str | None]:
+    from . import __version__
+
+    out: dict[str, str | None] = {}
+    for pkg in _VERSIONED:
+        try:
+            out[pkg] = _metadata.version(pkg)
+        except _metadata.PackageNotFoundError:
+            out[pkg] = None
+    out["ranktide"] = __version__
+    return out
+
+
+# --------------------------------------------------------------------------- files
+
+
+def save_model(
+    path: str | Path,
+    model: Model,
+    *,
+    meta: Mapping[str, Any] | None = None,
+    overwrite: bool = False,
+) -> Path:
+    """Write ``model`` to the directory ``path`` (built under a temporary name, then renamed).
+
+    Parameters
+    ----------
+    path : path
+        The model directory to create.
+    model : Model
+    meta : mapping, optional
+        Fit figures merged over ``model.meta``: lam, lam_max, store_fingerprint,
+        objective, gap, sigma_ratio, passes, seconds, and any other JSON data.
+    overwrite : bool
+        Replace an existing directory (otherwise OutputExistsError).
+
+    Returns
+    -------
+    Path
+        The final directory.
+    """
+    merged = {**model.meta, **dict(meta or {})}
+    doc: dict[str, Any] = {}
+    for key in ("lam", "lam_max", "store_fingerprint", "objective", "gap", "sigma_ratio",
+                "passes", "seconds"):
+        doc[key] = None
+    for key, value in merged.items():
+        if key in _STRUCTURAL:
+            continue
+        doc[str(key)] = _jsonable(value, str(key))
+    doc.update({
+        "format": MODEL_FORMAT,
+        "format_version": MODEL_VERSION,
+        "loss": model.loss,
+        "d": model.n_features,
+        "k": model.n_outputs,
+        "rank": model.rank,
+        NAMES_KEY[model.loss]: model.names,
+        "versions": _versions(),
+    })
+    final = Path(path)
+    with atomic_dir(final, overwrite=overwrite) as tmp:
+        tmp.mkdir()
+        save_npz(tmp / FACTORS_FILE, {"U": model.U, "s": model.s, "V": model.V, "b": model.b})
+        atomic_write_json(tmp / META_FILE, doc)
+    return final
+
+
+def load_model(path: str | Path) -> Model:
+    """Read and validate a model directory written by :func:`save_model`.
+
+    Raises
+    ------
+    ModelError
+        One line naming the file and the problem: missing directory or files,
+        unreadable JSON, another format or a newer version, unknown loss,
+        object arrays, inconsistent shapes or names.
+    """
+    p = Path(path)
+    if not p.is_dir():
+        what = "is a file, not a model directory" if p.exists() else "no such model directory"
+        raise ModelError(f"{p}: {what}; pass the directory written by train")
+    doc = _read_meta(p / META_FILE)
+    loss = doc.get("loss")
+    if loss not in NAMES_KEY:
+        raise ModelError(
+            f"{p / META_FILE}: unknown loss {loss!r}; expected one of {', '.join(NAMES_KEY)}"
+        )
+    arrays = load_npz(p / FACTORS_FILE, error=ModelError)
+    where = str(p / FACTORS_FILE)
+    checked = _check_factors(arrays, where=where)
+    d, r = checked["U"].shape
+    k = checked["V"].shape[0]
+    for key, have in (("d", d), ("k", k), ("rank", r)):
+        if doc.get(key) != have:
+            raise ModelError(
+                f"{p / META_FILE}: {key} = {doc.get(key)!r} but {FACTORS_FILE} has {key} = "
+                f"{have}; the files do not belong together, re-save the model"
+            )
+    names = doc.get(NAMES_KEY[loss])
+    if names is not None:
+        names = _check_names(names, k, str(p / META_FILE))
+    meta = {key: val for key, val in doc.items() if key not in _STRUCTURAL}
+    meta["versions"] = doc.get("versions")
+    return Model(U=checked["U"], s=checked["s"], V=checked["V"], b=checked["b"], loss=loss,
+                 names=names, meta=meta)
+
+
+def _read_meta(path: Path) -> dict[str, Any]:
+    if not path.is_file():
+        raise ModelError(f"{path}: file not found; the model directory is incomplete")
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise ModelError(f"{path}: not readable JSON ({msg}); re-save the model") from None
+    if not isinstance(doc, dict):
+        raise ModelError(f"{path}: expected a JSON object; re-save the model")
+    if doc.get("format") != MODEL_FORMAT:
+        raise ModelError(
+            f"{path}: format {doc.get('format')!r} is not {MODEL_FORMAT!r}; not a ranktide model"
+        )
+    version = doc.get("format_version")
+    if not isinstance(version, int) or isinstance(version, bool) or version < 1:
+        raise ModelError(f"{path}: format_version {version!r} is not a positive integer")
+    if version > MODEL_VERSION:
+        raise ModelError(
+            f"{path}: format version {version} is newer than this ranktide reads "
+            f"({MODEL_VERSION}); upgrade ranktide"
+        )
+    return doc
