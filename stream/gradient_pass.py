@@ -182,17 +182,24 @@ class PassResult:
 # ---------------------------------------------------------------------------
 @dataclass
 class _Partial:
-    """Raw-weighted sums of one or more consecutive blocks."""
+    """Raw-weighted sums of one or more consecutive blocks.
+
+    The d-row products ``X^T (R [V, Omega])`` and ``X^T R`` of a block are
+    kept as pending terms ``(X_b, R_b [V, Omega], R_b or None)`` and added
+    into the d-row accumulators by the combine, so no block ever allocates
+    a d x (r + p) (or d x k) array of its own.
+    """
 
     rows: int
     weight: float
     loss: float
     grad_b: np.ndarray
-    G_VO: np.ndarray
     Gt_Psi: np.ndarray
     Gt_U: np.ndarray
-    G: np.ndarray | None
-    projections: list[Projection] | None
+    G_VO: np.ndarray | None = None
+    G: np.ndarray | None = None
+    terms: list = field(default_factory=list)
+    projections: list[Projection] | None = None
 
 
 @dataclass(frozen=True)
@@ -219,13 +226,18 @@ def _state(req: PassRequest) -> _State:
     )
 
 
+def _xt_accumulate_scipy(X: Any, D: np.ndarray, out: np.ndarray) -> None:
+    """``out += X^T D`` with scipy.sparse (reference / fallback)."""
+    out += X.T @ D
+
+
 def block_products_numpy(block: Any, st: _State) -> _Partial:
     """Block function written with scipy.sparse and numpy (reference / fallback).
 
     Computes, for the block's rows with raw weights ``w``: ``XQ = X [U, Psi]``,
     the scores ``Z = XQ_U diag(s) V^T + b``, the raw residual ``R = w *
-    dloss/dz``, and the sums ``1^T R``, ``X^T (R [V, Omega])``,
-    ``R^T X Psi``, ``R^T X U`` (and ``X^T R`` when asked).
+    dloss/dz``, the sums ``1^T R``, ``R^T X Psi``, ``R^T X U``, and the
+    pending terms ``X^T (R [V, Omega])`` (and ``X^T R`` when asked).
     """
     X = block.X
     r = st.U.shape[1]
@@ -238,34 +250,63 @@ def block_products_numpy(block: Any, st: _State) -> _Partial:
             Z, block.targets, block.weights, class_weights=st.class_weights)
     with phase("products"):
         grad_b = R.sum(axis=0)
-        G_VO = np.asarray(X.T @ (R @ st.VO), dtype=np.float64)
+        D = R @ st.VO
         Gt_Psi = R.T @ XQ[:, r:]
         Gt_U = R.T @ XQ[:, :r]
-        G = np.asarray(X.T @ R, dtype=np.float64) if st.dense_gradient else None
+    return _block_partial(block, st, XQ, loss, wsum, grad_b, Gt_Psi, Gt_U, D, R)
+
+
+def _block_partial(block: Any, st: _State, XQ: np.ndarray, loss: float, wsum: float,
+                   grad_b: np.ndarray, Gt_Psi: np.ndarray, Gt_U: np.ndarray, D: np.ndarray,
+                   R: np.ndarray) -> _Partial:
     proj = None
     if st.keep_projections:
         proj = [Projection(start=int(block.start), stop=int(block.stop), XQ=XQ,
                            targets=block.targets, weights=block.weights)]
+    term = (block.X, D, R if st.dense_gradient else None)
     return _Partial(rows=int(block.stop - block.start), weight=wsum, loss=loss, grad_b=grad_b,
-                    G_VO=G_VO, Gt_Psi=Gt_Psi, Gt_U=Gt_U, G=G, projections=proj)
+                    Gt_Psi=Gt_Psi, Gt_U=Gt_U, terms=[term], projections=proj)
 
 
-def _combine(parts: list[_Partial]) -> _Partial:
-    """Sum partials in order; accumulates into the first (the engine owns it)."""
-    acc = parts[0]
-    for p in parts[1:]:
-        acc.rows += p.rows
-        acc.weight += p.weight
-        acc.loss += p.loss
-        acc.grad_b += p.grad_b
-        acc.G_VO += p.G_VO
-        acc.Gt_Psi += p.Gt_Psi
-        acc.Gt_U += p.Gt_U
-        if acc.G is not None:
-            acc.G += p.G
-        if acc.projections is not None:
-            acc.projections.extend(p.projections)
-    return acc
+def _materialize(acc: _Partial, xt_accumulate: Any) -> None:
+    """Add the pending terms of ``acc`` into its d-row accumulators."""
+    for X, D, R in acc.terms:
+        if acc.G_VO is None:
+            acc.G_VO = np.zeros((X.shape[1], D.shape[1]))
+        xt_accumulate(X, D, acc.G_VO)
+        if R is not None:
+            if acc.G is None:
+                acc.G = np.zeros((X.shape[1], R.shape[1]))
+            xt_accumulate(X, R, acc.G)
+    acc.terms = []
+
+
+def _make_combine(xt_accumulate: Any):
+    def combine(parts: list[_Partial]) -> _Partial:
+        """Sum partials in order, accumulating into the first (the engine owns it)."""
+        acc = parts[0]
+        _materialize(acc, xt_accumulate)
+        for p in parts[1:]:
+            acc.rows += p.rows
+            acc.weight += p.weight
+            acc.loss += p.loss
+            acc.grad_b += p.grad_b
+            acc.Gt_Psi += p.Gt_Psi
+            acc.Gt_U += p.Gt_U
+            if p.G_VO is not None:  # an already reduced partial (tree reduction)
+                acc.G_VO += p.G_VO
+                if p.G is not None:
+                    acc.G += p.G
+            acc.terms = p.terms
+            _materialize(acc, xt_accumulate)
+            if acc.projections is not None:
+                acc.projections.extend(p.projections)
+        return acc
+
+    return combine
+
+
+_combine_scipy = _make_combine(_xt_accumulate_scipy)
 
 
 def _finalize(acc: _Partial, st: _State, profile: PassProfile | None, where: str) -> PassResult:
@@ -274,15 +315,19 @@ def _finalize(acc: _Partial, st: _State, profile: PassProfile | None, where: str
     inv = 1.0 / acc.weight
     Gt_U = acc.Gt_U * inv
     inner = float(np.einsum("j,kj,kj->", st.s, st.V, Gt_U))
+    acc.G_VO *= inv  # in place: the accumulators belong to this pass
+    if acc.G is not None:
+        acc.G *= inv
     return PassResult(
         n_rows=acc.rows, weight_total=acc.weight, loss=acc.loss * inv, grad_b=acc.grad_b * inv,
-        G_VO=acc.G_VO * inv, Gt_Psi=acc.Gt_Psi * inv, Gt_U=Gt_U, inner=inner,
-        G=None if acc.G is None else acc.G * inv, projections=acc.projections, profile=profile,
+        G_VO=acc.G_VO, Gt_Psi=acc.Gt_Psi * inv, Gt_U=Gt_U, inner=inner,
+        G=acc.G, projections=acc.projections, profile=profile,
     )
 
 
-def _block_fn():
-    return block_products_numpy
+def _pass_functions():
+    """The block function and combine used by :func:`gradient_pass`."""
+    return block_products_numpy, _combine_scipy
 
 
 def gradient_pass(
@@ -325,9 +370,11 @@ def gradient_pass(
             raise InputError(f"{where}: has no rows")
         prof = PassProfile() if profile is True else (profile or None)
         st = _state(request)
-        acc = run_pass(src, _block_fn(), _combine, state=st, backend=backend,
+        block_fn, combine = _pass_functions()
+        acc = run_pass(src, block_fn, combine, state=st, backend=backend,
                        block_rows=block_rows, block_bytes=block_bytes, n_threads=n_threads,
                        profile=prof, progress=progress, desc="gradient pass")
+        acc = combine([acc])  # adds the last pending terms (a one-block pass)
         return _finalize(acc, st, prof, where)
     finally:
         if opened:
