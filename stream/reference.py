@@ -189,7 +189,8 @@ def _standardize(
         bad = np.flatnonzero(~np.isfinite(w) | (w < 0))
         if bad.size:
             raise InputError(
-                f"weights: row {bad[0]} has weight {w[bad[0]]!r}; weights must be finite and >= 0"
+                f"weights: row {bad[0]} has weight {float(w[bad[0]])!r}; "
+                "weights must be finite and >= 0"
             )
     cw = None
     if class_weights is not None:
@@ -199,7 +200,7 @@ def _standardize(
         bad = np.flatnonzero(~np.isfinite(c) | (c < 0))
         if bad.size:
             raise InputError(
-                f"class_weights: entry {bad[0]} is {c[bad[0]]!r}; class weights must be "
+                f"class_weights: entry {bad[0]} is {float(c[bad[0]])!r}; class weights must be "
                 "finite and >= 0"
             )
         if loss == "softmax":
@@ -252,7 +253,7 @@ def _targets_matrix(targets: Any, *, loss: str, n: int, n_outputs: int | None) -
         if bad.size:
             i, j = bad[0]
             raise InputError(
-                f"targets: row {i}, tag {j} is {Y[i, j]!r}; multilabel tags must be 0 or 1"
+                f"targets: row {i}, tag {j} is {float(Y[i, j])!r}; multilabel tags must be 0 or 1"
             )
     return Y
 
