@@ -142,13 +142,7 @@ class Hdf5Backend(StoreBackend):
         ds = self._ds(name)
         out = np.empty((max(0, stop - start),) + ds.shape[1:], dtype=ds.dtype)
         if out.shape[0] and out.size:
-            try:
-                ds.read_direct(out, np.s_[start:stop])
-            except OSError as exc:
-                raise StoreError(
-                    f"{self.path}: dataset {name!r} rows {start}..{stop} cannot be decoded "
-                    f"({exc}); the store is damaged, re-create it"
-                ) from None
+            ds.read_direct(out, np.s_[start:stop])
         return out
 
     def shape(self, name: str) -> tuple[int, ...]:

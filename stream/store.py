@@ -460,8 +460,8 @@ class StoreWriter:
             pos = int(np.flatnonzero(~finite)[0])
             row = int(np.searchsorted(ip, pos, side="right")) - 1 + first
             raise InputError(
-                f"{where}: row {row}, column {int(idx[pos])}: value {val[pos]!r} is not finite "
-                "as float32; remove it or fix the source"
+                f"{where}: row {row}, column {int(idx[pos])}: value {float(val[pos])!r} is not "
+                "finite as float32; remove it or fix the source"
             )
         self._a["indptr"].append(ip[1:] + self._nnz)
         self._a["indices"].append(idx)
@@ -574,7 +574,7 @@ class StoreWriter:
         if not finite.all():
             r, c = (int(v[0]) for v in np.nonzero(~finite))
             raise InputError(
-                f"{self._where}: row {app.rows + r}, output {c}: target value {val[r, c]!r} "
+                f"{self._where}: row {app.rows + r}, output {c}: target value {float(val[r, c])!r} "
                 "is not finite as float32; fix the target"
             )
         app.append(val32)
@@ -608,7 +608,7 @@ class StoreWriter:
         if bad.any():
             pos = int(np.flatnonzero(bad)[0])
             raise InputError(
-                f"{self._where}: row {app.rows + pos}: weight {w[pos]!r} is invalid; "
+                f"{self._where}: row {app.rows + pos}: weight {float(w[pos])!r} is invalid; "
                 "weights must be finite and >= 0"
             )
         app.append(w32)
@@ -891,6 +891,22 @@ class _Reader:
         self._tail_idx = -1
         self._tail: np.ndarray | None = None
 
+    def fetch(self, c0: int, c1: int) -> np.ndarray:
+        """Decode chunks ``c0:c1`` (a damaged chunk raises ``StoreError``)."""
+        try:
+            return self.be.read(self.name, c0 * self.chunk, min(c1 * self.chunk, self.n))
+        except StoreError:
+            raise
+        except Exception as exc:  # codec and file errors of either backend
+            if c1 - c0 > 1:  # find the damaged chunk, so the message names one segment
+                for j in range(c0, c1):
+                    self.fetch(j, j + 1)
+            msg = " ".join(str(exc).split())[:160]
+            raise StoreError(
+                f"{self.path}: array {self.name!r} segment {c0} cannot be decoded "
+                f"({type(exc).__name__}: {msg}); the store is damaged, re-create it"
+            ) from None
+
     def check_segment(self, j: int, values: np.ndarray) -> None:
         got = segment_checksum(values)
         if got != self.sums[j]:
@@ -915,7 +931,7 @@ class _Reader:
             first = c0 + 1
         if first < c1:
             t = time.perf_counter()
-            fresh = self.be.read(self.name, first * c, min(c1 * c, self.n))
+            fresh = self.fetch(first, c1)
             t1 = time.perf_counter()
             io["read_s"] += t1 - t
             nbytes = fresh.shape[0] * self.row_bytes
@@ -942,7 +958,7 @@ class _Reader:
         step = self.chunk * piece_chunks
         for start in range(0, self.n, step):
             stop = min(self.n, start + step)
-            vals = self.be.read(self.name, start, stop)
+            vals = self.fetch(start // self.chunk, -(-stop // self.chunk))
             for j in range(start // self.chunk, -(-stop // self.chunk)):
                 off = j * self.chunk - start
                 self.check_segment(j, vals[off : off + self.chunk])
