@@ -38,6 +38,7 @@ from stream.errors import InputError
 from .threads import kernel_guard
 
 _N_CHUNKS = 64
+_NO_WEIGHTS = np.zeros(0)
 
 
 @njit(nogil=True, cache=True)
@@ -67,11 +68,12 @@ def softmax_residual_kernel(Z, y, w, out_loss, out_gradb):  # pragma: no cover -
     ----------
     Z : (n_b, k) float64, scores in, residual out
     y : (n_b,) int32 class ids in ``[0, k)``
-    w : (n_b,) float32/float64 or None
+    w : (n_b,) float64, or empty for unit weights
     out_loss : (1,) float64, accumulated
     out_gradb : (k,) float64, accumulated
     """
     n, k = Z.shape
+    has_w = w.shape[0] > 0
     nch = _n_chunks(n)
     part = np.zeros((nch, k + 1))
     bad = np.full(nch, -1, dtype=np.int64)
@@ -84,9 +86,7 @@ def softmax_residual_kernel(Z, y, w, out_loss, out_gradb):  # pragma: no cover -
                 for j in range(k):
                     Z[i, j] = 0.0
                 continue
-            wi = 1.0
-            if w is not None:
-                wi = np.float64(w[i])
+            wi = w[i] if has_w else 1.0
             mx = Z[i, 0]
             for j in range(1, k):
                 if Z[i, j] > mx:
@@ -111,6 +111,7 @@ def softmax_residual_kernel(Z, y, w, out_loss, out_gradb):  # pragma: no cover -
 def softmax_loss_only_kernel(Z, y, w, out_loss):  # pragma: no cover - compiled
     """Weighted softmax loss sum, ``Z`` unchanged. Returns first bad row or -1."""
     n, k = Z.shape
+    has_w = w.shape[0] > 0
     nch = _n_chunks(n)
     part = np.zeros((nch, 1))
     bad = np.full(nch, -1, dtype=np.int64)
@@ -121,9 +122,7 @@ def softmax_loss_only_kernel(Z, y, w, out_loss):  # pragma: no cover - compiled
                 if bad[c] < 0:
                     bad[c] = i
                 continue
-            wi = 1.0
-            if w is not None:
-                wi = np.float64(w[i])
+            wi = w[i] if has_w else 1.0
             mx = Z[i, 0]
             for j in range(1, k):
                 if Z[i, j] > mx:
@@ -139,14 +138,13 @@ def softmax_loss_only_kernel(Z, y, w, out_loss):  # pragma: no cover - compiled
 def squared_residual_kernel(Z, Y, w, out_loss, out_gradb):  # pragma: no cover - compiled
     """Half squared error; ``Y`` (n_b, k) float32/float64. Returns -1."""
     n, k = Z.shape
+    has_w = w.shape[0] > 0
     nch = _n_chunks(n)
     part = np.zeros((nch, k + 1))
     bad = np.full(nch, -1, dtype=np.int64)
     for c in prange(nch):
         for i in range(n * c // nch, n * (c + 1) // nch):
-            wi = 1.0
-            if w is not None:
-                wi = np.float64(w[i])
+            wi = w[i] if has_w else 1.0
             acc = 0.0
             for j in range(k):
                 r = Z[i, j] - np.float64(Y[i, j])
@@ -161,14 +159,13 @@ def squared_residual_kernel(Z, Y, w, out_loss, out_gradb):  # pragma: no cover -
 def squared_loss_only_kernel(Z, Y, w, out_loss):  # pragma: no cover - compiled
     """Weighted half squared error sum, ``Z`` unchanged. Returns -1."""
     n, k = Z.shape
+    has_w = w.shape[0] > 0
     nch = _n_chunks(n)
     part = np.zeros((nch, 1))
     bad = np.full(nch, -1, dtype=np.int64)
     for c in prange(nch):
         for i in range(n * c // nch, n * (c + 1) // nch):
-            wi = 1.0
-            if w is not None:
-                wi = np.float64(w[i])
+            wi = w[i] if has_w else 1.0
             acc = 0.0
             for j in range(k):
                 r = Z[i, j] - np.float64(Y[i, j])
@@ -198,6 +195,7 @@ def multilabel_residual_kernel(
     ``tag_indices[tag_indptr[i]:tag_indptr[i+1]]`` (unique ids in ``[0, k)``).
     Returns first bad row or -1."""
     n, k = Z.shape
+    has_w = w.shape[0] > 0
     nch = _n_chunks(n)
     part = np.zeros((nch, k + 1))
     bad = np.full(nch, -1, dtype=np.int64)
@@ -209,9 +207,7 @@ def multilabel_residual_kernel(
                 for j in range(k):
                     Z[i, j] = 0.0
                 continue
-            wi = 1.0
-            if w is not None:
-                wi = np.float64(w[i])
+            wi = w[i] if has_w else 1.0
             acc = 0.0
             for q in range(tag_indptr[i], tag_indptr[i + 1]):
                 acc -= Z[i, tag_indices[q]]
@@ -237,6 +233,7 @@ def multilabel_loss_only_kernel(
 ):  # pragma: no cover - compiled
     """Weighted multilabel loss sum, ``Z`` unchanged. Returns first bad row or -1."""
     n, k = Z.shape
+    has_w = w.shape[0] > 0
     nch = _n_chunks(n)
     part = np.zeros((nch, 1))
     bad = np.full(nch, -1, dtype=np.int64)
@@ -246,9 +243,7 @@ def multilabel_loss_only_kernel(
                 if bad[c] < 0:
                     bad[c] = i
                 continue
-            wi = 1.0
-            if w is not None:
-                wi = np.float64(w[i])
+            wi = w[i] if has_w else 1.0
             acc = 0.0
             for q in range(tag_indptr[i], tag_indptr[i + 1]):
                 acc -= Z[i, tag_indices[q]]
@@ -261,9 +256,10 @@ def multilabel_loss_only_kernel(
 
 @njit(nogil=True, cache=True, parallel=True)
 def fold_class_weights_kernel(y, class_weights, w, out):  # pragma: no cover - compiled
-    """``out[i] = w[i] * class_weights[y[i]]`` (``w`` may be None); -1 or first bad row."""
+    """``out[i] = w[i] * class_weights[y[i]]`` (empty ``w``: ones); -1 or first bad row."""
     n = y.shape[0]
     k = class_weights.shape[0]
+    has_w = w.shape[0] > 0
     first = n
     for i in prange(n):
         yi = y[i]
@@ -271,9 +267,7 @@ def fold_class_weights_kernel(y, class_weights, w, out):  # pragma: no cover - c
             out[i] = 0.0
             first = min(first, i)
             continue
-        wi = 1.0
-        if w is not None:
-            wi = np.float64(w[i])
+        wi = w[i] if has_w else 1.0
         out[i] = wi * class_weights[yi]
     return -1 if first == n else first
 
@@ -293,14 +287,21 @@ def _check_scores(Z: np.ndarray, where: str, *, writable: bool) -> tuple[int, in
     return Z.shape
 
 
-def _check_weights(w: np.ndarray | None, n: int, where: str) -> None:
+def _check_weights(w: np.ndarray | None, n: int, where: str) -> np.ndarray | None:
+    """Check the row weights; return them as float64 (one compiled variant)."""
     if w is None:
-        return
+        return None
     if not isinstance(w, np.ndarray) or w.ndim != 1 or w.dtype.kind != "f" or w.shape[0] != n:
         raise InputError(
             f"{where}: weights must be a 1-D float array of {n} values (one per row), got "
             f"{getattr(w, 'dtype', type(w).__name__)} {getattr(w, 'shape', None)}"
         )
+    return np.asarray(w, dtype=np.float64)
+
+
+def _kernel_weights(w: np.ndarray | None) -> np.ndarray:
+    """Kernels take a float64 weight array; an empty one means unit weights."""
+    return _NO_WEIGHTS if w is None else w
 
 
 def _check_acc(out_loss: np.ndarray, out_gradb: np.ndarray | None, k: int, where: str) -> None:
@@ -316,12 +317,16 @@ def _check_acc(out_loss: np.ndarray, out_gradb: np.ndarray | None, k: int, where
         raise InputError(f"{where}: out_gradb must be a float64 array of shape ({k},)")
 
 
-def _check_classes(y: np.ndarray, n: int, where: str) -> None:
+def _check_classes(y: np.ndarray, n: int, where: str) -> np.ndarray:
+    """Check the class ids; return them as int64 (one compiled variant)."""
     if not isinstance(y, np.ndarray) or y.ndim != 1 or y.dtype.kind not in "iu" or y.shape[0] != n:
         raise InputError(
             f"{where}: class ids must be a 1-D integer array of {n} values, got "
             f"{getattr(y, 'dtype', type(y).__name__)} {getattr(y, 'shape', None)}"
         )
+    if y.dtype == np.uint64 and y.size and int(y.max()) > np.iinfo(np.int64).max:
+        raise InputError(f"{where}: a class id does not fit in int64")
+    return np.asarray(y, dtype=np.int64)
 
 
 def _check_values(Y: np.ndarray, shape: tuple[int, int], where: str) -> None:
@@ -332,7 +337,10 @@ def _check_values(Y: np.ndarray, shape: tuple[int, int], where: str) -> None:
         )
 
 
-def _check_tags(tag_indptr: np.ndarray, tag_indices: np.ndarray, n: int, where: str) -> None:
+def _check_tags(
+    tag_indptr: np.ndarray, tag_indices: np.ndarray, n: int, where: str
+) -> tuple[np.ndarray, np.ndarray]:
+    """Check the tag CSR arrays; return them as int64 (one compiled variant)."""
     for name, arr in (("tag_indptr", tag_indptr), ("tag_indices", tag_indices)):
         if not isinstance(arr, np.ndarray) or arr.ndim != 1 or arr.dtype.kind not in "iu":
             raise InputError(f"{where}: {name} must be a 1-D integer array")
@@ -341,6 +349,7 @@ def _check_tags(tag_indptr: np.ndarray, tag_indices: np.ndarray, n: int, where: 
             f"{where}: tag_indptr has {tag_indptr.shape[0]} pointers for {n} rows; "
             "it needs one more pointer than rows"
         )
+    return np.asarray(tag_indptr, dtype=np.int64), np.asarray(tag_indices, dtype=np.int64)
 
 
 def _bad_class(y, bad: int, k: int, row_offset: int, where: str) -> None:
@@ -392,13 +401,13 @@ def softmax_residual(
     Z : (n_b, k) float64, the residual
     """
     n, k = _check_scores(Z, where, writable=True)
-    _check_classes(y, n, where)
-    _check_weights(w, n, where)
+    y = _check_classes(y, n, where)
+    w = _check_weights(w, n, where)
     _check_acc(out_loss, out_gradb, k, where)
     if n == 0:
         return Z
     with kernel_guard():
-        bad = softmax_residual_kernel(Z, y, w, out_loss, out_gradb)
+        bad = softmax_residual_kernel(Z, y, _kernel_weights(w), out_loss, out_gradb)
     _bad_class(y, bad, k, row_offset, where)
     return Z
 
@@ -414,12 +423,12 @@ def softmax_loss_only(
 ) -> float:
     """Accumulate the weighted softmax loss sum into ``out_loss``; return it."""
     n, k = _check_scores(Z, where, writable=False)
-    _check_classes(y, n, where)
-    _check_weights(w, n, where)
+    y = _check_classes(y, n, where)
+    w = _check_weights(w, n, where)
     _check_acc(out_loss, None, k, where)
     if n:
         with kernel_guard():
-            bad = softmax_loss_only_kernel(Z, y, w, out_loss)
+            bad = softmax_loss_only_kernel(Z, y, _kernel_weights(w), out_loss)
         _bad_class(y, bad, k, row_offset, where)
     return float(out_loss[0])
 
@@ -450,11 +459,11 @@ def squared_residual(
     """
     n, k = _check_scores(Z, where, writable=True)
     _check_values(Y, (n, k), where)
-    _check_weights(w, n, where)
+    w = _check_weights(w, n, where)
     _check_acc(out_loss, out_gradb, k, where)
     if n:
         with kernel_guard():
-            squared_residual_kernel(Z, Y, w, out_loss, out_gradb)
+            squared_residual_kernel(Z, Y, _kernel_weights(w), out_loss, out_gradb)
     return Z
 
 
@@ -470,11 +479,11 @@ def squared_loss_only(
     """Accumulate the weighted half squared error sum into ``out_loss``; return it."""
     n, k = _check_scores(Z, where, writable=False)
     _check_values(Y, (n, k), where)
-    _check_weights(w, n, where)
+    w = _check_weights(w, n, where)
     _check_acc(out_loss, None, k, where)
     if n:
         with kernel_guard():
-            squared_loss_only_kernel(Z, Y, w, out_loss)
+            squared_loss_only_kernel(Z, Y, _kernel_weights(w), out_loss)
     return float(out_loss[0])
 
 
@@ -507,12 +516,14 @@ def multilabel_residual(
     Z : (n_b, k) float64, the residual
     """
     n, k = _check_scores(Z, where, writable=True)
-    _check_tags(tag_indptr, tag_indices, n, where)
-    _check_weights(w, n, where)
+    tag_indptr, tag_indices = _check_tags(tag_indptr, tag_indices, n, where)
+    w = _check_weights(w, n, where)
     _check_acc(out_loss, out_gradb, k, where)
     if n:
         with kernel_guard():
-            bad = multilabel_residual_kernel(Z, tag_indptr, tag_indices, w, out_loss, out_gradb)
+            bad = multilabel_residual_kernel(
+                Z, tag_indptr, tag_indices, _kernel_weights(w), out_loss, out_gradb
+            )
         _bad_tags(bad, k, row_offset, where)
     return Z
 
@@ -529,12 +540,14 @@ def multilabel_loss_only(
 ) -> float:
     """Accumulate the weighted multilabel loss sum into ``out_loss``; return it."""
     n, k = _check_scores(Z, where, writable=False)
-    _check_tags(tag_indptr, tag_indices, n, where)
-    _check_weights(w, n, where)
+    tag_indptr, tag_indices = _check_tags(tag_indptr, tag_indices, n, where)
+    w = _check_weights(w, n, where)
     _check_acc(out_loss, None, k, where)
     if n:
         with kernel_guard():
-            bad = multilabel_loss_only_kernel(Z, tag_indptr, tag_indices, w, out_loss)
+            bad = multilabel_loss_only_kernel(
+                Z, tag_indptr, tag_indices, _kernel_weights(w), out_loss
+            )
         _bad_tags(bad, k, row_offset, where)
     return float(out_loss[0])
 
@@ -562,8 +575,8 @@ def fold_class_weights(
     out : (n_b,) float64
     """
     n = y.shape[0] if isinstance(y, np.ndarray) else -1
-    _check_classes(y, n, where)
-    _check_weights(w, n, where)
+    y = _check_classes(y, n, where)
+    w = _check_weights(w, n, where)
     cw = np.asarray(class_weights, dtype=np.float64)
     if cw.ndim != 1 or not np.all(np.isfinite(cw)) or np.any(cw < 0):
         raise InputError(
@@ -575,6 +588,6 @@ def fold_class_weights(
         raise InputError(f"{where}: out must be a float64 array of shape ({n},)")
     if n:
         with kernel_guard():
-            bad = fold_class_weights_kernel(y, cw, w, out)
+            bad = fold_class_weights_kernel(y, cw, _kernel_weights(w), out)
         _bad_class(y, bad, cw.shape[0], row_offset, where)
     return out

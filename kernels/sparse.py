@@ -220,6 +220,7 @@ def csr_matmul_dense(
     """
     n = _check_csr(indptr, indices, data, where)
     _check_dense("B", B, None, where)
+    B = np.asarray(B, dtype=np.float64)  # one compiled variant for the dense operand
     _check_out(out, (n, B.shape[1]), where)
     if n == 0 or B.shape[1] == 0:
         out[...] = 0.0
@@ -271,6 +272,7 @@ def csr_t_matmul_accumulate(
     """
     n = _check_csr(indptr, indices, data, where)
     _check_dense("D", D, n, where)
+    D = np.asarray(D, dtype=np.float64)
     if not isinstance(out, np.ndarray) or out.ndim != 2 or out.shape[1] != D.shape[1]:
         raise InputError(
             f"{where}: out must be (d, {D.shape[1]}) to accumulate X^T @ D, got "
