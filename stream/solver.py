@@ -36,16 +36,14 @@ from typing import Any
 import numpy as np
 
 from .errors import CheckpointError, ConfigError
+from .power import orth_against
 from .refine import refine
 
 __all__ = ["SolverConfig", "SolverState", "GreedySolver", "SolverResult",
-           "orth_rank_revealing", "orth_against", "sigma1_lower_bound", "gap_estimate"]
+           "sigma1_lower_bound", "gap_estimate"]
 
 PHASES = ("lam_max", "fit", "certify", "done")
 STATE_VERSION = 1
-# Relative singular-value floor of the rank-revealing orthonormalization
-# (common practice, no source: well above float64 rounding of a QR, ~1e-16 * size).
-_ORTH_RTOL = 1e-10
 
 
 # ---------------------------------------------------------------- configuration
@@ -281,55 +279,6 @@ def _generator(state: dict) -> np.random.Generator:
 
 
 # ---------------------------------------------------------------- linear algebra
-
-
-def orth_rank_revealing(M: np.ndarray, *, rtol: float = _ORTH_RTOL,
-                        scale: float | None = None) -> np.ndarray:
-    """Orthonormal basis of the range of ``M``, dropping dependent columns.
-
-    Householder QR then the SVD of the small triangular factor: directions
-    whose singular value is below ``rtol * scale`` (default ``scale`` = largest
-    singular value) are dropped, so a rank-deficient block never returns the
-    spurious directions a plain QR would (which make a Rayleigh-Ritz estimate
-    overshoot).
-
-    Parameters
-    ----------
-    M : ndarray, shape (m, c)
-
-    Returns
-    -------
-    ndarray, shape (m, c') with c' <= min(m, c), ordered by singular value.
-    """
-    m, c = M.shape
-    if c == 0 or m == 0:
-        return np.zeros((m, 0))
-    Q, R = np.linalg.qr(M)
-    u, sv, _ = np.linalg.svd(R)
-    ref = sv[0] if scale is None else scale
-    keep = sv > rtol * ref if ref > 0 else np.zeros(sv.shape, dtype=bool)
-    return Q @ u[:, keep]
-
-
-def orth_against(M: np.ndarray, B: np.ndarray, *, rtol: float = _ORTH_RTOL) -> np.ndarray:
-    """Orthonormal basis of ``(I - B B^T) M`` (B orthonormal), dependent columns dropped.
-
-    Projected twice (classical Gram-Schmidt with reorthogonalization, "twice is
-    enough", Giraud et al. 2005); a column mostly inside ``range(B)`` is dropped
-    relative to the norm of ``M`` itself.
-    """
-    if M.shape[1] == 0:
-        return np.zeros((M.shape[0], 0))
-    scale = float(np.linalg.norm(M, 2))
-    P = M
-    if B.shape[1]:
-        P = M - B @ (B.T @ M)
-        P = P - B @ (B.T @ P)
-    Q = orth_rank_revealing(P, rtol=rtol, scale=scale)
-    if B.shape[1] and Q.shape[1]:
-        Q = Q - B @ (B.T @ Q)
-        Q = orth_rank_revealing(Q, rtol=0.5)
-    return Q
 
 
 def _fill(M: np.ndarray, B: np.ndarray, want: int, rng: np.random.Generator,
