@@ -41,20 +41,70 @@ __all__ = [
 ]
 
 
-
 # section names are "department/item" slugs (no spaces: one label per line, one token)
 DEPARTMENTS = (
-    "fasteners", "plumbing", "electrical", "garden", "paint", "hand-tools", "power-tools",
-    "lumber", "lighting", "storage", "safety", "flooring", "heating", "doors", "adhesives",
-    "cleaning", "outdoor", "kitchen-fittings", "bath-fittings", "ladders",
+    "fasteners",
+    "plumbing",
+    "electrical",
+    "garden",
+    "paint",
+    "hand-tools",
+    "power-tools",
+    "lumber",
+    "lighting",
+    "storage",
+    "safety",
+    "flooring",
+    "heating",
+    "doors",
+    "adhesives",
+    "cleaning",
+    "outdoor",
+    "kitchen-fittings",
+    "bath-fittings",
+    "ladders",
 )
 ITEMS = (
-    "brass-couplers", "steel-brackets", "hex-bolts", "wood-screws", "rubber-seals", "copper-pipe",
-    "wall-plugs", "hinges", "spring-clips", "cable-ties", "rollers", "brushes", "sanding-pads",
-    "drill-bits", "saw-blades", "clamps", "hooks", "chains", "filters", "valves", "switches",
-    "sockets", "lamps", "shelving", "bins", "gloves", "goggles", "tiles", "mats", "heaters",
-    "thermostats", "handles", "locks", "sealant", "glue-sticks", "sponges", "hoses", "planters",
-    "taps", "step-stools",
+    "brass-couplers",
+    "steel-brackets",
+    "hex-bolts",
+    "wood-screws",
+    "rubber-seals",
+    "copper-pipe",
+    "wall-plugs",
+    "hinges",
+    "spring-clips",
+    "cable-ties",
+    "rollers",
+    "brushes",
+    "sanding-pads",
+    "drill-bits",
+    "saw-blades",
+    "clamps",
+    "hooks",
+    "chains",
+    "filters",
+    "valves",
+    "switches",
+    "sockets",
+    "lamps",
+    "shelving",
+    "bins",
+    "gloves",
+    "goggles",
+    "tiles",
+    "mats",
+    "heaters",
+    "thermostats",
+    "handles",
+    "locks",
+    "sealant",
+    "glue-sticks",
+    "sponges",
+    "hoses",
+    "planters",
+    "taps",
+    "step-stools",
 )
 
 
@@ -71,10 +121,12 @@ class DemoSize:
 
 
 SIZES: dict[str, DemoSize] = {
-    "small": DemoSize(n_rows=3000, n_features=2048, n_sections=120, rank=6, vocab=3000,
-                      mean_words=24.0),
-    "medium": DemoSize(n_rows=40000, n_features=16384, n_sections=300, rank=10, vocab=20000,
-                       mean_words=30.0),
+    "small": DemoSize(
+        n_rows=3000, n_features=2048, n_sections=120, rank=6, vocab=3000, mean_words=24.0
+    ),
+    "medium": DemoSize(
+        n_rows=40000, n_features=16384, n_sections=300, rank=10, vocab=20000, mean_words=30.0
+    ),
 }
 
 
@@ -183,8 +235,13 @@ def _write_matrix_market(path: Path, X: sp.csr_matrix) -> None:
     import scipy.io
 
     buf = io.BytesIO()
-    scipy.io.mmwrite(buf, X.tocoo(), field="real", precision=8,
-                     comment=" invented demo data: Quarrymoss Hardware product descriptions")
+    scipy.io.mmwrite(
+        buf,
+        X.tocoo(),
+        field="real",
+        precision=8,
+        comment=" invented demo data: Quarrymoss Hardware product descriptions",
+    )
     atomic_write_bytes(path, buf.getvalue())
 
 
@@ -243,8 +300,13 @@ class _Demo:
         self.size = size
         self.seed = seed
         self.quiet = quiet
-        self.made: dict[str, Any] = {"size": size, "seed": seed, "complete": False,
-                                     "steps": {}, "skipped": {}}
+        self.made: dict[str, Any] = {
+            "size": size,
+            "seed": seed,
+            "complete": False,
+            "steps": {},
+            "skipped": {},
+        }
         self.t0 = time.perf_counter()
 
     def say(self, text: str) -> None:
@@ -277,8 +339,10 @@ def _prepare_out(out: Path, *, overwrite: bool) -> None:
 def _step_data(demo: _Demo) -> None:
     paths = make_demo_data(demo.out / "data", size=demo.size, seed=demo.seed)
     demo.paths = paths
-    demo.say(f"  {paths.n_rows} product descriptions, {paths.n_features} hashed word features, "
-             f"{paths.n_sections} catalogue sections -> {paths.matrix}")
+    demo.say(
+        f"  {paths.n_rows} product descriptions, {paths.n_features} hashed word features, "
+        f"{paths.n_sections} catalogue sections -> {paths.matrix}"
+    )
     demo.record("data", **{k: str(v) if isinstance(v, Path) else v for k, v in paths.items()})
 
 
@@ -288,8 +352,9 @@ def _step_ingest(demo: _Demo) -> None:
     store = demo.out / "catalogue.zarr"
     summary = ingest(demo.paths.matrix, store, labels=demo.paths.labels, progress=not demo.quiet)
     demo.store = store
-    demo.say(f"  store {store}: {summary.n_rows} rows x {summary.n_cols} columns, "
-             f"{summary.nnz} entries")
+    demo.say(
+        f"  store {store}: {summary.n_rows} rows x {summary.n_cols} columns, {summary.nnz} entries"
+    )
     demo.record("ingest", store=str(store), n_rows=summary.n_rows, nnz=summary.nnz)
 
 
@@ -299,17 +364,125 @@ def _step_split(demo: _Demo) -> None:
     train, hold = demo.out / "train.zarr", demo.out / "holdout.zarr"
     info = split_store(demo.store, train, hold, holdout=0.2, seed=demo.seed)
     demo.train_store, demo.holdout_store = train, hold
-    demo.say(f"  {info.get('train_rows')} training rows -> {train}, "
-             f"{info.get('holdout_rows')} holdout rows -> {hold}")
-    demo.record("split", train=str(train), holdout=str(hold), train_rows=info.get("train_rows"),
-                holdout_rows=info.get("holdout_rows"))
+    demo.say(
+        f"  {info.get('train_rows')} training rows -> {train}, "
+        f"{info.get('holdout_rows')} holdout rows -> {hold}"
+    )
+    demo.record(
+        "split",
+        train=str(train),
+        holdout=str(hold),
+        train_rows=info.get("train_rows"),
+        holdout_rows=info.get("holdout_rows"),
+    )
 
+
+class _Skip(Exception):
+    """A step cannot run because an earlier one was skipped."""
+
+
+def _need(demo: _Demo, attr: str, step: str) -> Any:
+    value = getattr(demo, attr, None)
+    if value is None:
+        raise _Skip(f"needs the output of the {step} step")
+    return value
+
+
+def _step_train(demo: _Demo) -> None:
+    from .train import train
+
+    train_store = _need(demo, "train_store", "split")
+    run = demo.out / "run"
+    settings = TRAIN_SETTINGS[demo.size]
+    result = train(train_store, out=run, seed=demo.seed, progress=not demo.quiet, **settings)
+    demo.run_dir = run
+    demo.model_dir = run / "model"
+    info = {k: getattr(result, k, None) for k in ("lam", "objective", "gap", "rank", "passes",
+                                                    "status")}
+    info = {k: (float(v) if isinstance(v, (np.floating, float)) else v) for k, v in info.items()}
+    demo.say("  " + ", ".join(f"{k} {v:.4g}" if isinstance(v, float) else f"{k} {v}"
+                              for k, v in info.items() if v is not None) + f" -> {run}")
+    demo.record("train", run=str(run), model=str(run / "model"), **info)
+
+
+def _step_evaluate(demo: _Demo) -> None:
+    from .evaluate import evaluate
+
+    model = _need(demo, "model_dir", "train")
+    hold = _need(demo, "holdout_store", "split")
+    res = evaluate(model, hold, top_k=5, progress=not demo.quiet)
+    atomic_write_json(demo.out / "holdout_metrics.json", res)
+    demo.metrics = res
+    demo.say(f"  holdout accuracy {res['accuracy']:.3f}, top-5 accuracy "
+             f"{res['top_k_accuracy']:.3f}, macro-F1 {res['macro_f1']:.3f}, log-loss "
+             f"{res['log_loss']:.3f} -> {demo.out / 'holdout_metrics.json'}")
+    demo.record("evaluate", metrics=str(demo.out / "holdout_metrics.json"),
+                accuracy=res["accuracy"], top_k_accuracy=res["top_k_accuracy"],
+                macro_f1=res["macro_f1"], log_loss=res["log_loss"])
+
+
+def _step_predict(demo: _Demo) -> None:
+    from .predict import predict_to_file
+
+    model = _need(demo, "model_dir", "train")
+    hold = _need(demo, "holdout_store", "split")
+    out = demo.out / "holdout_predictions.csv"
+    info = predict_to_file(model, hold, out, top_k=5, proba=True, progress=not demo.quiet)
+    demo.say(f"  top-5 sections with probabilities for {info['n_rows']} rows -> {out}")
+    demo.record("predict", predictions=str(out), n_rows=info["n_rows"])
+
+
+def _step_report(demo: _Demo) -> None:
+    from .report import write_report
+
+    run = _need(demo, "run_dir", "train")
+    page = write_report(run)
+    demo.say(f"  {page}")
+    demo.record("report", report=str(page))
+
+
+#: A short regularization path with validation and checkpoints, per size.
+TRAIN_SETTINGS: dict[str, dict[str, Any]] = {
+    "small": {"loss": "softmax", "path": 4, "lam_ratio": 0.02, "validation": 0.15,
+              "max_passes": 25, "tol": 1e-3, "checkpoint_passes": 5},
+    "medium": {"loss": "softmax", "path": 6, "lam_ratio": 0.01, "validation": 0.1,
+               "max_passes": 40, "tol": 1e-3, "checkpoint_passes": 5},
+}
 
 STEPS: tuple[tuple[str, str, Callable[[_Demo], None]], ...] = (
     ("data", "generating the invented catalogue", _step_data),
     ("ingest", "ingesting the Matrix Market file into a store", _step_ingest),
     ("split", "holding out 20% of the rows (stratified by section)", _step_split),
+    ("train", "training a short regularization path (validation, checkpoints)", _step_train),
+    ("evaluate", "evaluating the model on the holdout", _step_evaluate),
+    ("predict", "predicting the holdout's top-5 sections", _step_predict),
+    ("report", "writing the run report", _step_report),
 )
+
+
+def _next_steps(demo: _Demo) -> str:
+    o = demo.out
+    lines = [
+        "",
+        f"done in {time.perf_counter() - demo.t0:.1f} s; everything is under {o}/:",
+        f"  data/             the invented source files ({o / 'data' / 'catalogue.mtx'}, "
+        "sections.txt)",
+        "  catalogue.zarr    the ingested store; train.zarr / holdout.zarr its split",
+        "  run/              the training run: history.jsonl, checkpoints/, model/",
+        "  run/report/       report.html with the plots",
+        "  holdout_metrics.json, holdout_predictions.csv",
+        "",
+        "what to run next:",
+        f"  ranktide inspect {o / 'train.zarr'}",
+        f"  ranktide evaluate {o / 'run' / 'model'} {o / 'holdout.zarr'} --top 10",
+        f"  ranktide predict {o / 'run' / 'model'} {o / 'holdout.zarr'} --out preds.csv --proba",
+        f"  ranktide profile {o / 'train.zarr'} --model {o / 'run' / 'model'} --out profile",
+        f"  ranktide report {o / 'run'}   (open {o / 'run' / 'report' / 'report.html'})",
+    ]
+    if demo.made["skipped"]:
+        lines += ["", "skipped steps: " + "; ".join(f"{k} ({v})" for k, v in
+                                                     demo.made["skipped"].items())]
+    return "\n".join(lines)
 
 
 def run_demo(
@@ -357,8 +530,12 @@ def run_demo(
         except ModuleNotFoundError as exc:  # a module not in yet: say so and go on
             demo.skip(name, f"module {exc.name} is not available")
             continue
+        except _Skip as exc:
+            demo.skip(name, str(exc))
+            continue
         demo.made["steps"][name]["seconds"] = round(time.perf_counter() - t, 3)
     demo.made["complete"] = not demo.made["skipped"]
     demo.made["seconds"] = round(time.perf_counter() - demo.t0, 3)
     atomic_write_json(out / MARKER, demo.made)
+    demo.say(_next_steps(demo))
     return demo.made
