@@ -1,0 +1,214 @@
+"""Block power iteration, rank-revealing orthonormalization, subspace update.
+
+References: ``numpy.linalg.svd`` (dense singular values/vectors),
+``scipy.sparse.linalg.svds`` (sparse top singular values),
+``scipy.linalg.subspace_angles`` (principal angles between subspaces).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from scipy.linalg import subspace_angles
+from scipy.sparse.linalg import svds
+
+from stream.errors import ConfigError
+from stream.power import orth_against, orth_rank_revealing, subspace_update, top_singular_pairs
+
+
+def _with_spectrum(m, n, sv, seed):
+    """m x n matrix with singular values ``sv`` (padded with a decaying tail)."""
+    rng = np.random.default_rng(seed)
+    U = np.linalg.qr(rng.standard_normal((m, n)))[0]
+    V = np.linalg.qr(rng.standard_normal((n, n)))[0]
+    s = np.concatenate([sv, np.linspace(0.5, 0.01, n - len(sv))])
+    return (U * s) @ V.T
+
+
+def _check_pairs(res, G, t, *, tol_sigma, tol_angle):
+    Ur, S, Vt = np.linalg.svd(G, full_matrices=False)  # reference: numpy.linalg.svd
+    np.testing.assert_allclose(res.sigma, S[:t], rtol=tol_sigma)
+    assert np.all(res.sigma <= S[:t] * (1 + 1e-12))  # Rayleigh–Ritz values are lower bounds
+    # reference: scipy.linalg.subspace_angles between found and true top-t subspaces
+    assert np.max(subspace_angles(res.U, Ur[:, :t])) < tol_angle
+    assert np.max(subspace_angles(res.V, Vt[:t].T)) < tol_angle
+    np.testing.assert_allclose(res.U.T @ res.U, np.eye(t), atol=1e-12)
+    np.testing.assert_allclose(res.V.T @ res.V, np.eye(t), atol=1e-12)
+    # the reported residuals are the true ones
+    np.testing.assert_allclose(res.residual_left,
+                               np.linalg.norm(G @ res.V - res.U * res.sigma, axis=0),
+                               rtol=1e-6, atol=1e-12)
+
+
+def test_dense_top_pairs_match_numpy_svd():
+    G = _with_spectrum(200, 60, [9.0, 6.0, 4.0, 2.0], seed=0)
+    res = top_singular_pairs(G, n_pairs=3, oversample=3, tol=1e-10, seed=1)
+    assert res.converged
+    assert np.max(res.residual_left) <= 1e-10 * res.sigma1
+    _check_pairs(res, G, 3, tol_sigma=1e-12, tol_angle=1e-8)
+
+
+def test_clustered_top_values():
+    G = _with_spectrum(300, 80, [10.0, 9.99, 9.98, 5.0], seed=2)
+    res = top_singular_pairs(G, n_pairs=3, oversample=4, tol=1e-9, seed=3, max_iter=300)
+    assert res.converged
+    # clustered values: individual vectors are ill-determined, the subspace is not
+    _check_pairs(res, G, 3, tol_sigma=1e-10, tol_angle=1e-6)
+
+
+def test_repeated_top_value():
+    G = _with_spectrum(150, 50, [5.0, 5.0, 5.0, 1.0], seed=4)
+    res = top_singular_pairs(G, n_pairs=2, oversample=3, tol=1e-10, seed=5)
+    Ur, S, Vt = np.linalg.svd(G)  # reference: numpy.linalg.svd
+    np.testing.assert_allclose(res.sigma, [5.0, 5.0], rtol=1e-10)
+    # found 2-D subspace lies inside the (repeated) 3-D top subspace
+    assert np.max(subspace_angles(res.V, Vt[:3].T)) < 1e-6
+    assert np.max(subspace_angles(res.U, Ur[:, :3])) < 1e-6
+
+
+def test_operator_form_matches_scipy_svds():
+    A = sp.random(400, 120, density=0.05, format="csr", random_state=6)
+    calls = {"mv": 0, "rmv": 0}
+
+    def mv(X):
+        calls["mv"] += 1
+        return A @ X
+
+    def rmv(Y):
+        calls["rmv"] += 1
+        return A.T @ Y
+
+    res = top_singular_pairs(matvec=mv, rmatvec=rmv, shape=A.shape, n_pairs=3, oversample=6,
+                             tol=1e-9, seed=7, max_iter=500)
+    ref = np.sort(svds(A, k=3, random_state=0, return_singular_vectors=False))[::-1]
+    np.testing.assert_allclose(res.sigma, ref, rtol=1e-8)  # reference: scipy.sparse.linalg.svds
+    assert calls["mv"] == res.n_iter + 1 and calls["rmv"] == res.n_iter
+    res2 = top_singular_pairs(A, n_pairs=3, oversample=6, tol=1e-9, seed=7, max_iter=500)
+    np.testing.assert_allclose(res2.sigma, ref, rtol=1e-8)  # scipy sparse matrix given directly
+
+
+def test_warm_start_converges_in_fewer_iterations():
+    G = _with_spectrum(250, 70, [8.0, 7.0, 6.5, 6.0], seed=8)
+    cold = top_singular_pairs(G, n_pairs=2, oversample=2, tol=1e-9, seed=9, max_iter=500)
+    G2 = G + 1e-3 * np.random.default_rng(10).standard_normal(G.shape)
+    cold2 = top_singular_pairs(G2, n_pairs=2, oversample=2, tol=1e-9, seed=9, max_iter=500)
+    warm2 = top_singular_pairs(G2, n_pairs=2, oversample=2, tol=1e-9, seed=9, max_iter=500,
+                               warm_start=cold.block)
+    assert cold2.converged and warm2.converged
+    assert warm2.n_iter < cold2.n_iter
+    np.testing.assert_allclose(warm2.sigma, np.linalg.svd(G2, compute_uv=False)[:2],
+                               rtol=1e-9)  # reference: numpy.linalg.svd
+
+
+def test_same_seed_same_result():
+    G = _with_spectrum(120, 40, [3.0, 2.0], seed=11)
+    a = top_singular_pairs(G, n_pairs=2, tol=1e-4, seed=12)
+    b = top_singular_pairs(G, n_pairs=2, tol=1e-4, seed=np.random.default_rng(12))
+    c = top_singular_pairs(G, n_pairs=2, tol=1e-4, seed=13)
+    assert np.array_equal(a.U, b.U) and np.array_equal(a.sigma, b.sigma)
+    assert np.array_equal(a.block, b.block)
+    assert not np.array_equal(a.block, c.block)
+
+
+def test_rank_deficient_and_zero():
+    rng = np.random.default_rng(14)
+    G = rng.standard_normal((90, 2)) @ rng.standard_normal((2, 30))  # rank 2
+    res = top_singular_pairs(G, n_pairs=4, oversample=2, tol=1e-10, seed=15)
+    S = np.linalg.svd(G, compute_uv=False)  # reference: numpy.linalg.svd
+    assert res.sigma.shape == (2,)
+    np.testing.assert_allclose(res.sigma, S[:2], rtol=1e-12)
+    z = top_singular_pairs(np.zeros((10, 6)), n_pairs=2, seed=0)
+    assert z.sigma.shape == (0,) and z.sigma1 == 0.0 and z.converged
+
+
+def test_orth_rank_revealing_drops_dependent_columns():
+    rng = np.random.default_rng(16)
+    B = rng.standard_normal((50, 3))
+    A = np.hstack([B, B @ rng.standard_normal((3, 4))])  # 7 columns, rank 3
+    Q = orth_rank_revealing(A)
+    assert Q.shape == (50, 3)
+    np.testing.assert_allclose(Q.T @ Q, np.eye(3), atol=1e-13)
+    assert np.max(subspace_angles(Q, B)) < 1e-10  # reference: scipy.linalg.subspace_angles
+    # a plain QR keeps 7 columns: 4 spurious directions outside range(A)
+    Qp = np.linalg.qr(A)[0]
+    assert Qp.shape[1] == 7
+    assert np.linalg.norm(Qp[:, 3:].T @ orth_rank_revealing(A)) < 1e-6
+    assert orth_rank_revealing(np.zeros((5, 3))).shape == (5, 0)
+
+
+def test_power_block_not_orthogonal_to_v_overshoots():
+    # DESIGN §7 step 2: [V, Omega] must be orthonormal for the Rayleigh-Ritz bound
+    G = _with_spectrum(70, 25, [4.0, 2.0], seed=20)
+    S_true = np.linalg.svd(G, compute_uv=False)[0]  # reference: numpy.linalg.svd
+    v1 = np.linalg.svd(G)[2][0][:, None]
+    rng = np.random.default_rng(21)
+    raw = np.hstack([v1 + 1e-9 * rng.standard_normal((25, 1)), rng.standard_normal((25, 2))])
+    plain = np.linalg.qr(raw)[0]  # orthonormal by itself, not against V
+    over = np.linalg.norm(G @ np.hstack([v1, plain]), 2)
+    np.testing.assert_allclose(over, np.sqrt(2) * S_true, rtol=1e-6)  # the sqrt(2) overshoot
+    good = orth_against(raw, v1, 1e-6)
+    assert good.shape[1] == 2
+    assert np.linalg.norm(G @ np.hstack([v1, good]), 2) <= S_true * (1 + 1e-12)
+
+
+def test_orth_against():
+    rng = np.random.default_rng(17)
+    U = np.linalg.qr(rng.standard_normal((60, 4)))[0]
+    A = np.hstack([rng.standard_normal((60, 3)), U @ rng.standard_normal((4, 2))])
+    Q = orth_against(A, U)
+    assert Q.shape == (60, 3)  # the two columns inside span(U) are dropped
+    np.testing.assert_allclose(U.T @ Q, 0.0, atol=1e-13)
+    np.testing.assert_allclose(Q.T @ Q, np.eye(3), atol=1e-13)
+    P = A - U @ (U.T @ A)
+    assert np.max(subspace_angles(Q, P[:, :3])) < 1e-10  # reference: scipy subspace_angles
+
+
+def _iterate_updates(G, U, V, p, n_pass, seed):
+    rng = np.random.default_rng(seed)
+    Psi = orth_against(rng.standard_normal((G.shape[0], p)), U)
+    Om = orth_against(rng.standard_normal((G.shape[1], p)), V)
+    sig = []
+    for i in range(n_pass):
+        upd = subspace_update(U=U, V=V, G_VO=G @ np.hstack([V, Om]), Gt_Psi=G.T @ Psi,
+                              p_psi=p, p_omega=p, seed=i)
+        sig.append(upd.sigma_lower)
+        Psi, Om = upd.Psi, upd.Omega
+        np.testing.assert_allclose(U.T @ Psi, 0.0, atol=1e-12)
+        np.testing.assert_allclose(V.T @ Om, 0.0, atol=1e-12)
+        np.testing.assert_allclose(Om.T @ Om, np.eye(p), atol=1e-12)
+        np.testing.assert_allclose(Psi.T @ Psi, np.eye(p), atol=1e-12)
+    return np.array(sig)
+
+
+def test_subspace_update_two_sided_iteration():
+    d, k = 80, 30
+    G = _with_spectrum(d, k, [6.0, 4.0, 3.5, 3.0], seed=19)
+    S_true = np.linalg.norm(G, 2)  # reference: numpy (spectral norm via SVD)
+    # W = 0 (r = 0): plain two-sided subspace iteration, converges to sigma_1
+    sig0 = _iterate_updates(G, np.zeros((d, 0)), np.zeros((k, 0)), 3, 40, seed=18)
+    assert np.all(sig0 <= S_true * (1 + 1e-12))  # always a lower bound
+    np.testing.assert_allclose(sig0[-1], S_true, rtol=1e-10)
+    # with a model (random U, V): still a lower bound at every pass, and close to sigma_1
+    rng = np.random.default_rng(20)
+    U = np.linalg.qr(rng.standard_normal((d, 2)))[0]
+    V = np.linalg.qr(rng.standard_normal((k, 2)))[0]
+    sig = _iterate_updates(G, U, V, 3, 40, seed=21)
+    assert np.all(sig <= S_true * (1 + 1e-12))
+    np.testing.assert_allclose(sig[-1], S_true, rtol=1e-3)
+    with pytest.raises(ConfigError, match="p_omega"):
+        subspace_update(U=U, V=V, G_VO=G @ V, Gt_Psi=G.T @ U[:, :1], p_psi=1, p_omega=29)
+
+
+def test_bad_arguments():
+    G = np.ones((5, 4))
+    with pytest.raises(ConfigError, match="n_pairs=5 must be between 1 and min"):
+        top_singular_pairs(G, n_pairs=5)
+    with pytest.raises(ConfigError, match="warm_start must have 4 rows"):
+        top_singular_pairs(G, warm_start=np.ones((3, 1)))
+    with pytest.raises(ConfigError, match="give G, or matvec, rmatvec and shape"):
+        top_singular_pairs(matvec=lambda x: x)
+    with pytest.raises(ConfigError, match="matvec returned shape"):
+        top_singular_pairs(matvec=lambda x: x, rmatvec=lambda y: y, shape=(6, 4))
+    with pytest.raises(ConfigError, match="non-finite"):
+        top_singular_pairs(np.full((3, 3), np.nan))
