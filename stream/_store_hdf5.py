@@ -138,9 +138,12 @@ class Hdf5Backend(StoreBackend):
     def resize(self, name: str, n_rows: int) -> None:
         self._ds(name).resize(int(n_rows), axis=0)
 
-    def read(self, name: str, start: int, stop: int) -> np.ndarray:
+    def read(
+        self, name: str, start: int, stop: int, *, out: np.ndarray | None = None
+    ) -> np.ndarray:
         ds = self._ds(name)
-        out = np.empty((max(0, stop - start),) + ds.shape[1:], dtype=ds.dtype)
+        if out is None:
+            out = np.empty((max(0, stop - start),) + ds.shape[1:], dtype=ds.dtype)
         if out.shape[0] and out.size:
             ds.read_direct(out, np.s_[start:stop])
         return out

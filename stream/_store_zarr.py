@@ -139,8 +139,18 @@ class ZarrBackend(StoreBackend):
         arr = self._array(name)
         arr.resize((int(n_rows),) + tuple(arr.shape[1:]))
 
-    def read(self, name: str, start: int, stop: int) -> np.ndarray:
-        return np.asarray(self._array(name)[start:stop])
+    def read(
+        self, name: str, start: int, stop: int, *, out: np.ndarray | None = None
+    ) -> np.ndarray:
+        arr = self._array(name)
+        if out is None:
+            return np.asarray(arr[start:stop])
+        if out.shape[0]:
+            from zarr.core.buffer import default_buffer_prototype
+
+            nd = default_buffer_prototype().nd_buffer.from_numpy_array(out)
+            arr.get_basic_selection(slice(start, stop), out=nd)
+        return out
 
     def shape(self, name: str) -> tuple[int, ...]:
         return tuple(int(s) for s in self._array(name).shape)

@@ -125,8 +125,14 @@ class StoreBackend(ABC):
         """Grow or shrink array ``name`` to ``n_rows`` rows."""
 
     @abstractmethod
-    def read(self, name: str, start: int, stop: int) -> np.ndarray:
-        """Decoded rows ``start:stop`` of array ``name`` (a new array)."""
+    def read(
+        self, name: str, start: int, stop: int, *, out: np.ndarray | None = None
+    ) -> np.ndarray:
+        """Decoded rows ``start:stop`` of array ``name``.
+
+        Written into ``out`` (C-contiguous, exact shape) when given, else into
+        a new array; returns the array holding them.
+        """
 
     @abstractmethod
     def shape(self, name: str) -> tuple[int, ...]:
@@ -886,15 +892,17 @@ class _Reader:
         self.verified = np.zeros(n_segments(self.n, self.chunk), dtype=bool)
         row_bytes = np.dtype(meta["dtype"]).itemsize * int(np.prod(meta["shape"][1:] or [1]))
         self.row_bytes = row_bytes
+        self.dtype = np.dtype(meta["dtype"])
+        self.tail_shape = tuple(int(v) for v in meta["shape"][1:])
         decoded = max(1, self.n * row_bytes)
         self.ratio = min(1.5, float(meta.get("stored_bytes", decoded)) / decoded)
         self._tail_idx = -1
         self._tail: np.ndarray | None = None
 
-    def fetch(self, c0: int, c1: int) -> np.ndarray:
-        """Decode chunks ``c0:c1`` (a damaged chunk raises ``StoreError``)."""
+    def fetch(self, c0: int, c1: int, out: np.ndarray | None = None) -> np.ndarray:
+        """Decode chunks ``c0:c1`` (into ``out`` when given); damage raises ``StoreError``."""
         try:
-            return self.be.read(self.name, c0 * self.chunk, min(c1 * self.chunk, self.n))
+            return self.be.read(self.name, c0 * self.chunk, min(c1 * self.chunk, self.n), out=out)
         except StoreError:
             raise
         except Exception as exc:  # codec and file errors of either backend
@@ -919,21 +927,30 @@ class _Reader:
         self.verified[j] = True
 
     def read(self, lo: int, hi: int, io: dict[str, float]) -> np.ndarray:
-        """Rows ``lo:hi``, updating the timing and byte counters in ``io``."""
+        """Rows ``lo:hi`` (a view of a fresh buffer), updating the counters in ``io``.
+
+        The chunks overlapping ``lo:hi`` are decoded straight into one buffer;
+        the first comes from the kept tail when a sequential reader left it
+        there, and the last is kept for the next call.
+        """
         c = self.chunk
         if hi <= lo:
-            return self.be.read(self.name, 0, 0)
+            return np.empty((0,) + self.tail_shape, dtype=self.dtype)
         c0, c1 = lo // c, -(-hi // c)
-        parts = []
+        base = c0 * c
+        buf = np.empty((min(c1 * c, self.n) - base,) + self.tail_shape, dtype=self.dtype)
         first = c0
+        t = time.perf_counter()
         if self._tail is not None and self._tail_idx == c0:
-            parts.append(self._tail)
+            buf[: self._tail.shape[0]] = self._tail
             first = c0 + 1
         if first < c1:
+            fresh = buf[(first - c0) * c :]
+            t0 = time.perf_counter()
+            io["decode_s"] += t0 - t
+            self.fetch(first, c1, out=fresh)
             t = time.perf_counter()
-            fresh = self.fetch(first, c1)
-            t1 = time.perf_counter()
-            io["read_s"] += t1 - t
+            io["read_s"] += t - t0
             nbytes = fresh.shape[0] * self.row_bytes
             io["bytes_decoded"] += nbytes
             io["bytes_disk"] += nbytes * self.ratio
@@ -942,16 +959,10 @@ class _Reader:
                     if not self.verified[j]:
                         off = (j - first) * c
                         self.check_segment(j, fresh[off : off + c])
-            parts.append(fresh)
-            io["decode_s"] += time.perf_counter() - t1
-        t = time.perf_counter()
-        buf = parts[0] if len(parts) == 1 else np.concatenate(parts)
-        off = (c1 - 1 - c0) * c
-        if self._tail_idx != c1 - 1 or len(parts) > 1 or first == c0:
-            self._tail = buf[off:].copy()
-            self._tail_idx = c1 - 1
+        self._tail = buf[(c1 - 1 - c0) * c :].copy()
+        self._tail_idx = c1 - 1
         io["decode_s"] += time.perf_counter() - t
-        return buf[lo - c0 * c : hi - c0 * c]
+        return buf[lo - base : hi - base]
 
     def verify_all(self, piece_chunks: int = 8) -> None:
         """Read the whole array in bounded pieces and check every segment."""
