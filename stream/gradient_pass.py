@@ -19,7 +19,7 @@ advance. ``R`` never exists beyond one block.
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -29,8 +29,14 @@ from .losses import check_loss_source, get_loss
 from .memsource import as_source
 from .passes import PassProfile, phase, run_pass
 
-__all__ = ["PassRequest", "PassResult", "Projection", "gradient_pass",
-           "block_products_numpy"]
+__all__ = [
+    "PassRequest",
+    "PassResult",
+    "Projection",
+    "gradient_pass",
+    "combine_partials",
+    "block_products_kernels",
+]
 
 
 def _mat(name: str, a: Any, ndim: int) -> np.ndarray:
@@ -85,25 +91,39 @@ class PassRequest:
 
     def __post_init__(self) -> None:
         get_loss(self.loss)
-        U, s, V, b = (_mat("U", self.U, 2), _mat("s", self.s, 1),
-                      _mat("V", self.V, 2), _mat("b", self.b, 1))
+        U, s, V, b = (
+            _mat("U", self.U, 2),
+            _mat("s", self.s, 1),
+            _mat("V", self.V, 2),
+            _mat("b", self.b, 1),
+        )
         d, r = U.shape
         k = b.shape[0]
         Om = np.zeros((k, 0)) if self.Omega is None else _mat("Omega", self.Omega, 2)
         Ps = np.zeros((d, 0)) if self.Psi is None else _mat("Psi", self.Psi, 2)
         if s.shape != (r,) or V.shape != (k, r):
-            raise ConfigError(f"pass request: U {U.shape}, s {s.shape}, V {V.shape} and "
-                              f"b {b.shape} disagree; expect U (d, r), s (r,), V (k, r), b (k,)")
+            raise ConfigError(
+                f"pass request: U {U.shape}, s {s.shape}, V {V.shape} and "
+                f"b {b.shape} disagree; expect U (d, r), s (r,), V (k, r), b (k,)"
+            )
         if Om.shape[0] != k or Ps.shape[0] != d:
-            raise ConfigError(f"pass request: Omega {Om.shape} needs {k} rows and Psi "
-                              f"{Ps.shape} needs {d} rows")
+            raise ConfigError(
+                f"pass request: Omega {Om.shape} needs {k} rows and Psi {Ps.shape} needs {d} rows"
+            )
         cw = None
         if self.class_weights is not None:
             cw = _mat("class_weights", self.class_weights, 1)
             if cw.shape != (k,) or np.any(cw < 0):
                 raise ConfigError(f"pass request: class_weights must be {k} values >= 0")
-        for name, val in (("U", U), ("s", s), ("V", V), ("b", b), ("Omega", Om),
-                          ("Psi", Ps), ("class_weights", cw)):
+        for name, val in (
+            ("U", U),
+            ("s", s),
+            ("V", V),
+            ("b", b),
+            ("Omega", Om),
+            ("Psi", Ps),
+            ("class_weights", cw),
+        ):
             object.__setattr__(self, name, val)
 
     @property
@@ -174,7 +194,7 @@ class PassResult:
     @property
     def GOmega(self) -> np.ndarray:
         """``G Omega`` (d x p)."""
-        return self.G_VO[:, self.Gt_U.shape[1]:]
+        return self.G_VO[:, self.Gt_U.shape[1] :]
 
 
 # ---------------------------------------------------------------------------
@@ -204,109 +224,144 @@ class _Partial:
 
 @dataclass(frozen=True)
 class _State:
-    loss: str
-    U: np.ndarray
+    """Per-pass operands shared (read-only) by every block."""
+
+    ops: Any  # kernels.products.BlockOperands without [V, Omega] (see below)
+    VO: np.ndarray  # (k, r + p)
     s: np.ndarray
     V: np.ndarray
-    b: np.ndarray
-    UPsi: np.ndarray  # (d, r + p')
-    VO: np.ndarray  # (k, r + p)
-    class_weights: np.ndarray | None
     keep_projections: bool
     dense_gradient: bool
+    where: str
 
 
-def _state(req: PassRequest) -> _State:
+def _state(req: PassRequest, where: str) -> _State:
+    from kernels.products import prepare_operands
+
+    ops = prepare_operands(
+        U=req.U,
+        s=req.s,
+        V=req.V,
+        b=req.b,
+        loss=req.loss,
+        Psi=req.Psi,
+        Omega=req.Omega,
+        class_weights=req.class_weights,
+        n_cols=req.shape[0],
+    )
+    VO = ops.VO
+    # block_products then skips X^T (R [V, Omega]): the pass adds that term in
+    # the combine, straight into the one d x (r + p) accumulator
+    ops = replace(ops, VO=np.zeros((ops.k, 0)))
     return _State(
-        loss=req.loss, U=req.U, s=req.s, V=req.V, b=req.b,
-        UPsi=np.ascontiguousarray(np.hstack([req.U, req.Psi])),
-        VO=np.ascontiguousarray(np.hstack([req.V, req.Omega])),
-        class_weights=req.class_weights, keep_projections=req.keep_projections,
+        ops=ops,
+        VO=VO,
+        s=req.s,
+        V=req.V,
+        keep_projections=req.keep_projections,
         dense_gradient=req.dense_gradient,
+        where=where,
     )
 
 
-def _xt_accumulate_scipy(X: Any, D: np.ndarray, out: np.ndarray) -> None:
-    """``out += X^T D`` with scipy.sparse (reference / fallback)."""
-    out += X.T @ D
+def _xt_accumulate(X: Any, D: np.ndarray, out: np.ndarray) -> None:
+    """``out += X^T D`` with the deterministic CSR kernel."""
+    from kernels.sparse import csr_t_matmul_accumulate
+
+    csr_t_matmul_accumulate(X.indptr, X.indices, X.data, D, out)
 
 
-def block_products_numpy(block: Any, st: _State) -> _Partial:
-    """Block function written with scipy.sparse and numpy (reference / fallback).
+def block_products_kernels(block: Any, st: _State) -> _Partial:
+    """Block function of the gradient pass (numba kernels).
 
-    Computes, for the block's rows with raw weights ``w``: ``XQ = X [U, Psi]``,
-    the scores ``Z = XQ_U diag(s) V^T + b``, the raw residual ``R = w *
-    dloss/dz``, the sums ``1^T R``, ``R^T X Psi``, ``R^T X U``, and the
-    pending terms ``X^T (R [V, Omega])`` (and ``X^T R`` when asked).
+    Calls :func:`kernels.products.block_products` with raw weights for
+    ``XQ = X [U, Psi]``, the loss sum, ``1^T R``, ``R^T X U`` and
+    ``R^T X Psi`` (``R = w * dloss/dz`` stays in the block's scratch), then
+    forms ``R [V, Omega]``; ``X^T (R [V, Omega])`` (and ``X^T R``) is left
+    as a pending term for the combine.
     """
-    X = block.X
-    r = st.U.shape[1]
-    with phase("project"):
-        XQ = np.asarray(X @ st.UPsi, dtype=np.float64)
-    with phase("scores"):
-        Z = (XQ[:, :r] * st.s) @ st.V.T + st.b
-    with phase("loss"):
-        loss, wsum, R = get_loss(st.loss).value_residual(
-            Z, block.targets, block.weights, class_weights=st.class_weights)
-    with phase("products"):
-        grad_b = R.sum(axis=0)
+    from kernels.products import ProductBuffers, block_products
+
+    n = int(block.stop - block.start)
+    k = st.VO.shape[0]
+    scratch = np.empty(n * k)
+    bufs = ProductBuffers.zeros(st.ops)
+    with phase("block_products"):
+        XQ = block_products(
+            block.X,
+            block.targets,
+            block.weights,
+            st.ops,
+            bufs,
+            scratch=scratch,
+            row_offset=int(block.start),
+            where=st.where,
+        )
+    R = scratch.reshape(n, k)  # the residual, in place of the scores
+    with phase("residual_VO"):
         D = R @ st.VO
-        Gt_Psi = R.T @ XQ[:, r:]
-        Gt_U = R.T @ XQ[:, :r]
-    return _block_partial(block, st, XQ, loss, wsum, grad_b, Gt_Psi, Gt_U, D, R)
-
-
-def _block_partial(block: Any, st: _State, XQ: np.ndarray, loss: float, wsum: float,
-                   grad_b: np.ndarray, Gt_Psi: np.ndarray, Gt_U: np.ndarray, D: np.ndarray,
-                   R: np.ndarray) -> _Partial:
     proj = None
     if st.keep_projections:
-        proj = [Projection(start=int(block.start), stop=int(block.stop), XQ=XQ,
-                           targets=block.targets, weights=block.weights)]
+        proj = [
+            Projection(
+                start=int(block.start),
+                stop=int(block.stop),
+                XQ=XQ,
+                targets=block.targets,
+                weights=block.weights,
+            )
+        ]
     term = (block.X, D, R if st.dense_gradient else None)
-    return _Partial(rows=int(block.stop - block.start), weight=wsum, loss=loss, grad_b=grad_b,
-                    Gt_Psi=Gt_Psi, Gt_U=Gt_U, terms=[term], projections=proj)
+    return _Partial(
+        rows=n,
+        weight=float(bufs.weight_sum[0]),
+        loss=float(bufs.loss_sum[0]),
+        grad_b=bufs.grad_b,
+        Gt_Psi=bufs.Gt_Psi,
+        Gt_U=bufs.Gt_U,
+        terms=[term],
+        projections=proj,
+    )
 
 
-def _materialize(acc: _Partial, xt_accumulate: Any) -> None:
+def _materialize(acc: _Partial) -> None:
     """Add the pending terms of ``acc`` into its d-row accumulators."""
     for X, D, R in acc.terms:
         if acc.G_VO is None:
             acc.G_VO = np.zeros((X.shape[1], D.shape[1]))
-        xt_accumulate(X, D, acc.G_VO)
-        if R is not None:
-            if acc.G is None:
-                acc.G = np.zeros((X.shape[1], R.shape[1]))
-            xt_accumulate(X, R, acc.G)
+        with phase("xt_products"):
+            _xt_accumulate(X, D, acc.G_VO)
+            if R is not None:
+                if acc.G is None:
+                    acc.G = np.zeros((X.shape[1], R.shape[1]))
+                _xt_accumulate(X, R, acc.G)
     acc.terms = []
 
 
-def _make_combine(xt_accumulate: Any):
-    def combine(parts: list[_Partial]) -> _Partial:
-        """Sum partials in order, accumulating into the first (the engine owns it)."""
-        acc = parts[0]
-        _materialize(acc, xt_accumulate)
-        for p in parts[1:]:
-            acc.rows += p.rows
-            acc.weight += p.weight
-            acc.loss += p.loss
-            acc.grad_b += p.grad_b
-            acc.Gt_Psi += p.Gt_Psi
-            acc.Gt_U += p.Gt_U
-            if p.G_VO is not None:  # an already reduced partial (tree reduction)
-                acc.G_VO += p.G_VO
-                if p.G is not None:
-                    acc.G += p.G
-            acc.terms = p.terms
-            _materialize(acc, xt_accumulate)
-            if acc.projections is not None:
-                acc.projections.extend(p.projections)
-        return acc
+def combine_partials(parts: list[_Partial]) -> _Partial:
+    """Sum partials in block order, accumulating into the first.
 
-    return combine
-
-
-_combine_scipy = _make_combine(_xt_accumulate_scipy)
+    The pass engine owns the partials it hands over, so the first one's
+    buffers are reused: one d x (r + p) accumulator per pass.
+    """
+    acc = parts[0]
+    _materialize(acc)
+    for p in parts[1:]:
+        acc.rows += p.rows
+        acc.weight += p.weight
+        acc.loss += p.loss
+        acc.grad_b += p.grad_b
+        acc.Gt_Psi += p.Gt_Psi
+        acc.Gt_U += p.Gt_U
+        if p.G_VO is not None:  # an already reduced partial (tree reduction)
+            acc.G_VO += p.G_VO
+            if p.G is not None:
+                acc.G += p.G
+        acc.terms = p.terms
+        _materialize(acc)
+        if acc.projections is not None:
+            acc.projections.extend(p.projections)
+    return acc
 
 
 def _finalize(acc: _Partial, st: _State, profile: PassProfile | None, where: str) -> PassResult:
@@ -319,15 +374,18 @@ def _finalize(acc: _Partial, st: _State, profile: PassProfile | None, where: str
     if acc.G is not None:
         acc.G *= inv
     return PassResult(
-        n_rows=acc.rows, weight_total=acc.weight, loss=acc.loss * inv, grad_b=acc.grad_b * inv,
-        G_VO=acc.G_VO, Gt_Psi=acc.Gt_Psi * inv, Gt_U=Gt_U, inner=inner,
-        G=acc.G, projections=acc.projections, profile=profile,
+        n_rows=acc.rows,
+        weight_total=acc.weight,
+        loss=acc.loss * inv,
+        grad_b=acc.grad_b * inv,
+        G_VO=acc.G_VO,
+        Gt_Psi=acc.Gt_Psi * inv,
+        Gt_U=Gt_U,
+        inner=inner,
+        G=acc.G,
+        projections=acc.projections,
+        profile=profile,
     )
-
-
-def _pass_functions():
-    """The block function and combine used by :func:`gradient_pass`."""
-    return block_products_numpy, _combine_scipy
 
 
 def gradient_pass(
@@ -365,16 +423,26 @@ def gradient_pass(
         if request.shape != (d, src.n_outputs):
             raise ModelError(
                 f"{where}: has {d} features and {src.n_outputs} outputs but the model is "
-                f"{request.shape[0]} x {request.shape[1]}; use a model trained on this data")
+                f"{request.shape[0]} x {request.shape[1]}; use a model trained on this data"
+            )
         if n == 0:
             raise InputError(f"{where}: has no rows")
         prof = PassProfile() if profile is True else (profile or None)
-        st = _state(request)
-        block_fn, combine = _pass_functions()
-        acc = run_pass(src, block_fn, combine, state=st, backend=backend,
-                       block_rows=block_rows, block_bytes=block_bytes, n_threads=n_threads,
-                       profile=prof, progress=progress, desc="gradient pass")
-        acc = combine([acc])  # adds the last pending terms (a one-block pass)
+        st = _state(request, where)
+        acc = run_pass(
+            src,
+            block_products_kernels,
+            combine_partials,
+            state=st,
+            backend=backend,
+            block_rows=block_rows,
+            block_bytes=block_bytes,
+            n_threads=n_threads,
+            profile=prof,
+            progress=progress,
+            desc="gradient pass",
+        )
+        acc = combine_partials([acc])  # adds the last pending terms (a one-block pass)
         return _finalize(acc, st, prof, where)
     finally:
         if opened:

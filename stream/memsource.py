@@ -197,8 +197,13 @@ class MemorySource:
 
     @property
     def attrs(self) -> dict:
-        return {"n_rows": self.shape[0], "n_cols": self.shape[1], "nnz": self.nnz,
-                "target_kind": self.kind, "n_outputs": self.n_outputs}
+        return {
+            "n_rows": self.shape[0],
+            "n_cols": self.shape[1],
+            "nnz": self.nnz,
+            "target_kind": self.kind,
+            "n_outputs": self.n_outputs,
+        }
 
     def indptr_range(self, a: int, b: int) -> np.ndarray:
         """Return ``indptr[a:b+1]`` (int64)."""
@@ -207,10 +212,16 @@ class MemorySource:
     def block_ranges(
         self, *, rows: int | None = None, block_bytes: int | None = None
     ) -> list[tuple[int, int]]:
-        """Row ranges bounded by ``rows`` and/or decoded CSR ``block_bytes``."""
+        """Row ranges of ``rows`` rows or of about ``block_bytes`` decoded CSR bytes.
+
+        Like the store's: give one of the two (default 64 MiB of CSR).
+        """
+        if rows is not None and block_bytes is not None:
+            raise ConfigError("give rows= or block_bytes=, not both")
         per_entry = 4 + self.X.indices.dtype.itemsize
-        return split_ranges(self.X.indptr, rows=rows, block_bytes=block_bytes,
-                            bytes_per_entry=per_entry)
+        return split_ranges(
+            self.X.indptr, rows=rows, block_bytes=block_bytes, bytes_per_entry=per_entry
+        )
 
     def read_block(self, start: int, stop: int) -> Any:
         """Return rows ``[start, stop)`` as a ``Block`` (views, no copy of X)."""
@@ -223,8 +234,12 @@ class MemorySource:
         tb = None if t is None else t[start:stop]
         wb = None if self.weights is None else self.weights[start:stop]
         nbytes = int(Xb.data.nbytes + Xb.indices.nbytes + Xb.indptr.nbytes)
-        io = {"read_s": 0.0, "decode_s": time.perf_counter() - t0,
-              "bytes_disk": 0, "bytes_decoded": nbytes}
+        io = {
+            "read_s": 0.0,
+            "decode_s": time.perf_counter() - t0,
+            "bytes_disk": 0,
+            "bytes_decoded": nbytes,
+        }
         return Block(start=int(start), stop=int(stop), X=Xb, targets=tb, weights=wb, io=io)
 
     def blocks(self, *, rows: int | None = None, block_bytes: int | None = None):
@@ -256,8 +271,10 @@ def _standard_csr(X: Any) -> sp.csr_matrix:
     if not np.all(np.isfinite(X.data)):
         bad = int(np.flatnonzero(~np.isfinite(X.data))[0])
         row = int(np.searchsorted(X.indptr, bad, side="right") - 1)
-        raise InputError(f"in-memory features: row {row} has a non-finite value; "
-                         "remove or replace NaN/inf entries")
+        raise InputError(
+            f"in-memory features: row {row} has a non-finite value; "
+            "remove or replace NaN/inf entries"
+        )
     return X
 
 
@@ -269,27 +286,34 @@ def _standard_targets(targets: Any, kind: str | None, n: int, n_outputs: int | N
     if kind == "classes":
         y = np.asarray(targets)
         if y.ndim != 1 or y.shape[0] != n or not np.issubdtype(y.dtype, np.integer):
-            raise InputError(f"in-memory class ids: expected {n} integers, got shape {y.shape} "
-                             f"dtype {y.dtype}; pass one class id per row")
+            raise InputError(
+                f"in-memory class ids: expected {n} integers, got shape {y.shape} "
+                f"dtype {y.dtype}; pass one class id per row"
+            )
         k = int(n_outputs) if n_outputs is not None else (int(y.max()) + 1 if n else 0)
         if n and (y.min() < 0 or y.max() >= k):
             row = int(np.flatnonzero((y < 0) | (y >= k))[0])
-            raise InputError(f"in-memory class ids: row {row} has class {int(y[row])} outside "
-                             f"0..{k - 1}; fix the id or raise n_outputs")
+            raise InputError(
+                f"in-memory class ids: row {row} has class {int(y[row])} outside "
+                f"0..{k - 1}; fix the id or raise n_outputs"
+            )
         return y.astype(np.int32), k
     if kind == "values":
         Y = np.asarray(targets, dtype=np.float32)
         if Y.ndim != 2 or Y.shape[0] != n:
-            raise InputError(f"in-memory values: expected shape ({n}, k), got {Y.shape}; "
-                             "pass one row of values per row")
+            raise InputError(
+                f"in-memory values: expected shape ({n}, k), got {Y.shape}; "
+                "pass one row of values per row"
+            )
         if not np.all(np.isfinite(Y)):
             row = int(np.flatnonzero(~np.isfinite(Y).all(axis=1))[0])
             raise InputError(f"in-memory values: row {row} has a non-finite value; replace it")
         return np.ascontiguousarray(Y), int(Y.shape[1])
     T = sp.csr_matrix(targets, dtype=np.float32)
     if T.shape[0] != n:
-        raise InputError(f"in-memory tags: expected {n} rows, got {T.shape[0]}; "
-                         "pass one tag row per row")
+        raise InputError(
+            f"in-memory tags: expected {n} rows, got {T.shape[0]}; pass one tag row per row"
+        )
     T.sum_duplicates()
     T.data[:] = 1.0
     return T, int(T.shape[1])
@@ -300,18 +324,27 @@ def _standard_weights(weights: Any, n: int) -> np.ndarray | None:
         return None
     w = np.asarray(weights, dtype=np.float32)
     if w.shape != (n,):
-        raise InputError(f"in-memory weights: expected shape ({n},), got {w.shape}; "
-                         "pass one weight per row")
+        raise InputError(
+            f"in-memory weights: expected shape ({n},), got {w.shape}; pass one weight per row"
+        )
     bad = ~np.isfinite(w) | (w < 0)
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
-        raise InputError(f"in-memory weights: row {row} has weight {float(w[row])}; "
-                         "weights must be finite and >= 0")
+        raise InputError(
+            f"in-memory weights: row {row} has weight {float(w[row])}; "
+            "weights must be finite and >= 0"
+        )
     return w
 
 
-def as_source(source: Any, *, targets: Any = None, weights: Any = None,
-              kind: str | None = None, n_outputs: int | None = None) -> Any:
+def as_source(
+    source: Any,
+    *,
+    targets: Any = None,
+    weights: Any = None,
+    kind: str | None = None,
+    n_outputs: int | None = None,
+) -> Any:
     """Return a block source for ``source``.
 
     Parameters

@@ -159,8 +159,15 @@ class PassProfile:
     def totals(self) -> dict[str, float]:
         """Summed seconds and sizes over every record."""
         out: dict[str, float] = {
-            "rows": 0, "nnz": 0, "bytes_disk": 0, "bytes_decoded": 0, "read_s": 0.0,
-            "decode_s": 0.0, "compute_s": 0.0, "combine_s": 0.0, "wait_s": 0.0,
+            "rows": 0,
+            "nnz": 0,
+            "bytes_disk": 0,
+            "bytes_decoded": 0,
+            "read_s": 0.0,
+            "decode_s": 0.0,
+            "compute_s": 0.0,
+            "combine_s": 0.0,
+            "wait_s": 0.0,
         }
         for r in self.records:
             for key in out:
@@ -172,8 +179,16 @@ class PassProfile:
 
     def _begin(self, *, backend: str, n_threads: int, n_blocks: int, rows: int) -> int:
         idx = len(self.passes)
-        self.passes.append({"pass_index": idx, "backend": backend, "n_threads": n_threads,
-                            "n_blocks": n_blocks, "rows": rows, "wall_s": 0.0})
+        self.passes.append(
+            {
+                "pass_index": idx,
+                "backend": backend,
+                "n_threads": n_threads,
+                "n_blocks": n_blocks,
+                "rows": rows,
+                "wall_s": 0.0,
+            }
+        )
         return idx
 
 
@@ -313,8 +328,10 @@ def _threads_backend(job: PassJob) -> None:
                 return
             results.put((i, (block, out, wait)))
 
-    workers = [threading.Thread(target=work, name=f"ranktide-worker-{j}", daemon=True)
-               for j in range(n_workers)]
+    workers = [
+        threading.Thread(target=work, name=f"ranktide-worker-{j}", daemon=True)
+        for j in range(n_workers)
+    ]
     for w in workers:
         w.start()
     pending: dict[int, Any] = {}
@@ -351,8 +368,9 @@ _EMPTY = object()
 
 
 class _Folder:
-    def __init__(self, combine: Callable, init: Any, profile: PassProfile | None,
-                 pass_index: int, bar: Any) -> None:
+    def __init__(
+        self, combine: Callable, init: Any, profile: PassProfile | None, pass_index: int, bar: Any
+    ) -> None:
         self.combine = combine
         self.acc = _EMPTY if init is None else init
         self.profile = profile
@@ -361,30 +379,62 @@ class _Folder:
         self.decoded = 0
         self.t_start = time.perf_counter()
 
-    def __call__(self, index: int, block: Any, partial: Any, phases: dict | None,
-                 compute_s: float, wait_s: float) -> None:
-        timed = self.profile is not None
-        t0 = time.perf_counter() if timed else 0.0
-        if self.acc is _EMPTY:
-            self.acc = partial
+    def __call__(
+        self,
+        index: int,
+        block: Any,
+        partial: Any,
+        phases: dict | None,
+        compute_s: float,
+        wait_s: float,
+    ) -> None:
+        if self.profile is None:
+            self.acc = partial if self.acc is _EMPTY else self.combine([self.acc, partial])
         else:
-            self.acc = self.combine([self.acc, partial])
-        if timed:
-            self._record(index, block, phases or {}, compute_s,
-                         time.perf_counter() - t0, wait_s)
+            # phases named inside the combine are recorded with the block's
+            # phases; combine_s is the rest of the combine's time
+            timer = PhaseTimer()
+            _local.timer = timer
+            t0 = time.perf_counter()
+            try:
+                self.acc = partial if self.acc is _EMPTY else self.combine([self.acc, partial])
+            finally:
+                _local.timer = None
+            combine_s = time.perf_counter() - t0 - sum(timer.phases.values())
+            merged = dict(phases or {})
+            for name, sec in timer.phases.items():
+                merged[name] = merged.get(name, 0.0) + sec
+            self._record(index, block, merged, compute_s, max(combine_s, 0.0), wait_s)
         if self.bar is not None:
             self._progress(block)
 
-    def _record(self, index: int, block: Any, phases: dict, compute_s: float,
-                combine_s: float, wait_s: float) -> None:
+    def _record(
+        self,
+        index: int,
+        block: Any,
+        phases: dict,
+        compute_s: float,
+        combine_s: float,
+        wait_s: float,
+    ) -> None:
         io = getattr(block, "io", None) or {}
-        self.profile.records.append(BlockRecord(
-            pass_index=self.pass_index, block=index, first_row=int(block.start),
-            rows=int(block.stop - block.start), nnz=int(block.X.nnz),
-            bytes_disk=int(io.get("bytes_disk", 0)), bytes_decoded=int(io.get("bytes_decoded", 0)),
-            read_s=float(io.get("read_s", 0.0)), decode_s=float(io.get("decode_s", 0.0)),
-            phases=dict(phases), compute_s=compute_s, combine_s=combine_s, wait_s=wait_s,
-        ))
+        self.profile.records.append(
+            BlockRecord(
+                pass_index=self.pass_index,
+                block=index,
+                first_row=int(block.start),
+                rows=int(block.stop - block.start),
+                nnz=int(block.X.nnz),
+                bytes_disk=int(io.get("bytes_disk", 0)),
+                bytes_decoded=int(io.get("bytes_decoded", 0)),
+                read_s=float(io.get("read_s", 0.0)),
+                decode_s=float(io.get("decode_s", 0.0)),
+                phases=dict(phases),
+                compute_s=compute_s,
+                combine_s=combine_s,
+                wait_s=wait_s,
+            )
+        )
 
     def _progress(self, block: Any) -> None:
         io = getattr(block, "io", None) or {}
@@ -403,8 +453,15 @@ def _progress_bar(enabled: bool, n_blocks: int, desc: str) -> Any:
     from tqdm import tqdm
 
     # delay: short passes never draw a bar
-    return tqdm(total=n_blocks, unit="block", desc=desc, file=stream, delay=0.5,
-                dynamic_ncols=True, leave=False)
+    return tqdm(
+        total=n_blocks,
+        unit="block",
+        desc=desc,
+        file=stream,
+        delay=0.5,
+        dynamic_ncols=True,
+        leave=False,
+    )
 
 
 def _default_threads() -> int:
@@ -465,8 +522,9 @@ def run_pass(
     """
     fn = _BACKENDS.get(backend)
     if fn is None:
-        raise ConfigError(f"backend {backend!r}: unknown; choose one of "
-                          f"{', '.join(available_backends())}")
+        raise ConfigError(
+            f"backend {backend!r}: unknown; choose one of {', '.join(available_backends())}"
+        )
     if n_threads is not None and int(n_threads) < 1:
         raise ConfigError(f"n_threads = {n_threads}: must be at least 1")
     opened = isinstance(source, (str, os.PathLike))
@@ -477,14 +535,25 @@ def run_pass(
         rows = int(ranges[-1][1] - ranges[0][0]) if ranges else 0
         pass_index = -1
         if profile is not None:
-            pass_index = profile._begin(backend=backend, n_threads=threads,
-                                        n_blocks=len(ranges), rows=rows)
+            pass_index = profile._begin(
+                backend=backend, n_threads=threads, n_blocks=len(ranges), rows=rows
+            )
         bar = _progress_bar(progress, len(ranges), desc)
         folder = _Folder(combine, init, profile, pass_index, bar)
         t0 = time.perf_counter()
         try:
-            fn(PassJob(source=src, ranges=ranges, block_fn=block_fn, combine=combine,
-                       state=state, n_threads=threads, timed=profile is not None, fold=folder))
+            fn(
+                PassJob(
+                    source=src,
+                    ranges=ranges,
+                    block_fn=block_fn,
+                    combine=combine,
+                    state=state,
+                    n_threads=threads,
+                    timed=profile is not None,
+                    fold=folder,
+                )
+            )
         finally:
             if bar is not None:
                 bar.close()

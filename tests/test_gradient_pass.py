@@ -1,0 +1,270 @@
+"""The solver-style gradient pass and the best intercept.
+
+References: the loss and gradient formulas of DESIGN §2 evaluated on the whole
+matrix with dense numpy, scipy.special (log_softmax, softmax, expit,
+log_expit), scikit-learn's log_loss for the softmax objective,
+scipy.optimize.approx_fprime (finite differences of f) and
+scipy.optimize.minimize (the best intercept alone).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from scipy.optimize import approx_fprime, minimize
+from scipy.special import expit, log_expit, log_softmax, softmax
+from sklearn.metrics import log_loss
+
+from stream.errors import ConfigError, InputError, ModelError
+from stream.gradient_pass import PassRequest, gradient_pass
+from stream.losses import best_intercept, get_loss
+from stream.memsource import MemorySource
+from stream.passes import PassProfile
+
+LOSSES = ["softmax", "squared", "multilabel"]
+
+
+def _problem(loss, *, n=240, d=30, k=6, seed=0, weights=True):
+    rng = np.random.default_rng(seed)
+    X = sp.random(n, d, density=0.2, format="csr", random_state=rng, dtype=np.float32)
+    if loss == "softmax":
+        y = rng.integers(0, k, n).astype(np.int32)
+    elif loss == "squared":
+        y = rng.standard_normal((n, k)).astype(np.float32)
+    else:
+        y = sp.csr_matrix((rng.random((n, k)) < 0.3).astype(np.float32))
+    w = rng.random(n).astype(np.float32) + 0.1 if weights else None
+    return X, y, w
+
+
+def _model(d, k, r=3, p=2, pp=4, seed=1):
+    rng = np.random.default_rng(seed)
+    U = np.linalg.qr(rng.standard_normal((d, r)))[0]
+    V = np.linalg.qr(rng.standard_normal((k, r)))[0]
+    s = np.sort(rng.random(r) * 2)[::-1]
+    b = rng.standard_normal(k) * 0.3
+    Omega = rng.standard_normal((k, p))
+    Psi = rng.standard_normal((d, pp))
+    return U, s, V, b, Omega, Psi
+
+
+def _dense_f_and_R(loss, X, y, w, W, b, cw=None):
+    """f and R = w * dloss/dz / sum(w) on the whole matrix (DESIGN §2)."""
+    Xd = X.toarray().astype(np.float64)
+    n = Xd.shape[0]
+    Z = Xd @ W + b
+    w = np.ones(n) if w is None else w.astype(np.float64)
+    if loss == "softmax":
+        if cw is not None:
+            w = w * cw[y]
+        # scipy.special.log_softmax / softmax as the reference
+        lossv = -log_softmax(Z, axis=1)[np.arange(n), y]
+        D = softmax(Z, axis=1)
+        D[np.arange(n), y] -= 1
+    elif loss == "squared":
+        D = Z - y
+        lossv = 0.5 * (D**2).sum(1)
+    else:
+        Y = y.toarray()
+        # log(1 + exp(z)) - y z = -log_expit(z) + (1 - y) z  (scipy.special)
+        lossv = (-log_expit(Z) + (1 - Y) * Z).sum(1)
+        D = expit(Z) - Y
+    f = float(w @ lossv / w.sum())
+    R = w[:, None] * D / w.sum()
+    return f, R, Xd
+
+
+@pytest.mark.parametrize("backend", ["serial", "threads"])
+@pytest.mark.parametrize("loss", LOSSES)
+@pytest.mark.parametrize("budget", [{"block_rows": 1000}, {"block_rows": 17},
+                                    {"block_bytes": 2000}])
+def test_pass_matches_dense_reference(loss, backend, budget):
+    X, y, w = _problem(loss)
+    n, d = X.shape
+    k = 6
+    U, s, V, b, Om, Psi = _model(d, k)
+    src = MemorySource(X, y, weights=w, n_outputs=k)
+    req = PassRequest(loss, U, s, V, b, Omega=Om, Psi=Psi, dense_gradient=True,
+                      keep_projections=True)
+    res = gradient_pass(src, req, backend=backend, **budget)
+    W = (U * s) @ V.T
+    f, R, Xd = _dense_f_and_R(loss, X, y, w, W, b)
+    G = Xd.T @ R
+    tol = {"rtol": 1e-10, "atol": 1e-13}
+    assert res.n_rows == n
+    np.testing.assert_allclose(res.weight_total, w.astype(np.float64).sum(), rtol=1e-12)
+    np.testing.assert_allclose(res.loss, f, rtol=1e-11)
+    np.testing.assert_allclose(res.grad_b, R.sum(0), **tol)
+    np.testing.assert_allclose(res.G, G, **tol)
+    np.testing.assert_allclose(res.GV, G @ V, **tol)
+    np.testing.assert_allclose(res.GOmega, G @ Om, **tol)
+    np.testing.assert_allclose(res.Gt_Psi, G.T @ Psi, **tol)
+    np.testing.assert_allclose(res.Gt_U, G.T @ U, **tol)
+    np.testing.assert_allclose(res.inner, np.sum(G * W), rtol=1e-10, atol=1e-13)
+    XQ = np.vstack([p.XQ for p in res.projections])
+    np.testing.assert_allclose(XQ, Xd @ np.hstack([U, Psi]), rtol=1e-12, atol=1e-12)
+    assert [p.start for p in res.projections] == sorted(p.start for p in res.projections)
+    assert res.projections[-1].stop == n
+
+
+def test_softmax_loss_equals_sklearn_log_loss():
+    X, y, w = _problem("softmax", seed=4)
+    U, s, V, b, _, _ = _model(30, 6)
+    res = gradient_pass(MemorySource(X, y, weights=w, n_outputs=6),
+                        PassRequest("softmax", U, s, V, b), block_rows=50)
+    P = softmax(X.toarray() @ ((U * s) @ V.T) + b, axis=1)
+    # scikit-learn's weighted mean cross-entropy
+    ref = log_loss(y, P, sample_weight=w, labels=np.arange(6))
+    np.testing.assert_allclose(res.loss, ref, rtol=1e-9)
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+def test_gradient_against_finite_differences(loss):
+    # tiny problem: W of full rank min(d, k), so W <-> (U, s, V) by an SVD
+    d, k = 5, 3
+    X, y, w = _problem(loss, n=40, d=d, k=k, seed=7)
+    src = MemorySource(X, y, weights=w, n_outputs=k)
+    rng = np.random.default_rng(3)
+    W0 = rng.standard_normal((d, k)) * 0.5
+    b0 = rng.standard_normal(k) * 0.2
+
+    def request(theta, **kw):
+        W = theta[: d * k].reshape(d, k)
+        U, s, Vt = np.linalg.svd(W, full_matrices=False)
+        return PassRequest(loss, U, s, Vt.T, theta[d * k:], **kw)
+
+    def f(theta):
+        return gradient_pass(src, request(theta)).loss
+
+    theta0 = np.concatenate([W0.ravel(), b0])
+    res = gradient_pass(src, request(theta0, dense_gradient=True), block_rows=13)
+    # scipy.optimize.approx_fprime: forward differences, error O(eps)
+    fd = approx_fprime(theta0, f, 1e-7)
+    np.testing.assert_allclose(res.G.ravel(), fd[: d * k], rtol=1e-4, atol=1e-6)
+    np.testing.assert_allclose(res.grad_b, fd[d * k:], rtol=1e-4, atol=1e-6)
+
+
+def test_serial_and_threads_agree_to_1e12():
+    X, y, w = _problem("softmax", n=600, d=80, k=10, seed=11)
+    U, s, V, b, Om, Psi = _model(80, 10, r=4)
+    src = MemorySource(X, y, weights=w, n_outputs=10)
+    req = PassRequest("softmax", U, s, V, b, Omega=Om, Psi=Psi)
+    a = gradient_pass(src, req, block_rows=31)
+    t = gradient_pass(src, req, block_rows=31, backend="threads", n_threads=3)
+    for name in ("grad_b", "G_VO", "Gt_Psi", "Gt_U"):
+        x, z = getattr(a, name), getattr(t, name)
+        assert np.abs(x - z).max() <= 1e-12 * np.abs(x).max(), name
+    assert abs(a.loss - t.loss) <= 1e-12 * abs(a.loss)
+
+
+def test_softmax_class_weights():
+    X, y, w = _problem("softmax", seed=5)
+    U, s, V, b, _, _ = _model(30, 6)
+    cw = np.linspace(0.5, 2.0, 6)
+    res = gradient_pass(MemorySource(X, y, weights=w, n_outputs=6),
+                        PassRequest("softmax", U, s, V, b, class_weights=cw,
+                                    dense_gradient=True), block_rows=41)
+    f, R, Xd = _dense_f_and_R("softmax", X, y, w, (U * s) @ V.T, b, cw=cw)
+    np.testing.assert_allclose(res.weight_total, (w.astype(np.float64) * cw[y]).sum(),
+                               rtol=1e-12)
+    np.testing.assert_allclose(res.loss, f, rtol=1e-11)
+    np.testing.assert_allclose(res.G, Xd.T @ R, rtol=1e-10, atol=1e-13)
+
+
+def test_profile_of_a_gradient_pass():
+    X, y, w = _problem("squared")
+    U, s, V, b, Om, Psi = _model(30, 6)
+    res = gradient_pass(MemorySource(X, y, weights=w), PassRequest("squared", U, s, V, b,
+                        Omega=Om, Psi=Psi), block_rows=50, profile=True)
+    assert isinstance(res.profile, PassProfile)
+    recs = res.profile.records
+    assert len(recs) == 5 and sum(r.rows for r in recs) == 240
+    assert {"block_products", "residual_VO", "xt_products"} <= set(res.profile.phase_names())
+
+
+# --- the best intercept alone ----------------------------------------------
+@pytest.mark.parametrize("loss", LOSSES)
+def test_best_intercept_minimizes_f_at_zero(loss):
+    k = 4
+    X, y, w = _problem(loss, n=150, k=k, seed=9)
+    src = MemorySource(X, y, weights=w, n_outputs=k)
+    b0 = best_intercept(src, loss=loss, block_rows=70)
+    zero = PassRequest(loss, np.zeros((30, 0)), np.zeros(0), np.zeros((k, 0)), b0)
+    res = gradient_pass(src, zero)
+    # stationarity grad_b f(0, b0) = 0, the closed form's defining property
+    np.testing.assert_allclose(res.grad_b, 0.0, atol=1e-12)
+
+    def f(bv):
+        return gradient_pass(src, PassRequest(loss, np.zeros((30, 0)), np.zeros(0),
+                                              np.zeros((k, 0)), bv)).loss
+
+    # scipy.optimize.minimize from b = 0 finds the same optimum (softmax: up to
+    # a constant shift, removed by centring)
+    opt = minimize(f, np.zeros(k), method="BFGS", options={"gtol": 1e-10})
+    ref = opt.x - opt.x.mean() if loss == "softmax" else opt.x
+    np.testing.assert_allclose(b0, ref, atol=1e-5)
+    assert res.loss <= opt.fun + 1e-12
+
+
+def test_best_intercept_closed_forms():
+    X, y, w = _problem("softmax", n=200, seed=2)
+    w64 = w.astype(np.float64)
+    b0 = best_intercept(MemorySource(X, y, weights=w, n_outputs=6), loss="softmax")
+    freq = np.bincount(y, weights=w64, minlength=6) / w64.sum()
+    np.testing.assert_allclose(softmax(b0), freq, rtol=1e-12)  # softmax(log freq) = freq
+    assert abs(b0.mean()) < 1e-12
+    _, T, _ = _problem("multilabel", n=200, seed=2)
+    bm = best_intercept(MemorySource(X, T, weights=w), loss="multilabel", block_rows=33)
+    np.testing.assert_allclose(expit(bm), T.T @ w64 / w64.sum(), rtol=1e-10)
+    # an absent class gets a finite, clipped intercept
+    y2 = np.where(y == 3, 0, y).astype(np.int32)
+    b2 = best_intercept(MemorySource(X, y2, n_outputs=6), loss="softmax")
+    assert np.all(np.isfinite(b2)) and b2[3] == b2.min()
+
+
+# --- bad input ---------------------------------------------------------------
+def test_bad_requests_and_sources():
+    X, y, w = _problem("softmax")
+    U, s, V, b, _, _ = _model(30, 6)
+    src = MemorySource(X, y, weights=w, n_outputs=6)
+    with pytest.raises(InputError, match="holds targets of kind 'classes' but loss 'squared'"):
+        gradient_pass(src, PassRequest("squared", U, s, V, b))
+    U2, s2, V2, b2, _, _ = _model(31, 6)
+    with pytest.raises(ModelError, match="has 30 features and 6 outputs but the model is 31 x 6"):
+        gradient_pass(src, PassRequest("softmax", U2, s2, V2, b2))
+    with pytest.raises(ConfigError, match="loss 'hinge': unknown"):
+        PassRequest("hinge", U, s, V, b)
+    with pytest.raises(ConfigError, match="disagree"):
+        PassRequest("softmax", U, s[:2], V, b)
+    with pytest.raises(ModelError, match="non-finite"):
+        PassRequest("softmax", U, np.array([1.0, np.nan, 0.1]), V, b)
+    zero_w = MemorySource(X, y, weights=np.zeros(X.shape[0]), n_outputs=6)
+    with pytest.raises(InputError, match="every row has weight 0"):
+        gradient_pass(zero_w, PassRequest("softmax", U, s, V, b))
+    with pytest.raises(ConfigError, match="loss 'hinge'"):
+        get_loss("hinge")
+
+
+# --- stores (zarr and HDF5) ----------------------------------------------------
+@pytest.mark.parametrize("store_backend", ["zarr", "hdf5"])
+@pytest.mark.parametrize("loss", ["softmax", "multilabel"])
+def test_pass_over_store_equals_in_memory(tmp_path, store_backend, loss):
+    from stream.store import write_store
+
+    X, y, w = _problem(loss, n=500, d=40, k=6, seed=13)
+    U, s, V, b, Om, Psi = _model(40, 6)
+    name = "s.h5" if store_backend == "hdf5" else "s.zarr"
+    store = write_store(tmp_path / name, X, y, weights=w, backend=store_backend)
+    store.close()
+    req = PassRequest(loss, U, s, V, b, Omega=Om, Psi=Psi, dense_gradient=True)
+    f, R, Xd = _dense_f_and_R(loss, X, y, w, (U * s) @ V.T, b)
+    G = Xd.T @ R
+    for budget in ({"block_rows": 64}, {"block_bytes": 3000}):
+        for backend in ("serial", "threads"):
+            res = gradient_pass(tmp_path / name, req, backend=backend, **budget)
+            np.testing.assert_allclose(res.loss, f, rtol=1e-11)
+            np.testing.assert_allclose(res.G, G, rtol=1e-10, atol=1e-13)
+            np.testing.assert_allclose(res.G_VO, G @ np.hstack([V, Om]), rtol=1e-10,
+                                       atol=1e-13)
+            np.testing.assert_allclose(res.Gt_Psi, G.T @ Psi, rtol=1e-10, atol=1e-13)
