@@ -1,0 +1,128 @@
+"""dask.distributed backend: same pass partials as the serial backend, worker loss.
+
+The serial backend is the reference here; the gradient pass itself is checked
+against numpy/scipy in tests/test_gradient_pass.py.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import threading
+import time
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+
+distributed = pytest.importorskip("distributed", reason="dask.distributed not installed")
+
+from stream.cluster import cluster_client, parse_cluster, split_groups  # noqa: E402
+from stream.errors import ConfigError  # noqa: E402
+from stream.gradient_pass import PassRequest, gradient_pass  # noqa: E402
+from stream.store import write_store  # noqa: E402
+
+
+def _problem(tmp_path, n=3000, d=400, k=12, r=3, seed=5):
+    rng = np.random.default_rng(seed)
+    X = sp.random(n, d, density=0.02, format="csr", random_state=seed, dtype=np.float32)
+    y = rng.integers(0, k, size=n).astype(np.int32)
+    w = rng.uniform(0.5, 2.0, size=n).astype(np.float32)
+    path = tmp_path / "train.zarr"
+    write_store(path, X, y, weights=w)
+    U, _ = np.linalg.qr(rng.standard_normal((d, r)))
+    V, _ = np.linalg.qr(rng.standard_normal((k, r)))
+    Om = rng.standard_normal((k, 2))
+    Ps = rng.standard_normal((d, 2))
+    req = PassRequest(loss="softmax", U=U, s=np.array([3.0, 2.0, 1.0]), V=V,
+                      b=rng.standard_normal(k), Omega=Om, Psi=Ps, keep_projections=True)
+    return path, req
+
+
+@pytest.fixture(scope="module")
+def client():
+    with cluster_client("local:2") as c:
+        yield c
+
+
+def _assert_same(a, b, rtol):
+    assert a.n_rows == b.n_rows
+    np.testing.assert_allclose(a.loss, b.loss, rtol=rtol)
+    np.testing.assert_allclose(a.inner, b.inner, rtol=rtol, atol=1e-14)
+    for name in ("grad_b", "G_VO", "Gt_Psi", "Gt_U"):
+        x, y = getattr(a, name), getattr(b, name)
+        scale = max(np.abs(x).max(), 1e-300)
+        np.testing.assert_allclose(x, y, rtol=0, atol=rtol * scale, err_msg=name)
+    xq_a = np.vstack([p.XQ for p in a.projections])
+    xq_b = np.vstack([p.XQ for p in b.projections])
+    np.testing.assert_allclose(xq_a, xq_b, rtol=rtol)
+
+
+def test_parse_cluster_specs():
+    assert parse_cluster("local:3").n_workers == 3
+    assert parse_cluster("tcp://10.0.0.1:8786").address == "tcp://10.0.0.1:8786"
+    with pytest.raises(ConfigError, match="positive integer"):
+        parse_cluster("local:0")
+    with pytest.raises(ConfigError, match="expected local:N"):
+        parse_cluster("somewhere")
+
+
+def test_split_groups_contiguous():
+    assert split_groups(5, 2) == [(0, 2), (2, 5)] or split_groups(5, 2) == [(0, 3), (3, 5)]
+    assert split_groups(1, 4) == [(0, 1)]
+    groups = split_groups(17, 4)
+    assert groups[0][0] == 0 and groups[-1][1] == 17
+    assert all(a[1] == b[0] for a, b in zip(groups, groups[1:], strict=False))
+
+
+def test_dask_pass_equals_serial(tmp_path, client):
+    path, req = _problem(tmp_path)
+    serial = gradient_pass(path, req, backend="serial", block_rows=400)
+    dist = gradient_pass(path, req, backend="dask", block_rows=400)
+    _assert_same(serial, dist, 1e-12)
+
+
+def test_dask_pass_profile_has_every_block(tmp_path, client):
+    path, req = _problem(tmp_path)
+    res = gradient_pass(path, req, backend="dask", block_rows=500, profile=True)
+    recs = res.profile.records
+    assert sorted(r.first_row for r in recs) == list(range(0, 3000, 500))
+    assert sum(r.rows for r in recs) == 3000
+
+
+def test_worker_killed_mid_pass_gives_same_result(tmp_path, client):
+    path, req = _problem(tmp_path, n=20000)
+    serial = gradient_pass(path, req, backend="serial", block_rows=100)
+    pids = list(client.run(os.getpid).values())
+
+    def kill_one():
+        time.sleep(0.4)
+        os.kill(pids[0], signal.SIGKILL)
+
+    killer = threading.Thread(target=kill_one)
+    killer.start()
+    t0 = time.perf_counter()
+    dist = gradient_pass(path, req, backend="dask", block_rows=50)
+    wall = time.perf_counter() - t0
+    killer.join()
+    assert wall > 0.4, "the pass ended before the worker was killed; make it longer"
+    _assert_same(serial, dist, 1e-12)
+    # the killed worker really died (its nanny starts a new process)
+    deadline = time.monotonic() + 60
+    while True:
+        try:
+            now = set(client.run(os.getpid).values())
+            if len(now) == 2:
+                break
+        except Exception:
+            pass
+        if time.monotonic() > deadline:
+            raise AssertionError("the cluster did not recover two workers")
+        time.sleep(0.5)
+    assert pids[0] not in now
+
+
+def test_unreachable_scheduler_is_one_clear_error():
+    with pytest.raises(ConfigError, match="cannot reach the scheduler"):
+        with cluster_client("tcp://127.0.0.1:9", timeout=1):
+            pass
