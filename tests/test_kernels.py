@@ -298,3 +298,64 @@ def test_block_products_bad_input():
         prepare_operands(U=U, s=s, V=V, b=b, loss="hinge")
     with pytest.raises(ConfigError, match="s has 2 values but U has 3 columns"):
         prepare_operands(U=U, s=s[:2], V=V, b=b, loss="softmax")
+
+
+_WORKQUEUE_SCRIPT = r"""
+import json
+from concurrent.futures import ThreadPoolExecutor
+import numpy as np
+import scipy.sparse as sp
+from kernels.sparse import csr_t_matmul_accumulate
+from kernels.threads import threading_info
+
+X = sp.random(300, 200, density=0.1, format="csr", random_state=0)
+D = np.ones((300, 3))
+ref = X.T @ D
+def work(_):
+    ok = True
+    for _ in range(10):
+        out = np.zeros((200, 3))
+        csr_t_matmul_accumulate(X.indptr, X.indices, X.data, D, out)
+        ok &= bool(np.allclose(out, ref, rtol=1e-12))
+    return ok
+with ThreadPoolExecutor(max_workers=2) as ex:
+    ok = all(ex.map(work, range(4)))
+print(json.dumps({"info": threading_info(), "ok": ok}))
+"""
+
+
+def test_workqueue_layer_is_serialized(tmp_path):
+    # numba's workqueue layer aborts on concurrent parallel calls (numba docs,
+    # "Threading layers"); under it the kernels must serialize and stay correct.
+    import json
+    import os
+    import subprocess
+    import sys
+
+    env = dict(os.environ, NUMBA_THREADING_LAYER="workqueue")
+    proc = subprocess.run([sys.executable, "-c", _WORKQUEUE_SCRIPT], env=env,
+                          capture_output=True, text=True, timeout=240,
+                          cwd=os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    got = json.loads(proc.stdout.strip().splitlines()[-1])
+    assert got["info"]["layer"] == "workqueue"
+    assert got["info"]["serialized"] is True
+    assert got["ok"] is True
+
+
+def test_block_products_from_two_threads():
+    X, y, w, U, s, V, b, Psi, Om = _problem("softmax", n=200, seed=12)
+    ops = prepare_operands(U=U, s=s, V=V, b=b, loss="softmax", Psi=Psi, Omega=Om)
+    ref = ProductBuffers.zeros(ops)
+    block_products(X, y, w, ops, ref)
+
+    def work(_):
+        ok = True
+        for _ in range(10):
+            bufs = ProductBuffers.zeros(ops)
+            block_products(X, y, w, ops, bufs)
+            ok &= bool(np.array_equal(bufs.G_VO, ref.G_VO) and bufs.loss_sum[0] == ref.loss_sum[0])
+        return ok
+
+    with ThreadPoolExecutor(max_workers=2) as ex:
+        assert all(ex.map(work, range(4)))
