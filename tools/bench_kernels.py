@@ -10,7 +10,9 @@ sorted by frequency). Times, over all blocks of a set:
   ``out += X.T @ D``,
 
 each with numba's full thread count and with one thread. The baseline of the
-same run is scipy (``speedup = scipy seconds / ours``). Compilation is done
+same run is scipy (``speedup = scipy seconds / ours``). The row ``X^T @ D*``
+is the alternative design (thread-private d x m buffers summed in a fixed
+order), timed for comparison with the shipped column-partition kernel. Compilation is done
 before timing; each figure is the best of ``--repeat`` runs.
 
     .venv/bin/python tools/bench_kernels.py --out bench-out
@@ -26,12 +28,37 @@ from pathlib import Path
 import numba
 import numpy as np
 import scipy.sparse as sp
+from numba import njit, prange
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from kernels.sparse import csr_matmul_dense, csr_t_matmul_accumulate  # noqa: E402
 from stream.atomic import atomic_write_json  # noqa: E402
+
+
+@njit(nogil=True, cache=True, parallel=True)
+def _t_matmul_private_buffers(indptr, indices, data, D, bufs, out):  # pragma: no cover
+    """The alternative we did not ship: thread-private d x m buffers, one per
+    fixed row chunk, summed in chunk order (deterministic for a fixed chunk
+    count, but T extra d x m buffers and a d x m x T reduction per call)."""
+    n, m = D.shape
+    T = bufs.shape[0]
+    d = out.shape[0]
+    for t in prange(T):
+        for c in range(d):
+            for j in range(m):
+                bufs[t, c, j] = 0.0
+        for i in range(n * t // T, n * (t + 1) // T):
+            for q in range(indptr[i], indptr[i + 1]):
+                c = indices[q]
+                v = np.float64(data[q])
+                for j in range(m):
+                    bufs[t, c, j] += v * D[i, j]
+    for c in prange(d):
+        for t in range(T):
+            for j in range(m):
+                out[c, j] += bufs[t, c, j]
 
 
 def make_blocks(*, nnz: int, block_nnz: int, cols: int, per_row: int, kind: str,
@@ -92,6 +119,13 @@ def bench_set(blocks, *, m: int, repeat: int, threads: int, seed: int) -> list[d
         for X, D in zip(blocks, Ds, strict=True):
             csr_t_matmul_accumulate(X.indptr, X.indices, X.data, D, acc)
 
+    bufs = np.zeros((threads, d, m))
+
+    def private_tm():
+        acc[...] = 0.0
+        for X, D in zip(blocks, Ds, strict=True):
+            _t_matmul_private_buffers(X.indptr, X.indices, X.data, D, bufs, acc)
+
     def scipy_tm():
         acc[...] = 0.0
         for X, D in zip(blocks, Ds, strict=True):
@@ -107,6 +141,7 @@ def bench_set(blocks, *, m: int, repeat: int, threads: int, seed: int) -> list[d
     if not np.allclose(a0, X0.T @ Ds[0], rtol=1e-5, atol=1e-6):
         raise SystemExit("bench_kernels: csr_t_matmul_accumulate disagrees with scipy")
 
+    _t_matmul_private_buffers(X0.indptr, X0.indices, X0.data, Ds[0], bufs, np.zeros((d, m)))
     rows = []
     t_sc_mm = _best(scipy_mm, repeat)
     t_sc_tm = _best(scipy_tm, repeat)
@@ -114,7 +149,11 @@ def bench_set(blocks, *, m: int, repeat: int, threads: int, seed: int) -> list[d
         numba.set_num_threads(nt)
         t_mm = _best(ours_mm, repeat)
         t_tm = _best(ours_tm, repeat)
-        for op, ours, base in (("X @ B", t_mm, t_sc_mm), ("X^T @ D", t_tm, t_sc_tm)):
+        t_pb = _best(private_tm, repeat) if nt == threads else np.nan
+        for op, ours, base in (("X @ B", t_mm, t_sc_mm), ("X^T @ D", t_tm, t_sc_tm),
+                               ("X^T @ D*", t_pb, t_sc_tm)):
+            if not np.isfinite(ours):
+                continue
             rows.append({"op": op, "m": m, "threads": nt, "nnz": nnz, "blocks": len(blocks),
                          "ours_s": ours, "scipy_s": base, "speedup": base / ours,
                          "ours_mnnz_per_s": nnz / ours / 1e6})
@@ -144,12 +183,12 @@ def main(argv: list[str] | None = None) -> int:
                 row["columns"] = kind
                 results.append(row)
         del blocks
-    head = f"{'columns':<8} {'op':<8} {'m':>3} {'thr':>3} {'nnz':>10} " \
+    head = f"{'columns':<8} {'op':<9} {'m':>3} {'thr':>3} {'nnz':>10} " \
            f"{'ours s':>8} {'scipy s':>8} {'speedup':>8} {'Mnnz/s':>8}"
     print(head)
     print("-" * len(head))
     for r in results:
-        print(f"{r['columns']:<8} {r['op']:<8} {r['m']:>3} {r['threads']:>3} {r['nnz']:>10} "
+        print(f"{r['columns']:<8} {r['op']:<9} {r['m']:>3} {r['threads']:>3} {r['nnz']:>10} "
               f"{r['ours_s']:>8.3f} {r['scipy_s']:>8.3f} {r['speedup']:>8.2f} "
               f"{r['ours_mnnz_per_s']:>8.1f}")
     if args.out:
