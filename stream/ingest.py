@@ -259,8 +259,11 @@ def _drain(
         r0 = bid * bk.width
         r1 = min(n_rows, r0 + bk.width)
         path = bk.file(bid)
-        if bk.counts[bid] > max_entries and bk.width > 1:
-            sub = _Buckets(bk.root / f"split-{bid}", -(-bk.width * max_entries // bk.counts[bid]))
+        if bk.counts[bid] > max_entries * 5 // 4 and bk.width > 1:
+            # too big to sort in the budget: re-bucket by a finer row range
+            # (at least halving the width, so the recursion ends)
+            finer = min(bk.width // 2, -(-bk.width * max_entries // bk.counts[bid]))
+            sub = _Buckets(bk.root / f"split-{bid}", max(1, finer))
             with open(path, "rb") as fh:
                 while True:
                     rec = np.fromfile(fh, dtype=_REC, count=max_entries)
