@@ -458,8 +458,8 @@ def _ingest_npz(hdr, out, tsrc, memory, a) -> tuple[Any, _RowSink, int, int]:
         j = int(np.flatnonzero(bad)[0])
         r = int(np.searchsorted(M.indptr, j, side="right")) - 1
         raise InputError(
-            f"{hdr.path}: entry (row {r}, column {int(M.indices[j])}): value {M.data[j]!r} is not "
-            "finite; remove it or give a finite value"
+            f"{hdr.path}: entry (row {r}, column {int(M.indices[j])}): value "
+            f"{float(M.data[j])!r} is not finite; remove it or give a finite value"
         )
     if tsrc is not None:
         tsrc.check_rows(n_rows)

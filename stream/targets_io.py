@@ -171,8 +171,8 @@ class TargetSource:
             if bad.any():
                 r, c = (int(v[0]) for v in np.nonzero(bad))
                 raise InputError(
-                    f"{self.path}: row {a + r}, column {c}: target value {piece[r, c]!r} is not "
-                    "finite (as float32); fix the value"
+                    f"{self.path}: row {a + r}, column {c}: target value "
+                    f"{float(piece[r, c])!r} is not finite (as float32); fix the value"
                 )
             writer.append_targets(values=piece.astype(np.float32))
 
@@ -315,8 +315,8 @@ class WeightSource:
                     j = int(np.flatnonzero(bad)[0])
                     at = line + int(kp.entry_line(buf, pos, stop, comment, j))
                     raise InputError(
-                        f"{self.path}: line {at}: weight {w[j]!r} is invalid; weights must be "
-                        "finite and >= 0"
+                        f"{self.path}: line {at}: weight {float(w[j])!r} is invalid; "
+                        "weights must be finite and >= 0"
                     )
                 writer.append_weights(w.astype(np.float32))
                 count += n
@@ -345,7 +345,8 @@ def _check_weights(p: Path, w: np.ndarray, first: int, unit: str) -> None:
     if bad.any():
         j = int(np.flatnonzero(bad)[0])
         raise InputError(
-            f"{p}: {unit} {first + j}: weight {w[j]!r} is invalid; weights must be finite and >= 0"
+            f"{p}: {unit} {first + j}: weight {float(w[j])!r} is invalid; "
+            "weights must be finite and >= 0"
         )
 
 
