@@ -49,6 +49,8 @@ def _request_safe_layer() -> None:
     if launch is None:  # pragma: no cover
         return
     old = numba.config.THREADING_LAYER
+    if old != "default":
+        return  # chosen in-process through numba.config: respected likewise
     numba.config.THREADING_LAYER = "threadsafe"
     try:
         launch()
