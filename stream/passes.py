@@ -115,7 +115,14 @@ def phase(name: str) -> Any:
 # ---------------------------------------------------------------------------
 @dataclass(frozen=True)
 class BlockRecord:
-    """Timings and sizes of one block of one pass (seconds, bytes)."""
+    """Timings and sizes of one block of one pass (seconds, bytes).
+
+    ``phases`` holds the named phases of the block function, ``fold_phases``
+    those of the combine that folded the block in; ``compute_s`` is the block
+    function's whole time, ``fold_s`` the combine's whole time and
+    ``combine_s`` the part of it outside named phases; ``wait_s`` is how long
+    the computing thread waited for the block to be read.
+    """
 
     pass_index: int
     block: int
@@ -130,6 +137,25 @@ class BlockRecord:
     compute_s: float
     combine_s: float
     wait_s: float
+    fold_s: float = 0.0
+    fold_phases: dict[str, float] = field(default_factory=dict)
+
+    def all_phases(self) -> dict[str, float]:
+        """Block and combine phases together (seconds by name)."""
+        out = dict(self.phases)
+        for name, sec in self.fold_phases.items():
+            out[name] = out.get(name, 0.0) + sec
+        return out
+
+    @property
+    def io_s(self) -> float:
+        """Seconds reading and decoding the block."""
+        return self.read_s + self.decode_s
+
+    @property
+    def work_s(self) -> float:
+        """Seconds computing the block: its function plus its share of the combine."""
+        return self.compute_s + self.fold_s
 
 
 @dataclass
@@ -152,7 +178,7 @@ class PassProfile:
         """Kernel phase names in first-seen order."""
         seen: dict[str, None] = {}
         for r in self.records:
-            for name in r.phases:
+            for name in (*r.phases, *r.fold_phases):
                 seen.setdefault(name, None)
         return list(seen)
 
@@ -173,7 +199,7 @@ class PassProfile:
             for key in out:
                 out[key] += getattr(r, key)
         for name in self.phase_names():
-            out[f"phase:{name}"] = sum(r.phases.get(name, 0.0) for r in self.records)
+            out[f"phase:{name}"] = sum(r.all_phases().get(name, 0.0) for r in self.records)
         out["wall_s"] = sum(p["wall_s"] for p in self.passes)
         return out
 
@@ -400,11 +426,10 @@ class _Folder:
                 self.acc = partial if self.acc is _EMPTY else self.combine([self.acc, partial])
             finally:
                 _local.timer = None
-            combine_s = time.perf_counter() - t0 - sum(timer.phases.values())
-            merged = dict(phases or {})
-            for name, sec in timer.phases.items():
-                merged[name] = merged.get(name, 0.0) + sec
-            self._record(index, block, merged, compute_s, max(combine_s, 0.0), wait_s)
+            fold_s = time.perf_counter() - t0
+            combine_s = max(fold_s - sum(timer.phases.values()), 0.0)
+            self._record(index, block, phases or {}, compute_s, combine_s, wait_s, fold_s,
+                         timer.phases)
         if self.bar is not None:
             self._progress(block)
 
@@ -416,6 +441,8 @@ class _Folder:
         compute_s: float,
         combine_s: float,
         wait_s: float,
+        fold_s: float,
+        fold_phases: dict,
     ) -> None:
         io = getattr(block, "io", None) or {}
         self.profile.records.append(
@@ -433,6 +460,8 @@ class _Folder:
                 compute_s=compute_s,
                 combine_s=combine_s,
                 wait_s=wait_s,
+                fold_s=fold_s,
+                fold_phases=dict(fold_phases),
             )
         )
 
