@@ -277,8 +277,10 @@ def block_products(
         Accumulators, from ``ProductBuffers.zeros(ops)``.
     out_XQ : (n_b, r + p') float64, optional
         Caller-owned output for the projections (allocated when None).
-    scratch : (>= n_b * k,) float64, optional
-        Reused memory for the block's scores/residual.
+    scratch : (>= n_b * k,) float64 C-contiguous, optional
+        Reused memory for the block's scores/residual. When given, it holds
+        the block's residual ``R`` (unnormalized, ``w_i * dloss/dz_i``) on
+        return: ``scratch[:n_b * k].reshape(n_b, k)``.
     row_offset : int
         Absolute row index of the block's first row (error messages).
     where : str
@@ -300,10 +302,19 @@ def block_products(
     if out_XQ is None:
         out_XQ = np.empty((n, q))
     csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where)
-    if scratch is not None and scratch.dtype == np.float64 and scratch.size >= n * k:
+    if scratch is None:
+        S = np.empty((n, k))
+    elif (
+        isinstance(scratch, np.ndarray)
+        and scratch.dtype == np.float64
+        and scratch.size >= n * k
+        and scratch.flags.c_contiguous
+    ):
         S = scratch.reshape(-1)[: n * k].reshape(n, k)
     else:
-        S = np.empty((n, k))
+        raise ConfigError(
+            f"{where}: scratch must be a C-contiguous float64 array of at least {n * k} values"
+        )
     if r:
         np.dot(out_XQ[:, :r], ops.SVt, out=S)
         S += ops.b

@@ -359,3 +359,14 @@ def test_block_products_from_two_threads():
 
     with ThreadPoolExecutor(max_workers=2) as ex:
         assert all(ex.map(work, range(4)))
+
+
+def test_block_products_scratch_holds_residual():
+    X, y, w, U, s, V, b, Psi, Om = _problem("squared", n=50, seed=13)
+    ops = prepare_operands(U=U, s=s, V=V, b=b, loss="squared", Psi=Psi, Omega=Om)
+    scratch = np.empty(50 * 6 + 7)
+    block_products(X, y, w, ops, ProductBuffers.zeros(ops), scratch=scratch)
+    _, _, R = _dense_reference(X.toarray().astype(np.float64), y, w, U, s, V, b, "squared")
+    np.testing.assert_allclose(scratch[:300].reshape(50, 6), R, rtol=1e-10, atol=1e-12)
+    with pytest.raises(ConfigError, match="scratch must be a C-contiguous float64 array"):
+        block_products(X, y, w, ops, ProductBuffers.zeros(ops), scratch=np.empty(10))
