@@ -254,22 +254,26 @@ def multilabel_loss_only_kernel(
     return _reduce_partials(part, bad, out_loss, np.zeros(0))
 
 
-@njit(nogil=True, cache=True, parallel=True)
+@njit(nogil=True, cache=True)
 def fold_class_weights_kernel(y, class_weights, w, out):  # pragma: no cover - compiled
-    """``out[i] = w[i] * class_weights[y[i]]`` (empty ``w``: ones); -1 or first bad row."""
+    """``out[i] = w[i] * class_weights[y[i]]`` (empty ``w``: ones); -1 or first bad row.
+
+    Serial: one multiply per row is memory-bound, threads would not pay off.
+    """
     n = y.shape[0]
     k = class_weights.shape[0]
     has_w = w.shape[0] > 0
-    first = n
-    for i in prange(n):
+    first = -1
+    for i in range(n):
         yi = y[i]
         if yi < 0 or yi >= k:
             out[i] = 0.0
-            first = min(first, i)
+            if first < 0:
+                first = i
             continue
         wi = w[i] if has_w else 1.0
         out[i] = wi * class_weights[yi]
-    return -1 if first == n else first
+    return first
 
 
 # ----------------------------------------------------------------------------
