@@ -415,8 +415,12 @@ class StoreWriter:
             self.commit()
 
     def __del__(self) -> None:
+        # A writer dropped without commit() must not leave its temporary behind.
         if getattr(self, "_open", False):
-            self._abort_quietly()
+            try:
+                self._abort_quietly()
+            except Exception:  # interpreter shutdown: modules may already be gone
+                pass
 
     # ----------------------------------------------------------------- rows
     @_aborts_on_error

@@ -425,6 +425,24 @@ class TestHdf5Store(StoreContract):
             change(attrs)
             fh.attrs["ranktide"] = json.dumps(attrs)
 
+    @pytest.mark.parametrize("codec", ["zstd", "lz4", "none"])
+    def test_direct_chunk_decoding_matches_h5py(self, tmp_path, codec):
+        # reference: h5py's own dataset read of the same file
+        rng = np.random.default_rng(12)
+        X = random_csr(rng, 90, 30, 0.3)
+        V = rng.standard_normal((90, 3)).astype(np.float32)
+        path = self.path(tmp_path)
+        with small_chunks(24):
+            write_store(path, X, V, backend="hdf5", codec=codec).close()
+        with h5py.File(path, "r") as fh, open_store(path, verify=False) as s:
+            be = s._be
+            for name in ("indptr", "indices", "data", "targets/values"):
+                want = fh[name][...]
+                n = want.shape[0]
+                np.testing.assert_array_equal(be.read(name, 0, n), want)
+                assert (be._decoders[name] is None) == (codec == "none")
+                np.testing.assert_array_equal(be.read(name, 5, n), want[5:])
+
 
 # ------------------------------------------------------------------- across backends
 
