@@ -29,13 +29,17 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 
 _CHILD = r"""
-import json, resource, sys, time
+import json, sys, time
 from stream.ingest import ingest
+def _hwm_kib():
+    # VmHWM: the peak RSS of this process image (getrusage would include the parent's)
+    with open("/proc/self/status") as fh:
+        return int([x for x in fh if x.startswith("VmHWM")][0].split()[1])
 t = time.perf_counter()
 s = ingest(sys.argv[1], sys.argv[2], memory=sys.argv[3], overwrite=True)
 print(json.dumps({"seconds": time.perf_counter() - t, "entries": s.entries_read,
                   "sorted": s.sorted_input, "buckets": s.buckets,
-                  "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+                  "peak_rss_mib": _hwm_kib() / 1024}))
 """
 
 
