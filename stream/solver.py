@@ -244,8 +244,9 @@ class SolverState:
 
     def to_checkpoint(self) -> tuple[dict[str, np.ndarray], dict]:
         """Arrays and JSON-able metadata that :meth:`from_checkpoint` restores exactly."""
-        arrays = {name: np.ascontiguousarray(getattr(self, name), dtype=np.float64)
-                  for name in _ARRAYS}
+        # keep each array's memory order (C or Fortran): BLAS rounds differently by layout,
+        # and an exact resume needs the same products as the uninterrupted run (np.save keeps it)
+        arrays = {name: np.asarray(getattr(self, name), dtype=np.float64) for name in _ARRAYS}
         meta = {name: _jsonable(getattr(self, name)) for name in _SCALARS}
         meta["rng_state"] = _jsonable(self.rng_state)
         meta["state_version"] = STATE_VERSION
@@ -510,6 +511,8 @@ class GreedySolver:
         cfg, st = self.config, self.state
         st.Psi = _fill(st.Psi, st.U, cfg.expand_size, self._rng, cap=2 * cfg.expand_size)
         st.Omega = _fill(st.Omega, st.V, cfg.power_size, self._rng)
+        # keep the generator's position in the state, so a checkpoint resumes the same draws
+        st.rng_state = self._rng.bit_generator.state
         self._check_projections_fit(st.rank + st.Psi.shape[1])
         req = PassRequest(loss=cfg.loss, U=st.U, s=st.s, V=st.V, b=st.b, Omega=st.Omega,
                           Psi=st.Psi, class_weights=cfg.class_weights, keep_projections=True,
