@@ -34,6 +34,8 @@ _ZSTD_FILTER = 32015  # registered HDF5 filter ids (hdf5plugin)
 _BLOSC_FILTER = 32001
 _POOL_LOCK = threading.Lock()
 _POOL: ThreadPoolExecutor | None = None
+#: Reads smaller than this decode inline: handing tiny chunks to threads costs more.
+_POOL_MIN_BYTES = 1 << 20
 
 
 def _pool() -> ThreadPoolExecutor:
@@ -211,11 +213,15 @@ class Hdf5Backend(StoreBackend):
         c = ds.chunks[0]
         full = int(np.prod(ds.chunks)) * ds.dtype.itemsize
         tail = (0,) * (len(ds.shape) - 1)
+        inline = out.nbytes < _POOL_MIN_BYTES or stop - start <= c
         futures = []
         for lo in range(start, stop, c):
             mask, raw = ds.id.read_direct_chunk((lo,) + tail)
             piece = out[lo - start : min(stop, lo + c) - start]
-            futures.append(_pool().submit(_decode_into, decoder, raw, mask, piece, full))
+            if inline:
+                _decode_into(decoder, raw, mask, piece, full)
+            else:
+                futures.append(_pool().submit(_decode_into, decoder, raw, mask, piece, full))
         for fut in futures:
             fut.result()
 

@@ -33,6 +33,8 @@ __all__ = ["ZarrBackend"]
 _CONFIG_LOCK = threading.Lock()
 _CONFIGURED = False
 _POOL: ThreadPoolExecutor | None = None
+#: Reads smaller than this decode inline: handing tiny chunks to threads costs more.
+_POOL_MIN_BYTES = 1 << 20
 
 
 def _tune_zarr() -> None:
@@ -152,8 +154,9 @@ class _DirectChunks:
         for j in range(start // c, -(-stop // c)):
             lo, hi = j * c, min(stop, (j + 1) * c)
             jobs.append((j, out[lo - start : hi - start]))
-        if len(jobs) == 1:
-            self._chunk(*jobs[0])
+        if len(jobs) == 1 or out.nbytes < _POOL_MIN_BYTES:
+            for j, o in jobs:
+                self._chunk(j, o)
             return
         for fut in [_pool().submit(self._chunk, j, o) for j, o in jobs]:
             fut.result()

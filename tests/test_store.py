@@ -22,6 +22,7 @@ import scipy.sparse as sp
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from stream import atomic as atomic_mod
 from stream import store as store_mod
 from stream.checksums import SegmentHasher, segment_checksum
 from stream.errors import ConfigError, InputError, OutputExistsError, StoreError
@@ -38,6 +39,14 @@ HSETTINGS = settings(
         HealthCheck.differing_executors,
     ],
 )
+
+
+@pytest.fixture(autouse=True)
+def _no_fsync(monkeypatch):
+    """Skip fsync in these tests: they check content and naming, not durability,
+    and on a busy disk hundreds of tiny fsyncs dominate the run time."""
+    monkeypatch.setattr(atomic_mod, "fsync_tree", lambda path: None)
+    monkeypatch.setattr(atomic_mod, "fsync_dir", lambda path: None)
 
 
 @contextmanager
@@ -74,7 +83,7 @@ def csr_matrices(draw):
     """Random sparse matrices: 1x1, zero nnz, empty rows and empty columns included."""
     n = draw(st.integers(0, 60))
     d = draw(st.integers(1, 40))
-    density = draw(st.sampled_from([0.0, 0.02, 0.2, 0.9]))
+    density = draw(st.sampled_from([0.0, 0.02, 0.2, 0.6]))
     seed = draw(st.integers(0, 2**31 - 1))
     rng = np.random.default_rng(seed)
     X = random_csr(rng, n, d, density)
@@ -106,7 +115,7 @@ class StoreContract:
     @HSETTINGS
     @given(
         mat=csr_matrices(),
-        chunk=st.sampled_from([3, 16, 64]),
+        chunk=st.sampled_from([7, 32, 256]),
         budget=st.one_of(
             st.tuples(st.just("rows"), st.integers(1, 70)),
             st.tuples(st.just("bytes"), st.integers(1, 4000)),
