@@ -508,3 +508,67 @@ def split_tokens(buf, start, stop, split, tok_start, tok_len, line_ntok, status)
     status[ST_POS] = min(p, stop)
     status[ST_LINES] = nl
     status[ST_ENTRIES] = nt
+
+
+@njit(nogil=True, cache=True)
+def entries_to_csr(rows, cols, vals, r0, m, indptr, out_cols, out_vals, status):
+    """Gather row-sorted entries into CSR, summing repeated (row, column) pairs.
+
+    Parameters
+    ----------
+    rows, cols : int64 arrays (n,)
+        Entries sorted by row; within a row, columns should increase.
+    vals : float64 array (n,)
+    r0, m : int
+        The rows covered are ``r0 .. r0+m-1`` (every ``rows[i]`` is in range).
+    indptr : int64 array (m+1,)
+        Out: local row pointers.
+    out_cols : int64 array (n,)
+        Out: column ids, strictly increasing within each row.
+    out_vals : float64 array (n,)
+        Out: values, repeats summed in input order.
+    status : int64 array (8,)
+        Out: ``[0]`` = 0 done, 1 = a row's columns go down at entry ``[1]``
+        (sort the entries by (row, column) and call again), 2 = rows go down
+        at entry ``[1]``; ``[2]`` = entries written; ``[3]`` = repeats summed;
+        ``[4]`` = empty rows.
+    """
+    for i in range(status.shape[0]):
+        status[i] = 0
+    n = rows.shape[0]
+    k = -1
+    prev_r = -1
+    prev_c = -1
+    dups = 0
+    for i in range(m + 1):
+        indptr[i] = 0
+    for i in range(n):
+        r = rows[i] - r0
+        c = cols[i]
+        if r == prev_r:
+            if c == prev_c:
+                out_vals[k] += vals[i]
+                dups += 1
+                continue
+            if c < prev_c:
+                status[0] = 1
+                status[1] = i
+                return
+        elif r < prev_r:
+            status[0] = 2
+            status[1] = i
+            return
+        k += 1
+        out_cols[k] = c
+        out_vals[k] = vals[i]
+        indptr[r + 1] += 1
+        prev_r = r
+        prev_c = c
+    empty = 0
+    for i in range(m):
+        if indptr[i + 1] == 0:
+            empty += 1
+        indptr[i + 1] += indptr[i]
+    status[2] = k + 1
+    status[3] = dups
+    status[4] = empty

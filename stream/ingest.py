@@ -16,18 +16,30 @@ temporary name and renamed only when complete.
 from __future__ import annotations
 
 import os
+import queue
 import shutil
 import sys
+import threading
 import time
 import uuid
+from collections.abc import Iterator
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from kernels import parse as kp
+
 from .errors import ConfigError, InputError, OutputExistsError
-from .mmio import CHUNK_BYTES, MatrixHeader, iter_entries, load_npz_matrix_whole, read_header
+from .mmio import (
+    CHUNK_BYTES,
+    EntryChunk,
+    MatrixHeader,
+    iter_entries,
+    load_npz_matrix_whole,
+    read_header,
+)
 from .targets_io import TargetSource, WeightSource, open_targets, open_weights
 
 __all__ = ["IngestSummary", "ingest", "DUPLICATES"]
@@ -109,6 +121,61 @@ class IngestSummary:
         return "\n".join(f"{k:<{w}}  {v}" for k, v in rows)
 
 
+# --------------------------------------------------------------------------- read-ahead
+
+
+_END = object()
+
+
+def _read_ahead(chunks: Iterator[EntryChunk], depth: int = 2) -> Iterator[EntryChunk]:
+    """Parse the next chunks in a background thread while this one is written.
+
+    The parser kernel releases the GIL, so parsing overlaps with sorting,
+    compression and writing. Chunks are copied out of the parser's reused
+    buffers; at most ``depth`` wait in the queue. An error in the parser is
+    raised here, in order; leaving the loop early stops the thread.
+    """
+    q: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+
+    def put(item: Any) -> bool:
+        while not stop.is_set():
+            try:
+                q.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def work() -> None:
+        try:
+            for ch in chunks:
+                item = EntryChunk(ch.rows.copy(), ch.cols.copy(), ch.vals.copy(), ch.bytes_done)
+                if not put(item):
+                    return
+            put(_END)
+        except BaseException as exc:  # handed to the consumer
+            put(exc)
+        finally:
+            close = getattr(chunks, "close", None)
+            if close is not None:
+                close()  # the reader's file, when the consumer stopped early
+
+    t = threading.Thread(target=work, name="ranktide-ingest-parse", daemon=True)
+    t.start()
+    try:
+        while True:
+            item = q.get()
+            if item is _END:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+    finally:
+        stop.set()
+        t.join()
+
+
 # --------------------------------------------------------------------------- rows -> CSR
 
 
@@ -141,42 +208,38 @@ class _RowSink:
         """Append rows ``r0:r1`` from their entries (rows within, any order)."""
         self.empty_rows(r0)
         m = r1 - r0
-        local = rows - r0
-        if m * self.n_cols < 2**62:
-            key = local * self.n_cols + cols
-            if key.size > 1 and not (key[1:] >= key[:-1]).all():
-                order = np.argsort(key, kind="stable")
-                key, local, cols, vals = key[order], local[order], cols[order], vals[order]
-            new = np.empty(key.shape[0], dtype=bool)
-            if key.size:
-                new[0] = True
-                np.not_equal(key[1:], key[:-1], out=new[1:])
-        else:
-            order = np.lexsort((cols, local))
-            local, cols, vals = local[order], cols[order], vals[order]
-            new = np.ones(local.shape[0], dtype=bool)
-            new[1:] = (local[1:] != local[:-1]) | (cols[1:] != cols[:-1])
-        n_dup = int(new.size - np.count_nonzero(new))
-        if n_dup:
-            if self.duplicates == "error":
-                j = int(np.flatnonzero(~new)[0])
-                base = 1 if self.hdr.one_based else 0
-                raise InputError(
-                    f"{self.hdr.path}: entry (row {r0 + int(local[j]) + base}, column "
-                    f"{int(cols[j]) + base}) appears more than once; remove the repeat or "
-                    "pass --duplicates sum to add them"
-                )
-            starts = np.flatnonzero(new)
-            vals = np.add.reduceat(vals, starts)
-            local, cols = local[starts], cols[starts]
-            self.dups += n_dup
-        counts = np.bincount(local, minlength=m)
-        indptr = np.zeros(m + 1, dtype=np.int64)
-        np.cumsum(counts, out=indptr[1:])
-        self.writer.append(indptr, cols, vals)
-        self.empty += int(m - np.count_nonzero(counts))
-        self.nnz += int(cols.shape[0])
+        n = rows.shape[0]
+        indptr = np.empty(m + 1, dtype=np.int64)
+        out_c = np.empty(n, dtype=np.int64)
+        out_v = np.empty(n, dtype=np.float64)
+        st = np.zeros(8, dtype=np.int64)
+        kp.entries_to_csr(rows, cols, vals, r0, m, indptr, out_c, out_v, st)
+        if st[0] != 0:  # not in (row, column) order: sort, then gather again
+            if m * self.n_cols < 2**62:
+                order = np.argsort((rows - r0) * self.n_cols + cols, kind="stable")
+            else:
+                order = np.lexsort((cols, rows))
+            rows, cols, vals = rows[order], cols[order], vals[order]
+            kp.entries_to_csr(rows, cols, vals, r0, m, indptr, out_c, out_v, st)
+        k, n_dup = int(st[2]), int(st[3])
+        if n_dup and self.duplicates == "error":
+            self._refuse_duplicate(r0, indptr, out_c, rows, cols)
+        self.writer.append(indptr, out_c[:k], out_v[:k])
+        self.dups += n_dup
+        self.empty += int(st[4])
+        self.nnz += k
         self.next_row = r1
+
+    def _refuse_duplicate(self, r0, indptr, out_c, rows, cols) -> None:
+        key_r = rows[1:] == rows[:-1]
+        same = np.flatnonzero(key_r & (cols[1:] == cols[:-1]))
+        j = int(same[0]) + 1
+        base = 1 if self.hdr.one_based else 0
+        raise InputError(
+            f"{self.hdr.path}: entry (row {int(rows[j]) + base}, column "
+            f"{int(cols[j]) + base}) appears more than once; remove the repeat or "
+            "pass --duplicates sum to add them"
+        )
 
 
 class _SortedStream:
@@ -393,7 +456,7 @@ def _stream_sorted(hdr, out, tsrc, plan, a, bar) -> tuple[Any, _RowSink, int] | 
     stream = _SortedStream(sink)
     total = 0
     try:
-        for ch in iter_entries(hdr, chunk_bytes=plan.chunk_bytes, on_progress=bar):
+        for ch in _read_ahead(iter_entries(hdr, chunk_bytes=plan.chunk_bytes, on_progress=bar)):
             stream.add(ch.rows, ch.cols, ch.vals)
             total += ch.rows.shape[0]
         stream.finish(hdr.n_rows)
@@ -412,7 +475,7 @@ def _bucket_route(hdr, out, tsrc, plan, a, bar, scratch: Path) -> tuple[Any, _Ro
     bk = None
     total = 0
     max_r = max_c = -1
-    for ch in iter_entries(hdr, chunk_bytes=plan.chunk_bytes, on_progress=bar):
+    for ch in _read_ahead(iter_entries(hdr, chunk_bytes=plan.chunk_bytes, on_progress=bar)):
         if bk is None:
             bk = _Buckets(scratch, _bucket_width(hdr, ch, plan))
         bk.add(ch.rows, ch.cols, ch.vals)

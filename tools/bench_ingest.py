@@ -84,11 +84,12 @@ def write_mm(path: Path, rows: np.ndarray, cols: np.ndarray, n_rows: int, n_cols
 
 
 def make_entries(n_entries: int, n_rows: int, n_cols: int, seed: int = 0):
-    """Row-sorted unique-ish random entries (0-based)."""
+    """Random entries (0-based) sorted by (row, column), as a row-major writer emits them."""
     rng = np.random.default_rng(seed)
-    rows = np.sort(rng.integers(0, n_rows, n_entries))
+    rows = rng.integers(0, n_rows, n_entries)
     cols = rng.integers(0, n_cols, n_entries)
-    return rows, cols
+    order = np.lexsort((cols, rows))
+    return rows[order], cols[order]
 
 
 def _read_rate(path: Path) -> float:
