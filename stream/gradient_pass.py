@@ -115,6 +115,9 @@ class PassRequest:
             cw = _mat("class_weights", self.class_weights, 1)
             if cw.shape != (k,) or np.any(cw < 0):
                 raise ConfigError(f"pass request: class_weights must be {k} values >= 0")
+            if self.loss != "softmax":
+                raise ConfigError("pass request: class weights apply to the softmax loss only; "
+                                  f"drop them for loss {self.loss!r}")
         for name, val in (
             ("U", U),
             ("s", s),

@@ -9,13 +9,12 @@ pass can sum blocks before it knows the total):
 loss        targets (kind)       loss(z; y)
 =========== ==================== ========================================
 softmax     class ids (classes)  logsumexp(z) - z_y
-squared     values (values)      0.5 * sum_j c_j (z_j - y_j)^2
-multilabel  tags (tags)          sum_j c_j (log(1 + exp(z_j)) - y_j z_j)
+squared     values (values)      0.5 * sum_j (z_j - y_j)^2
+multilabel  tags (tags)          sum_j log(1 + exp(z_j)) - y_j z_j
 =========== ==================== ========================================
 
-Class weights ``c`` (k,): for softmax a row's weight becomes ``w_i c_{y_i}``
-(and the total weight sums those); for squared and multilabel ``c_j`` scales
-output ``j``'s term and the total weight stays ``sum_i w_i``.
+Class weights ``c`` (k,) apply to softmax only: a row's weight becomes
+``w_i c_{y_i}`` and the total weight sums those (as in :mod:`kernels.products`).
 
 :func:`best_intercept` streams over a source once and returns the intercept
 that minimizes ``f(0, b)``: log class frequencies (mean-centred), the weighted
@@ -30,7 +29,6 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.special import expit
 
 from .errors import ConfigError, InputError
 
@@ -56,7 +54,8 @@ def row_weights(n: int, weights: np.ndarray | None) -> np.ndarray:
 class Loss:
     """One loss: its name and the target kind it needs.
 
-    Use :meth:`value_residual` on a block of dense scores.
+    Use :meth:`value_residual` on a block of dense scores; the arithmetic is
+    the fused kernels of :mod:`kernels.losses`.
     """
 
     name: str
@@ -69,6 +68,8 @@ class Loss:
         weights: np.ndarray | None = None,
         *,
         class_weights: np.ndarray | None = None,
+        out: np.ndarray | None = None,
+        where: str = "scores",
     ) -> tuple[float, float, np.ndarray]:
         """Weighted loss sum, weight sum and raw weighted residual of a block.
 
@@ -81,7 +82,12 @@ class Loss:
         weights : (n,) array, optional
             Raw row weights (ones when omitted).
         class_weights : (k,) array, optional
-            Per-class (softmax) or per-output weights.
+            Per-class weights (softmax only).
+        out : (n, k) float64 array, optional
+            Where to write the residual (may be ``scores`` itself, which is
+            then overwritten); a new array by default.
+        where : str
+            Name of the data for error messages.
 
         Returns
         -------
@@ -92,62 +98,39 @@ class Loss:
         residual : (n, k) float64 array
             ``w_i * dloss/dz_i`` for each row.
         """
+        from kernels import losses as kl
+
         Z = np.asarray(scores, dtype=np.float64)
+        if Z.ndim != 2:
+            raise ConfigError(f"{where}: scores must be 2-D (n, k), got shape {Z.shape}")
         n, k = Z.shape
-        w = row_weights(n, weights)
-        c = None if class_weights is None else np.asarray(class_weights, dtype=np.float64)
+        if out is None:
+            R = np.array(Z, dtype=np.float64, order="C", copy=True)
+        else:
+            R = out
+            if R is not Z:
+                R[...] = Z
+        w = None if weights is None else np.asarray(weights, dtype=np.float64)
+        if class_weights is not None:
+            if self.name != "softmax":
+                raise ConfigError("class weights apply to the softmax loss only; drop them "
+                                  f"for loss {self.name!r}")
+            y = np.asarray(targets, dtype=np.int32)
+            w = kl.fold_class_weights(y, np.asarray(class_weights, dtype=np.float64), w,
+                                      where=where)
+        loss = np.zeros(1)
+        gradb = np.zeros(k)
         if self.name == "softmax":
-            return _softmax(Z, np.asarray(targets), w, c)
-        if self.name == "squared":
-            return _squared(Z, np.asarray(targets, dtype=np.float64), w, c)
-        return _multilabel(Z, targets, w, c)
-
-
-def _softmax(Z: np.ndarray, y: np.ndarray, w: np.ndarray, c: np.ndarray | None):
-    n = Z.shape[0]
-    rows = np.arange(n)
-    if c is not None:
-        w = w * c[y]
-    m = Z.max(axis=1, keepdims=True)
-    E = np.exp(Z - m)
-    tot = E.sum(axis=1, keepdims=True)
-    lse = m[:, 0] + np.log(tot[:, 0])
-    loss = float(np.dot(w, lse - Z[rows, y]))
-    R = E / tot
-    R[rows, y] -= 1.0
-    R *= w[:, None]
-    return loss, float(w.sum()), R
-
-
-def _squared(Z: np.ndarray, Y: np.ndarray, w: np.ndarray, c: np.ndarray | None):
-    D = Z - Y
-    if c is not None:
-        loss = 0.5 * float(np.dot(w, (D * D) @ c))
-        D *= c[None, :]
-    else:
-        loss = 0.5 * float(np.dot(w, np.einsum("ij,ij->i", D, D)))
-    D *= w[:, None]
-    return loss, float(w.sum()), D
-
-
-def _multilabel(Z: np.ndarray, T: Any, w: np.ndarray, c: np.ndarray | None):
-    T = sp.csr_matrix(T)
-    n = Z.shape[0]
-    rows = np.repeat(np.arange(n), np.diff(T.indptr))
-    cols = T.indices
-    SP = np.logaddexp(0.0, Z)  # log(1 + exp(z)) without overflow
-    if c is not None:
-        per_row = SP @ c
-        np.subtract.at(per_row, rows, c[cols] * Z[rows, cols])
-    else:
-        per_row = SP.sum(axis=1)
-        np.subtract.at(per_row, rows, Z[rows, cols])
-    R = expit(Z)
-    R[rows, cols] -= 1.0
-    if c is not None:
-        R *= c[None, :]
-    R *= w[:, None]
-    return float(np.dot(w, per_row)), float(w.sum()), R
+            kl.softmax_residual(R, np.asarray(targets, dtype=np.int32), w, loss, gradb,
+                                where=where)
+        elif self.name == "squared":
+            kl.squared_residual(R, np.ascontiguousarray(targets, dtype=np.float64), w, loss,
+                                gradb, where=where)
+        else:
+            T = sp.csr_matrix(targets)
+            kl.multilabel_residual(R, T.indptr, T.indices, w, loss, gradb, where=where)
+        wsum = float(n) if w is None else float(np.sum(w))
+        return float(loss[0]), wsum, R
 
 
 _LOSSES = {name: Loss(name, kind) for name, kind in TARGET_KIND.items()}
@@ -242,7 +225,7 @@ def best_intercept(
         The data (see :func:`stream.memsource.as_source`).
     loss : {"softmax", "squared", "multilabel"}
     class_weights : (k,) array, optional
-        As in :class:`Loss`; only softmax's optimum depends on them.
+        Per-class weights (softmax only).
     clip : float
         Frequencies are clipped to ``[clip, 1 - clip]`` so that an absent
         class or tag gets a finite intercept.
@@ -278,6 +261,9 @@ def _best_intercept(src: Any, *, loss: str, class_weights: Any, backend: str,
     cw = None
     if class_weights is not None:
         cw = np.asarray(class_weights, dtype=np.float64)
+        if loss != "softmax":
+            raise ConfigError("class weights apply to the softmax loss only; drop them "
+                              f"for loss {loss!r}")
         if cw.shape != (k,) or not np.all(np.isfinite(cw)) or np.any(cw < 0):
             raise ConfigError(f"class weights: expected {k} finite values >= 0, "
                               f"got shape {cw.shape}")

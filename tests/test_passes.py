@@ -356,7 +356,7 @@ _RSS_SCRIPT = textwrap.dedent("""
         for n in (25_000, 100_000):
             time.sleep(0.05)
             base = peak[0] = proc.memory_info().rss
-            res = gradient_pass(Generated(n, d, k), req, block_rows=2000, backend=backend)
+            res = gradient_pass(Generated(n, d, k), req, block_rows=5000, backend=backend)
             time.sleep(0.05)
             out[f"{backend}-{n}"] = {"rows": res.n_rows, "peak": peak[0], "base": base}
             del res
