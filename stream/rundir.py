@@ -19,9 +19,11 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import os
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any
+
+import numpy as np
 
 from .atomic import atomic_write_bytes, atomic_write_json, fsync_dir
 from .checkpoint import CheckpointManager, CheckpointSchedule, canonical_json
@@ -151,6 +153,7 @@ class RunDir:
         self.path = Path(path)
         self.config = config
         self.checkpoints = CheckpointManager(self.path)
+        self._history_len: int | None = None
 
     # --------------------------------------------------------------- locations
     @property
@@ -277,13 +280,22 @@ class RunDir:
         atomic_write_json(self.config_path, self.config)
 
     # ----------------------------------------------------------------- history
+    @property
+    def history_len(self) -> int:
+        """Number of complete records in ``history.jsonl``."""
+        if self._history_len is None:
+            self._history_len = len(self.read_history())
+        return self._history_len
+
     def append_history(self, record: Mapping[str, Any]) -> None:
         """Append one JSON line to ``history.jsonl`` (flushed and fsynced)."""
         line = canonical_json(dict(record)) + "\n"
+        n = self.history_len
         with open(self.history_path, "a", encoding="utf-8") as fh:
             fh.write(line)
             fh.flush()
             os.fsync(fh.fileno())
+        self._history_len = n + 1
 
     def read_history(self) -> list[dict[str, Any]]:
         """Every complete record of ``history.jsonl`` (a torn last line is skipped)."""
@@ -310,28 +322,35 @@ class RunDir:
         kept = self.read_history()[: max(0, int(n_records))]
         data = "".join(canonical_json(r) + "\n" for r in kept).encode()
         atomic_write_bytes(self.history_path, data)
+        self._history_len = len(kept)
 
 
 class RunRecorder:
-    """The trainer's per-pass hook: history, checkpoints on cadence, stop requests.
+    """The trainer's per-pass checkpoint hook: cadence, path-step ends, stop requests.
 
     Parameters
     ----------
     run : RunDir
-        Where to record.
+        Where to write (its history is appended by the trainer).
     schedule : CheckpointSchedule
         When a checkpoint is due (by seconds and/or passes).
     stop : StopFlag or None
         Checked after every pass; when set, a checkpoint is written and
         :meth:`after_pass` returns True (stop now).
+    context : callable, optional
+        ``context() -> (arrays, meta)``: the trainer's own state beside the
+        solver's (regularization-path position, best model so far, planner
+        decisions). Its arrays are stored under ``ctx/<name>``.
 
     Notes
     -----
-    A checkpoint's metadata is ``{"solver": <state meta>, "history_len": n,
-    "settings": <run settings>, **extra}``: ``history_len`` lets a resumed run
-    drop the history lines logged after the checkpoint, ``settings`` lets
-    resume detect a ``config.json`` edited by hand.
+    A checkpoint's metadata is ``{"solver": <state meta>, "context": <context
+    meta>, "history_len": n, "settings": <run settings>}``: ``history_len``
+    lets a resumed run drop the history lines logged after the checkpoint,
+    ``settings`` lets resume detect a ``config.json`` edited by hand.
     """
+
+    CONTEXT_PREFIX = "ctx/"
 
     def __init__(
         self,
@@ -339,57 +358,70 @@ class RunRecorder:
         *,
         schedule: CheckpointSchedule,
         stop: StopFlag | None = None,
+        context: Callable[[], tuple[dict[str, np.ndarray], dict[str, Any]]] | None = None,
     ) -> None:
         self.run = run
         self.schedule = schedule
         self.stop = stop
-        self.history_len = len(run.read_history())
+        self.context = context
         self.checkpoints_written = 0
         self.last_checkpoint: Path | None = None
 
     @property
     def checkpoint_seconds(self) -> float:
-        """Seconds spent writing checkpoints by this recorder's manager."""
+        """Seconds spent writing checkpoints so far."""
         return self.run.checkpoints.total_save_seconds
 
-    def record(self, entry: Mapping[str, Any]) -> None:
-        """Append one history line (one per pass)."""
-        self.run.append_history(entry)
-        self.history_len += 1
+    @property
+    def stopping(self) -> bool:
+        return bool(self.stop)
 
-    def checkpoint(self, state: Any, **extra: Any) -> Path:
+    def checkpoint(self, state: Any) -> Path:
         """Write a checkpoint of ``state`` (anything with ``to_checkpoint()``) now."""
         arrays, meta = state.to_checkpoint()
-        doc = dict(extra, solver=meta, history_len=self.history_len, settings=self.run.settings)
+        arrays = dict(arrays)
+        ctx_meta: dict[str, Any] = {}
+        if self.context is not None:
+            ctx_arrays, ctx_meta = self.context()
+            arrays.update({self.CONTEXT_PREFIX + k: v for k, v in ctx_arrays.items()})
+        doc = {
+            "solver": meta,
+            "context": ctx_meta,
+            "history_len": self.run.history_len,
+            "settings": self.run.settings,
+        }
         path = self.run.checkpoints.save(arrays, doc)
         self.schedule.reset()
         self.checkpoints_written += 1
         self.last_checkpoint = path
         return path
 
-    def after_pass(
-        self,
-        state: Any,
-        entry: Mapping[str, Any] | None = None,
-        *,
-        step_done: bool = False,
-        **extra: Any,
-    ) -> bool:
-        """Record a finished pass; checkpoint when due; True when the run must stop.
+    def after_pass(self, state: Any, *, step_done: bool = False) -> bool:
+        """Count a finished pass; checkpoint when due; True when the run must stop.
 
         Parameters
         ----------
         state : object with ``to_checkpoint() -> (arrays, meta)``
             The solver state after the pass.
-        entry : mapping, optional
-            The pass's history record.
         step_done : bool
-            The pass ended a regularization-path step (always checkpointed).
+            The pass ended a regularization-path step or the run (always
+            checkpointed).
         """
-        if entry is not None:
-            self.record(entry)
         due = self.schedule.tick()
         stopping = bool(self.stop)
         if due or step_done or stopping:
-            self.checkpoint(state, **extra)
+            self.checkpoint(state)
         return stopping
+
+    @classmethod
+    def split(
+        cls, arrays: Mapping[str, np.ndarray]
+    ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+        """Split loaded checkpoint arrays into (solver arrays, context arrays)."""
+        solver, ctx = {}, {}
+        for k, v in arrays.items():
+            if k.startswith(cls.CONTEXT_PREFIX):
+                ctx[k[len(cls.CONTEXT_PREFIX) :]] = v
+            else:
+                solver[k] = v
+        return solver, ctx

@@ -421,23 +421,36 @@ def test_recorder_cadence_step_end_and_stop(tmp_path):
     now = [0.0]
     sched = CheckpointSchedule(seconds=60.0, passes=None, clock=lambda: now[0])
     stop = StopFlag()
-    rec = RunRecorder(run, schedule=sched, stop=stop)
+    ctx = {"step": 0}
+    rec = RunRecorder(
+        run,
+        schedule=sched,
+        stop=stop,
+        context=lambda: ({"best": np.full(2, ctx["step"] * 1.5)}, dict(ctx)),
+    )
     state = _FakeState()
-    written = []
     for i in range(1, 7):
         state.passes = i
+        ctx["step"] = i
+        run.append_history({"pass": i})
         now[0] += 25.0  # 25 s per pass: a checkpoint every third pass (75 s >= 60 s)
         if i == 4:
             stop.request(signal.SIGTERM)
-        stopping = rec.after_pass(state, {"pass": i}, step_done=(i == 2))
-        if rec.last_checkpoint is not None and rec.last_checkpoint not in written:
-            written.append(rec.last_checkpoint)
-        if stopping:
+        if rec.after_pass(state, step_done=(i == 2)):
             break
     # pass 2 ends a path step, 3 is not due yet (25 s after pass 2), 4 is the stop
-    assert i == 4 and rec.checkpoints_written == 2 and len(written) == 2
+    assert i == 4 and rec.checkpoints_written == 2
     arrays, meta, _p = run.checkpoints.load_latest()
     assert meta["solver"] == {"passes": 4} and meta["history_len"] == 4
-    assert meta["settings"] == run.settings
-    np.testing.assert_array_equal(arrays["x"], np.full(3, 4.0))
+    assert meta["context"] == {"step": 4} and meta["settings"] == run.settings
+    solver_arrays, ctx_arrays = RunRecorder.split(arrays)
+    np.testing.assert_array_equal(solver_arrays["x"], np.full(3, 4.0))
+    np.testing.assert_array_equal(ctx_arrays["best"], np.full(2, 6.0))
     assert [r["pass"] for r in run.read_history()] == [1, 2, 3, 4]
+    # without a stop, 60 s of passes trigger a checkpoint by time alone
+    stop2 = CheckpointSchedule(seconds=60.0, clock=lambda: now[0])
+    rec2 = RunRecorder(run, schedule=stop2)
+    now[0] += 59.0
+    assert not rec2.after_pass(state) and rec2.checkpoints_written == 0
+    now[0] += 1.0
+    assert not rec2.after_pass(state) and rec2.checkpoints_written == 1
