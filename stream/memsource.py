@@ -224,12 +224,16 @@ class MemorySource:
         )
 
     def read_block(self, start: int, stop: int) -> Any:
-        """Return rows ``[start, stop)`` as a ``Block`` (views, no copy of X)."""
+        """Return rows ``[start, stop)`` as a ``Block`` (X's data and indices are views)."""
         n = self.shape[0]
         if not (0 <= start < stop <= n):
             raise ConfigError(f"in-memory source: block [{start}, {stop}) outside rows 0..{n}")
         t0 = time.perf_counter()
-        Xb = self.X[start:stop]
+        ip = self.X.indptr
+        lo, hi = int(ip[start]), int(ip[stop])
+        Xb = sp.csr_matrix((self.X.data[lo:hi], self.X.indices[lo:hi], ip[start:stop + 1] - lo),
+                           shape=(stop - start, self.X.shape[1]), copy=False)
+        Xb.has_sorted_indices = True
         t = self.targets
         tb = None if t is None else t[start:stop]
         wb = None if self.weights is None else self.weights[start:stop]
