@@ -370,3 +370,37 @@ def test_block_products_scratch_holds_residual():
     np.testing.assert_allclose(scratch[:300].reshape(50, 6), R, rtol=1e-10, atol=1e-12)
     with pytest.raises(ConfigError, match="scratch must be a C-contiguous float64 array"):
         block_products(X, y, w, ops, ProductBuffers.zeros(ops), scratch=np.empty(10))
+
+
+def test_more_error_messages():
+    ip, ix, da, _ = _block(10, 20, seed=14)
+    B = np.zeros((20, 2))
+    cases = [
+        (lambda: csr_matmul_dense(ip.astype(np.float64), ix, da, B, np.zeros((10, 2))),
+         "indptr must be a 1-D integer array"),
+        (lambda: csr_matmul_dense(ip, ix, da.astype(np.int32), B, np.zeros((10, 2))),
+         "data must be a 1-D float array"),
+        (lambda: csr_matmul_dense(ip[:0], ix, da, B, np.zeros((0, 2))), "indptr is empty"),
+        (lambda: csr_matmul_dense(ip, ix, da, B[:, 0], np.zeros((10, 2))),
+         "B must be a 2-D float32/float64 array"),
+        (lambda: csr_t_matmul_accumulate(ip, ix, da, np.zeros((10, 2)), np.zeros((20, 3))),
+         r"out must be \(d, 2\) to accumulate"),
+    ]
+    for call, msg in cases:
+        with pytest.raises(InputError, match=msg):
+            call()
+    X, y, w, U, s, V, b, Psi, Om = _problem("multilabel", n=20, seed=15)
+    with pytest.raises(ConfigError, match="give U, Psi or n_cols"):
+        prepare_operands(U=None, s=None, V=None, b=b, loss="squared")
+    with pytest.raises(ConfigError, match="class weights apply to the softmax loss only"):
+        prepare_operands(U=U, s=s, V=V, b=b, loss="multilabel", class_weights=np.ones(6))
+    with pytest.raises(ConfigError, match="class_weights must have 6 values"):
+        prepare_operands(U=U, s=s, V=V, b=b, loss="softmax", class_weights=np.ones(5))
+    with pytest.raises(ConfigError, match=r"U must have shape \(400, any\)"):
+        prepare_operands(U=U[:10], s=s, V=V, b=b, loss="softmax", n_cols=400)
+    ops = prepare_operands(U=U, s=s, V=V, b=b, loss="multilabel", Psi=Psi, Omega=Om)
+    with pytest.raises(InputError, match="tags must be a scipy CSR matrix"):
+        block_products(X, y.toarray(), w, ops, ProductBuffers.zeros(ops))
+    small = prepare_operands(U=U, s=s, V=V, b=b, loss="multilabel")
+    with pytest.raises(ConfigError, match="G_VO has shape"):
+        block_products(X, y, w, ops, ProductBuffers.zeros(small))

@@ -236,3 +236,27 @@ def test_multilabel_bad_tags():
         multilabel_residual(Z.copy(), T.indptr, bad, None, *_acc(5), where="tags.txt")
     with pytest.raises(InputError, match="tag_indptr has 200 pointers for 200 rows"):
         multilabel_residual(Z.copy(), T.indptr[:-1], T.indices, None, *_acc(5))
+
+
+def test_more_error_messages():
+    Z, y, w, T, Y = _data(n=10, seed=10)
+    ro = Z.copy()
+    ro.flags.writeable = False
+    cases = [
+        (lambda: softmax_residual(ro, y, None, *_acc(5)), "scores must be writable"),
+        (lambda: softmax_residual(Z.copy(), y, None, np.zeros(2), np.zeros(5)),
+         r"out_loss must be a float64 array of shape \(1,\)"),
+        (lambda: softmax_residual(Z.copy(), y.astype(np.float64), None, *_acc(5)),
+         "class ids must be a 1-D integer array of 10 values"),
+        (lambda: softmax_residual(Z.copy(), np.full(10, 2**63, np.uint64), None, *_acc(5)),
+         "a class id does not fit in int64"),
+        (lambda: multilabel_residual(Z.copy(), T.indptr.astype(np.float32), T.indices, None,
+                                     *_acc(5)), "tag_indptr must be a 1-D integer array"),
+        (lambda: fold_class_weights(y, np.ones(5), out=np.zeros(3)),
+         r"out must be a float64 array of shape \(10,\)"),
+        (lambda: squared_loss_only(Z, Y[:, :2], None, np.zeros(1)),
+         "target values must be a float array"),
+    ]
+    for call, msg in cases:
+        with pytest.raises(InputError, match=msg):
+            call()

@@ -212,3 +212,19 @@ def test_bad_arguments():
         top_singular_pairs(matvec=lambda x: x, rmatvec=lambda y: y, shape=(6, 4))
     with pytest.raises(ConfigError, match="non-finite"):
         top_singular_pairs(np.full((3, 3), np.nan))
+
+
+def test_more_error_messages():
+    cases = [
+        (lambda: orth_rank_revealing(np.ones(3)), "A must be 2-D"),
+        (lambda: orth_rank_revealing(np.full((3, 2), np.inf)), "A has a non-finite entry"),
+        (lambda: orth_against(np.ones((4, 2)), np.eye(5)[:, :2]), "U has 5 rows but A has 4"),
+        (lambda: top_singular_pairs(np.ones((4, 4)), oversample=-1), "need oversample >= 0"),
+        (lambda: top_singular_pairs(np.ones((4, 4)), matvec=lambda x: x),
+         "either G or matvec/rmatvec, not both"),
+        (lambda: subspace_update(U=np.eye(4)[:, :1], V=np.eye(3)[:, :1], G_VO=np.ones((5, 1)),
+                                 Gt_Psi=np.ones((3, 0)), p_psi=0, p_omega=0), "disagree"),
+    ]
+    for call, msg in cases:
+        with pytest.raises(ConfigError, match=msg):
+            call()
