@@ -261,3 +261,26 @@ def test_inspect_corrupted_segment(tmp_path, capsys):
     arr[0] = 12345.0  # a valid chunk whose checksum no longer matches
     msg = run_inspect(capsys, out)
     assert "s.zarr" in msg and "segment 0" in msg
+
+
+def test_triplets_without_entries(tmp_path, capsys):
+    msg = run_ingest(tmp_path, capsys, "# only a comment\n\n", name="in.txt")
+    assert "in.txt: no entries" in msg
+
+
+def test_npz_over_memory_budget(tmp_path, capsys):
+    import scipy.sparse as sp
+
+    sp.save_npz(tmp_path / "in.npz", sp.random(200, 200, density=0.5, random_state=0))
+    msg = run_ingest(tmp_path, capsys, None, "--memory", "100kB", name="in.npz")
+    assert "in.npz: loading this .npz whole needs about" in msg and "raise --memory" in msg
+
+
+def test_both_labels_and_tags_refused(tmp_path, capsys):
+    _good(tmp_path)
+    (tmp_path / "y.txt").write_text("a\nb\nc\n")
+    capsys.readouterr()
+    with pytest.raises(SystemExit) as exc:
+        main(["ingest", str(tmp_path / "in.mtx"), "--out", str(tmp_path / "o.zarr"),
+              "--labels", str(tmp_path / "y.txt"), "--tags", str(tmp_path / "y.txt")])
+    assert exc.value.code == 2 and "not allowed with argument" in capsys.readouterr().err
