@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,8 +22,8 @@ from typing import Any
 
 import numpy as np
 
-from .atomic import atomic_write_bytes, atomic_write_json
-from .errors import ConfigError
+from .atomic import atomic_write_bytes, atomic_write_json, load_npz
+from .errors import ConfigError, ModelError
 from .gradient_pass import PassRequest, gradient_pass
 from .losses import LOSS_NAMES, best_intercept
 from .memory import format_bytes, plan_blocks
@@ -84,10 +85,12 @@ def _request(src: Any, *, model: Any, rank: int, power_cols: int, seed: Any,
     k = int(src.n_outputs)
     rng = np.random.default_rng(seed)
     if model is not None:
-        from .model import Model, load_model
-
-        m = model if isinstance(model, Model) else load_model(model)
-        U, s, V, b, loss = m.U, m.s, m.V, m.b, m.loss
+        U, s, V, b, loss = _load_factors(model)
+        if np.ndim(U) != 2 or np.ndim(V) != 2 or (np.shape(U)[0], np.shape(V)[0]) != (d, k):
+            where = getattr(src, "path", None) or "in-memory source"
+            raise ModelError(f"{where}: has {d} features and {k} outputs but the model is "
+                             f"{np.shape(U)[0]} x {np.shape(V)[0]}; profile with a model "
+                             "trained on this data")
         origin = "model"
     else:
         loss = _loss_for(src, None)
@@ -104,6 +107,35 @@ def _request(src: Any, *, model: Any, rank: int, power_cols: int, seed: Any,
     setup = {"loss": loss, "origin": origin, "rank": int(U.shape[1]),
              "omega_cols": int(Omega.shape[1]), "psi_cols": int(Psi.shape[1])}
     return req, setup
+
+
+def _load_factors(model: Any) -> tuple[np.ndarray, ...]:
+    """``U, s, V, b, loss`` of a Model or of a model directory.
+
+    The directory needs ``factors.npz`` (U, s, V, b) and ``model.json`` with
+    the key ``"loss"``; shapes are checked against the data by the pass.
+    """
+    if hasattr(model, "U") and hasattr(model, "loss"):
+        return model.U, model.s, model.V, model.b, model.loss
+    p = Path(model)
+    if not p.is_dir():
+        raise ModelError(f"{p}: no such model directory; pass the directory written by train")
+    meta = p / "model.json"
+    try:
+        doc = json.loads(meta.read_text())
+    except FileNotFoundError:
+        raise ModelError(f"{meta}: file not found; a model directory needs model.json") from None
+    except (OSError, ValueError) as exc:
+        raise ModelError(f"{meta}: not readable JSON ({exc}); re-save the model") from None
+    loss = doc.get("loss") if isinstance(doc, dict) else None
+    if loss not in LOSS_NAMES:
+        raise ModelError(f"{meta}: loss {loss!r} is not one of {', '.join(LOSS_NAMES)}; "
+                         "re-save the model")
+    arrays = load_npz(p / "factors.npz", error=ModelError)
+    missing = [k for k in ("U", "s", "V", "b") if k not in arrays]
+    if missing:
+        raise ModelError(f"{p / 'factors.npz'}: lacks {', '.join(missing)}; re-save the model")
+    return arrays["U"], arrays["s"], arrays["V"], arrays["b"], loss
 
 
 def _warm_up(src: Any, req: PassRequest) -> None:

@@ -145,6 +145,25 @@ def test_cli_profile_bad_options(tmp_path, capsys, argv, msg):
     assert msg in err and len(err.splitlines()) == 1
 
 
+def test_cli_profile_bad_model(tmp_path, capsys):
+    from stream.atomic import save_npz
+    from stream.store import write_store
+
+    src, X = _source(n=50, d=20, k=3)
+    write_store(tmp_path / "s.zarr", X, src.targets).close()
+    m = tmp_path / "m"
+    m.mkdir()
+    (m / "model.json").write_text('{"loss": "softmax"}')
+    save_npz(m / "factors.npz", {"U": np.zeros((20, 1)), "s": np.ones(1)})
+    assert main(["profile", str(tmp_path / "s.zarr"), "--model", str(m), "--quiet"]) == 2
+    assert "lacks V, b" in capsys.readouterr().err
+    # a 21-feature model on 20-feature data
+    save_npz(m / "factors.npz", {"U": np.zeros((21, 1)), "s": np.ones(1), "V": np.zeros((3, 1)),
+                                 "b": np.zeros(3)})
+    assert main(["profile", str(tmp_path / "s.zarr"), "--model", str(m), "--quiet"]) == 2
+    assert "has 20 features and 3 outputs but the model is 21 x 3" in capsys.readouterr().err
+
+
 def test_cli_profile_missing_store(tmp_path, capsys):
     assert main(["profile", str(tmp_path / "nope.zarr"), "--quiet"]) == 2
     err = capsys.readouterr().err.strip()
