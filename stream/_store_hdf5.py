@@ -88,7 +88,8 @@ def _filters(codec: str, level: int | None) -> tuple[dict[str, Any], str]:
     if codec == "zstd":
         lvl = 1 if level is None else level
         if hdf5plugin is not None:
-            return dict(hdf5plugin.Zstd(clevel=lvl)), f"hdf5 zstd level {lvl} (hdf5plugin)"
+            kw = dict(hdf5plugin.Blosc(cname="zstd", clevel=lvl, shuffle=hdf5plugin.Blosc.SHUFFLE))
+            return kw, f"hdf5 blosc zstd level {lvl} + shuffle (hdf5plugin)"
         return {"compression": "gzip", "compression_opts": 1, "shuffle": True}, (
             "hdf5 gzip level 1 + shuffle (hdf5plugin not installed)"
         )

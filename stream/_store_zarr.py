@@ -163,10 +163,11 @@ class _DirectChunks:
 
 
 def _compressors(codec: str, level: int | None) -> list[Any]:
-    from zarr.codecs import BloscCodec, ZstdCodec
+    from zarr.codecs import BloscCodec
 
     if codec == "zstd":
-        return [ZstdCodec(level=1 if level is None else level)]
+        lvl = 1 if level is None else level
+        return [BloscCodec(cname="zstd", clevel=lvl, shuffle="shuffle")]
     if codec == "lz4":
         return [BloscCodec(cname="lz4", clevel=5 if level is None else level, shuffle="shuffle")]
     return []
@@ -218,7 +219,7 @@ class ZarrBackend(StoreBackend):
     def codec_impl(self) -> str:
         codec, level = self._codec
         if codec == "zstd":
-            return f"zarr zstd level {1 if level is None else level}"
+            return f"zarr blosc zstd level {1 if level is None else level} + shuffle"
         if codec == "lz4":
             return f"zarr blosc lz4 level {5 if level is None else level} + shuffle"
         return "zarr uncompressed"

@@ -186,7 +186,12 @@ def _check_codec(codec: str) -> None:
         raise ConfigError(f"codec {codec!r} is unknown; use one of {', '.join(CODECS)}")
 
 
-#: zstd level used for codec "zstd"; chosen by tools/bench_store.py (see its table).
+#: Level of codec "zstd", which is zstd inside a blosc frame with byte shuffle.
+#: Chosen with ``tools/bench_store.py --sweep-zstd`` on invented word-count data
+#: (numcodecs decode, best of 5, this 2-core machine): plain zstd level 1 packs to
+#: 0.43 of the decoded bytes at ~770 MB per CPU-second; blosc zstd level 1 +
+#: shuffle to 0.33 at ~710; level 3 gains < 1% of size and writes slower; level
+#: -1 decodes ~1.4x faster but packs to 0.57.
 ZSTD_LEVEL = 1
 
 
