@@ -64,8 +64,16 @@ def _direct_decoder(ds: Any) -> Any:
     return None
 
 
-def _decode_into(decoder: Any, raw: bytes, mask: int, out: np.ndarray, full: int) -> None:
-    """Decode one stored chunk into ``out`` (the first ``out.nbytes`` of ``full`` bytes)."""
+def _decode_into(
+    decoder: Any, raw: bytes, mask: int, out: np.ndarray, full: int, j: int, check: Any
+) -> None:
+    """Decode stored chunk ``j`` into ``out`` (the first ``out.nbytes`` of ``full``), check it."""
+    _decode_raw(decoder, raw, mask, out, full)
+    if check is not None:
+        check(j, out)
+
+
+def _decode_raw(decoder: Any, raw: bytes, mask: int, out: np.ndarray, full: int) -> None:
     flat = out.reshape(-1).view(np.uint8)
     if mask & 1:  # the filter was skipped for this chunk: stored as is
         flat[...] = np.frombuffer(raw, dtype=np.uint8, count=flat.shape[0])
@@ -193,7 +201,13 @@ class Hdf5Backend(StoreBackend):
         self._ds(name).resize(int(n_rows), axis=0)
 
     def read(
-        self, name: str, start: int, stop: int, *, out: np.ndarray | None = None
+        self,
+        name: str,
+        start: int,
+        stop: int,
+        *,
+        out: np.ndarray | None = None,
+        check: Any = None,
     ) -> np.ndarray:
         ds = self._ds(name)
         if out is None:
@@ -204,12 +218,15 @@ class Hdf5Backend(StoreBackend):
             self._decoders[name] = _direct_decoder(ds)
         decoder = self._decoders.get(name)
         if decoder is not None and start % ds.chunks[0] == 0:
-            self._read_chunks(ds, decoder, start, stop, out)
+            self._read_chunks(ds, decoder, start, stop, out, check)
         else:
             ds.read_direct(out, np.s_[start:stop])
+            self.check_chunks(check, start, out, int(ds.chunks[0]))
         return out
 
-    def _read_chunks(self, ds: Any, decoder: Any, start: int, stop: int, out: np.ndarray) -> None:
+    def _read_chunks(
+        self, ds: Any, decoder: Any, start: int, stop: int, out: np.ndarray, check: Any
+    ) -> None:
         """Copy stored chunks out (h5py, serial) and decode them on the pool."""
         c = ds.chunks[0]
         full = int(np.prod(ds.chunks)) * ds.dtype.itemsize
@@ -219,10 +236,11 @@ class Hdf5Backend(StoreBackend):
         for lo in range(start, stop, c):
             mask, raw = ds.id.read_direct_chunk((lo,) + tail)
             piece = out[lo - start : min(stop, lo + c) - start]
+            job = (decoder, raw, mask, piece, full, lo // c, check)
             if inline:
-                _decode_into(decoder, raw, mask, piece, full)
+                _decode_into(*job)
             else:
-                futures.append(_pool().submit(_decode_into, decoder, raw, mask, piece, full))
+                futures.append(_pool().submit(_decode_into, *job))
         for fut in futures:
             fut.result()
 

@@ -121,8 +121,13 @@ class _DirectChunks:
                 return None
         return cls(root, shape, chunks[0], dtype, decoder)
 
-    def _chunk(self, j: int, out: np.ndarray) -> None:
-        """Decode chunk ``j`` into ``out`` (its first ``len(out)`` rows)."""
+    def _chunk(self, j: int, out: np.ndarray, check: Any) -> None:
+        """Decode chunk ``j`` into ``out`` (its first ``len(out)`` rows), then check it."""
+        self._decode(j, out)
+        if check is not None:
+            check(j, out)
+
+    def _decode(self, j: int, out: np.ndarray) -> None:
         path = self.root / "c" / f"{j}{self.suffix}"
         flat = out.reshape(-1).view(np.uint8)
         try:
@@ -147,7 +152,7 @@ class _DirectChunks:
             self.decoder.decode(raw, out=tmp)
             flat[...] = tmp[: flat.shape[0]]
 
-    def read(self, start: int, stop: int, out: np.ndarray) -> None:
+    def read(self, start: int, stop: int, out: np.ndarray, check: Any = None) -> None:
         """Rows ``start:stop`` (``start`` chunk-aligned) into ``out``."""
         c = self.chunk
         jobs = []
@@ -156,9 +161,9 @@ class _DirectChunks:
             jobs.append((j, out[lo - start : hi - start]))
         if len(jobs) == 1 or out.nbytes < _POOL_MIN_BYTES:
             for j, o in jobs:
-                self._chunk(j, o)
+                self._chunk(j, o, check)
             return
-        for fut in [_pool().submit(self._chunk, j, o) for j, o in jobs]:
+        for fut in [_pool().submit(self._chunk, j, o, check) for j, o in jobs]:
             fut.result()
 
 
@@ -264,7 +269,13 @@ class ZarrBackend(StoreBackend):
         arr.resize((int(n_rows),) + tuple(arr.shape[1:]))
 
     def read(
-        self, name: str, start: int, stop: int, *, out: np.ndarray | None = None
+        self,
+        name: str,
+        start: int,
+        stop: int,
+        *,
+        out: np.ndarray | None = None,
+        check: Any = None,
     ) -> np.ndarray:
         if not self.writable and name not in self._direct:
             self._direct[name] = _DirectChunks.maybe(self.path / name)
@@ -273,16 +284,17 @@ class ZarrBackend(StoreBackend):
             if out is None:
                 out = np.empty((max(0, stop - start),) + direct.shape[1:], dtype=direct.dtype)
             if out.shape[0]:
-                direct.read(start, stop, out)
+                direct.read(start, stop, out, check)
             return out
         arr = self._array(name)
         if out is None:
-            return np.asarray(arr[start:stop])
-        if out.shape[0]:
+            out = np.asarray(arr[start:stop])
+        elif out.shape[0]:
             from zarr.core.buffer import default_buffer_prototype
 
             nd = default_buffer_prototype().nd_buffer.from_numpy_array(out)
             arr.get_basic_selection(slice(start, stop), out=nd)
+        self.check_chunks(check, start, out, int(arr.chunks[0]))
         return out
 
     def shape(self, name: str) -> tuple[int, ...]:

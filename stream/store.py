@@ -34,7 +34,7 @@ import os
 import threading
 import time
 from abc import ABC, abstractmethod
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -64,6 +64,8 @@ __all__ = [
 FORMAT_NAME = "ranktide-store"
 FORMAT_VERSION = 1
 ATTRS_KEY = "ranktide"
+#: ``check(chunk_index, decoded_rows)``: verifies one chunk, raises ``StoreError``.
+ChunkCheck = Callable[[int, np.ndarray], None]
 #: Elements per storage chunk (and per checksum segment) of 1-D arrays.
 #: DESIGN §11: ~256K-element chunks (a quarter of a typical block) read best.
 CHUNK_ELEMENTS = 262_144
@@ -126,13 +128,31 @@ class StoreBackend(ABC):
 
     @abstractmethod
     def read(
-        self, name: str, start: int, stop: int, *, out: np.ndarray | None = None
+        self,
+        name: str,
+        start: int,
+        stop: int,
+        *,
+        out: np.ndarray | None = None,
+        check: ChunkCheck | None = None,
     ) -> np.ndarray:
         """Decoded rows ``start:stop`` of array ``name``.
 
         Written into ``out`` (C-contiguous, exact shape) when given, else into
-        a new array; returns the array holding them.
+        a new array; returns the array holding them. With ``check``, ``start``
+        is chunk-aligned and ``stop`` is chunk-aligned or the array's end, and
+        ``check(j, rows)`` is called once for each chunk ``j`` read, with its
+        decoded rows, possibly from a decoding thread (so a checksum is taken
+        while the chunk is still in cache).
         """
+
+    @staticmethod
+    def check_chunks(check: ChunkCheck | None, start: int, out: np.ndarray, chunk: int) -> None:
+        """Call ``check`` on each chunk of ``out`` (rows from ``start``, chunk-aligned)."""
+        if check is None:
+            return
+        for lo in range(0, out.shape[0], chunk):
+            check((start + lo) // chunk, out[lo : lo + chunk])
 
     @abstractmethod
     def shape(self, name: str) -> tuple[int, ...]:
@@ -854,11 +874,12 @@ class Block:
         (n_b, k) of ones.
     weights : ndarray, shape (n_b,), float32, or None
     io : dict
-        ``read_s`` (seconds in the backend's read calls, I/O and
-        decompression), ``decode_s`` (seconds verifying checksums and
-        assembling arrays), ``bytes_disk`` (compressed bytes of the chunks
-        read, estimated from each array's compression ratio),
-        ``bytes_decoded`` (decoded bytes of the chunks read).
+        ``read_s`` (seconds in the backend's read calls: I/O, decompression
+        and, the first time a chunk is read, its checksum, all on the decoding
+        threads), ``decode_s`` (seconds assembling: the kept tail chunk, the
+        CSR matrix), ``bytes_disk`` (compressed bytes of the chunks read,
+        estimated from each array's compression ratio), ``bytes_decoded``
+        (decoded bytes of the chunks read).
     """
 
     start: int
@@ -908,16 +929,19 @@ class _Reader:
         self._tail_idx = -1
         self._tail: np.ndarray | None = None
 
-    def fetch(self, c0: int, c1: int, out: np.ndarray | None = None) -> np.ndarray:
+    def fetch(
+        self, c0: int, c1: int, out: np.ndarray | None = None, check: ChunkCheck | None = None
+    ) -> np.ndarray:
         """Decode chunks ``c0:c1`` (into ``out`` when given); damage raises ``StoreError``."""
         try:
-            return self.be.read(self.name, c0 * self.chunk, min(c1 * self.chunk, self.n), out=out)
+            stop = min(c1 * self.chunk, self.n)
+            return self.be.read(self.name, c0 * self.chunk, stop, out=out, check=check)
         except StoreError:
             raise
         except Exception as exc:  # codec and file errors of either backend
             if c1 - c0 > 1:  # find the damaged chunk, so the message names one segment
                 for j in range(c0, c1):
-                    self.fetch(j, j + 1)
+                    self.fetch(j, j + 1, check=check)
             msg = " ".join(str(exc).split())[:160]
             raise StoreError(
                 f"{self.path}: array {self.name!r} segment {c0} cannot be decoded "
@@ -934,6 +958,11 @@ class _Reader:
                 f"checksum ({got} != {self.sums[j]}); the store is damaged, re-create it"
             )
         self.verified[j] = True
+
+    def check_once(self, j: int, values: np.ndarray) -> None:
+        """Verify chunk ``j`` unless an earlier read already did."""
+        if not self.verified[j]:
+            self.check_segment(j, values)
 
     def read(self, lo: int, hi: int, io: dict[str, float]) -> np.ndarray:
         """Rows ``lo:hi`` (a view of a fresh buffer), updating the counters in ``io``.
@@ -957,17 +986,12 @@ class _Reader:
             fresh = buf[(first - c0) * c :]
             t0 = time.perf_counter()
             io["decode_s"] += t0 - t
-            self.fetch(first, c1, out=fresh)
+            self.fetch(first, c1, out=fresh, check=self.check_once if self.verify else None)
             t = time.perf_counter()
             io["read_s"] += t - t0
             nbytes = fresh.shape[0] * self.row_bytes
             io["bytes_decoded"] += nbytes
             io["bytes_disk"] += nbytes * self.ratio
-            if self.verify:
-                for j in range(first, c1):
-                    if not self.verified[j]:
-                        off = (j - first) * c
-                        self.check_segment(j, fresh[off : off + c])
         self._tail = buf[(c1 - 1 - c0) * c :].copy()
         self._tail_idx = c1 - 1
         io["decode_s"] += time.perf_counter() - t
@@ -978,10 +1002,7 @@ class _Reader:
         step = self.chunk * piece_chunks
         for start in range(0, self.n, step):
             stop = min(self.n, start + step)
-            vals = self.fetch(start // self.chunk, -(-stop // self.chunk))
-            for j in range(start // self.chunk, -(-stop // self.chunk)):
-                off = j * self.chunk - start
-                self.check_segment(j, vals[off : off + self.chunk])
+            self.fetch(start // self.chunk, -(-stop // self.chunk), check=self.check_segment)
 
 
 def _new_io() -> dict[str, float]:
