@@ -21,9 +21,18 @@ names, codec, per-segment CRC-32 checksums of the decoded bytes, a fingerprint
 and a completeness flag written last. Writing goes to a temporary sibling that
 is renamed into place by :meth:`StoreWriter.commit`.
 
+Arrays are chunked along their first axis (:data:`CHUNK_ELEMENTS` elements;
+one chunk is one checksum segment). Codecs: ``"zstd"`` (blosc zstd + byte
+shuffle, level :data:`ZSTD_LEVEL`), ``"lz4"`` (blosc lz4 + byte shuffle),
+``"none"``; HDF5 gets them from hdf5plugin (gzip/lzf without it).
+
 Blocks are row ranges chosen at read time from a byte budget; a block never
-splits a row. Reads are chunk-aligned and the reader keeps the tail chunk of
-each array for the next block, so a sequential pass decodes each chunk once.
+splits a row. Reads are chunk-aligned and decode straight into one buffer per
+array and block; the reader keeps the tail chunk of each array for the next
+block, so a sequential pass decodes each chunk once, and checks each chunk's
+checksum the first time it is decoded (``open_store(path, verify=False)``
+skips that). A :class:`Store` serializes its reads with a lock, so it can be
+shared with a prefetch thread.
 """
 
 from __future__ import annotations
@@ -1406,6 +1415,10 @@ def write_store(
     if kind == "tags":
         targets = _tag_matrix(targets)
         n_outputs = targets.shape[1]
+    elif kind is not None:
+        targets = np.asarray(targets.toarray() if sp.issparse(targets) else targets)
+        if kind == "values" and targets.ndim == 1:
+            targets = targets[:, None]
     if kind is not None and targets.shape[0] != n:
         raise InputError(
             f"targets: {targets.shape[0]} rows for a matrix of {n} rows; give one per row"

@@ -580,3 +580,21 @@ def test_empty_store(tmp_path):
         assert s.shape == (0, 5) and s.nnz == 0 and s.block_ranges() == []
         assert list(s.blocks(rows=3)) == []
         s.verify()
+
+
+def test_target_kind_inference(tmp_path):
+    X = sp.identity(3, format="csr")
+    with write_store(tmp_path / "c", X, [0, 2, 1]) as s:
+        assert s.target_kind == "classes" and s.n_outputs == 3
+        np.testing.assert_array_equal(s.read_block(0, 3).targets, [0, 2, 1])
+    with write_store(tmp_path / "v", X, [0.5, 2.0, 1.0]) as s:
+        assert s.target_kind == "values" and s.n_outputs == 1
+        np.testing.assert_array_equal(s.read_block(0, 3).targets, [[0.5], [2.0], [1.0]])
+    dense_tags = np.array([[1, 0], [0, 0], [1, 1]])
+    with write_store(tmp_path / "t", X, dense_tags, kind="tags") as s:
+        assert s.target_kind == "tags" and s.n_outputs == 2
+        # scipy reference: the nonzero pattern of the dense indicator matrix
+        assert_same_csr(s.read_block(0, 3).targets, sp.csr_matrix(dense_tags, dtype=np.float32))
+    with pytest.raises(InputError, match=r"targets: 2 rows for a matrix of 3 rows"):
+        write_store(tmp_path / "bad", X, [0, 1])
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["c", "t", "v"]

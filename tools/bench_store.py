@@ -17,7 +17,7 @@ at >= 50% of the raw floor.
 
 ``--sweep-zstd`` also measures zstd variants (levels; plain zstd vs blosc zstd
 with byte or bit shuffle) on the zarr backend, the measurement that picks the
-level used by codec ``"zstd"``.
+form and level used by codec ``"zstd"`` (see ``stream.store.ZSTD_LEVEL``).
 
 If ``tools/bench_ingest.py`` exists and defines ``run(out_dir) -> dict``, it is
 called and its figures are merged under ``"ingest"``.
