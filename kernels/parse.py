@@ -232,7 +232,9 @@ def _scan_index(buf, p, stop, comment):
     over = False
     while q < stop and _is_digit(buf[q]):
         d = buf[q] - 48
-        if v > (_INT64_MAX - d) // 10:
+        if nd < 18:  # up to 18 digits cannot overflow: skip the division
+            v = v * 10 + d
+        elif v > (_INT64_MAX - d) // 10:
             over = True
         else:
             v = v * 10 + d
