@@ -146,14 +146,29 @@ def _rel(a: np.ndarray, b: np.ndarray) -> float:
 
 
 # ----------------------------------------------------------------------------- RSS child
+def _peak_rss() -> int:
+    """Peak RSS of this process in bytes.
+
+    ``VmHWM`` from ``/proc/self/status`` (Linux): unlike ``ru_maxrss``, it is
+    not inherited from the parent across fork + exec.
+    """
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
 def child_rss(store_path: str, block_bytes: int, backend: str) -> None:
     """Run one pass and print its peak RSS (a fresh process per store)."""
     with open_store(store_path) as st:
         n, d = st.shape
         req = _request(d, int(st.n_outputs))
-        before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+        before = _peak_rss()
         res = gradient_pass(st, req, block_bytes=block_bytes, backend=backend)
-        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+        peak = _peak_rss()
     print(json.dumps({"rows": res.n_rows, "peak_rss": peak, "before_pass_rss": before}))
 
 
