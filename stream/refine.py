@@ -29,6 +29,9 @@ from .errors import ConfigError
 __all__ = ["RefineResult", "refine", "svt", "loss_and_residual"]
 
 _SLACK = 0.0
+# Score matrices with fewer entries than this use numpy instead of the fused parallel
+# kernels (common practice, no source: thread start-up dominates below ~1e5 entries).
+_KERNEL_MIN_ENTRIES = 100_000
 _SHRINK = 1.25
 _LOSSES = ("softmax", "squared", "multilabel")
 # Curvature bound of each loss in the scores: the Hessian of logsumexp is
@@ -129,8 +132,8 @@ def _as_array(parts, name: str):
     return parts
 
 
-def _dense_targets(Y, n: int, k: int, loss: str) -> np.ndarray:
-    """Targets as the array the loss needs: int64 (n,) or float64 (n, k)."""
+def _dense_targets(Y, n: int, k: int, loss: str):
+    """Targets as the loss needs them: int64 (n,), CSR tags (n, k) or float64 (n, k)."""
     if loss == "softmax":
         y = np.asarray(Y).reshape(-1)
         if y.shape[0] != n:
@@ -140,6 +143,11 @@ def _dense_targets(Y, n: int, k: int, loss: str) -> np.ndarray:
                 f"refine: class ids must lie in 0..{k - 1}; found {y.min()}..{y.max()}"
             )
         return y.astype(np.int64, copy=False)
+    if loss == "multilabel":
+        T = sp.csr_matrix(Y)
+        if T.shape != (n, k):
+            raise ConfigError(f"refine: tags have shape {T.shape}, expected ({n}, {k})")
+        return T
     if sp.issparse(Y):
         Y = Y.toarray()
     Y = np.asarray(Y, dtype=np.float64)
@@ -203,6 +211,58 @@ def loss_and_residual(
         return f, None
     D *= w[:, None]
     return f, D
+
+
+class _NumpyLoss:
+    """Loss value and residual of dense scores in vectorized numpy (small problems)."""
+
+    def __init__(self, loss: str, Y, w: np.ndarray, k: int) -> None:
+        self.loss = loss
+        self.Y = Y.toarray() if sp.issparse(Y) else Y
+        self.w = w
+
+    def value(self, Z: np.ndarray) -> float:
+        return loss_and_residual(Z, self.Y, self.w, self.loss, want_residual=False)[0]
+
+    def residual(self, Z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        f, R = loss_and_residual(Z, self.Y, self.w, self.loss)
+        return f, R, R.sum(axis=0)
+
+
+class _KernelLoss:
+    """Loss value and residual of dense scores through the fused kernels of ``kernels.losses``.
+
+    ``w`` sums to 1, so the kernels' weighted sums are the weighted means.
+    """
+
+    def __init__(self, loss: str, Y, w: np.ndarray, k: int) -> None:
+        from kernels import losses as kl
+
+        self.k = k
+        self.w = np.ascontiguousarray(w, dtype=np.float64)
+        if loss == "softmax":
+            y = np.ascontiguousarray(Y, dtype=np.int64)
+            self._value = lambda Z, out: kl.softmax_loss_only(Z, y, self.w, out)
+            self._resid = lambda Z, out, gb: kl.softmax_residual(Z, y, self.w, out, gb)
+        else:
+            T = sp.csr_matrix(Y)
+            T.sum_duplicates()
+            ip = T.indptr.astype(np.int64)
+            ix = T.indices.astype(np.int64)
+            self._value = lambda Z, out: kl.multilabel_loss_only(Z, ip, ix, self.w, out)
+            self._resid = lambda Z, out, gb: kl.multilabel_residual(Z, ip, ix, self.w, out, gb)
+
+    def value(self, Z: np.ndarray) -> float:
+        out = np.zeros(1)
+        self._value(Z, out)
+        return float(out[0])
+
+    def residual(self, Z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        """Loss, residual (overwrites ``Z``) and its column sums."""
+        out = np.zeros(1)
+        gb = np.zeros(self.k)
+        R = self._resid(Z, out, gb)
+        return float(out[0]), R, gb
 
 
 def _certificate(GN: np.ndarray, N: np.ndarray, nuc: float, F: float, lam: float) -> float:
@@ -353,13 +413,16 @@ def _lipschitz_bound(A: np.ndarray, w: np.ndarray, curvature: float) -> float:
 
 def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every) -> RefineResult:
     L_max = _lipschitz_bound(A, w, _CURVATURE[loss])
+    n, k = A.shape[0], N0.shape[1]
+    # tiny score matrices: the parallel kernels' start-up costs more than the arithmetic
+    ev = (_KernelLoss if n * k >= _KERNEL_MIN_ENTRIES else _NumpyLoss)(loss, Y, w, k)
     L = L_max
     # current iterate x, previous iterate, and their cached scores
     Ux, sx, Bx = svt(N0, 0.0)
     N_x, b_x = N0.copy(), b0.copy()
     Z_x = A @ N_x
     Z_x += b_x
-    f_x, _ = loss_and_residual(Z_x, Y, w, loss, want_residual=False)
+    f_x = ev.value(Z_x)
     nuc_x = float(sx.sum())
     F_x = f_x + lam * nuc_x
     N_p, b_p, Z_p = N_x, b_x, Z_x
@@ -377,10 +440,9 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every) -> Re
             b_y = b_x + beta * (b_x - b_p)
             Z_y = Z_x + beta * (Z_x - Z_p)
         else:
-            N_y, b_y, Z_y = N_x, b_x, Z_x
-        f_y, R = loss_and_residual(Z_y, Y, w, loss)
+            N_y, b_y, Z_y = N_x, b_x, Z_x.copy()
+        f_y, R, g_b = ev.residual(Z_y)  # Z_y becomes the residual
         G_N = A.T @ R
-        g_b = R.sum(axis=0)
         evals += 1
         L = max(L / _SHRINK, 1e-12 * L_max)
         while True:
@@ -390,7 +452,7 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every) -> Re
             Z_n = A @ N_n
             Z_n += b_n
             evals += 1
-            f_n, _ = loss_and_residual(Z_n, Y, w, loss, want_residual=False)
+            f_n = ev.value(Z_n)
             dN, db = N_n - N_y, b_n - b_y
             model = f_y + np.sum(G_N * dN) + g_b @ db + 0.5 * L * (np.sum(dN * dN) + db @ db)
             if f_n <= model + _SLACK * abs(f_y) or L >= L_max:
@@ -407,10 +469,10 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every) -> Re
         Ux, sx, Bx = Un, sn, Bn
         t = t_next
         if it % check_every == 0 or it >= max_iter:
-            _, R_x = loss_and_residual(Z_x, Y, w, loss)
+            _, R_x, gb_x = ev.residual(Z_x.copy())
             evals += 1
             gap_rel = _certificate(A.T @ R_x, N_x, float(sx.sum()), F_x, lam)
-            gb = float(np.abs(R_x.sum(axis=0)).max())
+            gb = float(np.abs(gb_x).max())
             if gap_rel <= tol and gb <= tol:
                 converged = True
                 break

@@ -1,0 +1,322 @@
+"""Internals of the greedy solver: refinement, sigma_1 bound, state, determinism, train().
+
+References used below:
+* CVXPY + Clarabel (tests/conic.py) for the refinement subproblem on a fixed basis;
+* numpy.linalg.norm(G, 2) for the Rayleigh-Ritz lower bound and for lam_max;
+* scipy.special.logsumexp / expit for objectives recomputed outside the package.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from conic import solve_conic
+from scipy.special import expit, logsumexp
+
+from stream.atomic import load_npz, save_npz
+from stream.errors import ConfigError, InputError
+from stream.refine import refine
+from stream.solver import (
+    GreedySolver,
+    SolverConfig,
+    SolverState,
+    _fill,
+    gap_estimate,
+    sigma1_lower_bound,
+)
+from stream.train import train
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _problem(loss: str, *, n=200, d=30, k=5, seed=0):
+    """Invented low-rank data: sparse X, targets from a rank-2 signal plus noise."""
+    rng = np.random.default_rng(seed)
+    X = sp.random(n, d, density=0.2, random_state=seed, format="csr", dtype=np.float32)
+    X.data = (X.data * 2.0 - 1.0).astype(np.float32)
+    Wt = rng.standard_normal((d, 2)) @ rng.standard_normal((2, k))
+    Z = np.asarray(X @ Wt)
+    if loss == "softmax":
+        y = np.argmax(Z + rng.gumbel(size=(n, k)), axis=1).astype(np.int32)
+    elif loss == "squared":
+        y = (Z + 0.5 * rng.standard_normal((n, k))).astype(np.float32)
+    else:
+        y = sp.csr_matrix((rng.random((n, k)) < expit(Z - 0.5)).astype(np.float32))
+    return X, y
+
+
+def _objective_numpy(X, y, U, s, V, b, loss, lam, weights=None):
+    """F(W, b) recomputed here with scipy.special (outside the package)."""
+    Z = np.asarray(X @ ((U * s) @ V.T)) + b
+    n = Z.shape[0]
+    w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
+    if loss == "softmax":
+        per = logsumexp(Z, axis=1) - Z[np.arange(n), y]
+    elif loss == "squared":
+        per = 0.5 * ((Z - y) ** 2).sum(axis=1)
+    else:
+        Y = y.toarray()
+        per = (np.logaddexp(0.0, Z) - Y * Z).sum(axis=1)
+    return float(w @ per / w.sum()) + lam * float(np.sum(s))
+
+
+# ---------------------------------------------------------------- refinement
+
+
+@pytest.mark.parametrize("loss", ["softmax", "squared", "multilabel"])
+def test_refine_matches_cvxpy_on_fixed_basis(loss):
+    rng = np.random.default_rng(1)
+    n, q, k = 150, 5, 4
+    A = rng.standard_normal((n, q))
+    if loss == "softmax":
+        Y = rng.integers(0, k, n)
+    elif loss == "squared":
+        Y = A @ rng.standard_normal((q, k)) * 0.5 + rng.standard_normal((n, k))
+    else:
+        Y = (rng.random((n, k)) < 0.3).astype(np.float64)
+    w = rng.random(n) + 0.5
+    lam = 0.04
+    # two blocks, as the pass hands them over
+    blocks = [A[:70], A[70:]]
+    tb = [Y[:70], Y[70:]]
+    wb = [w[:70], w[70:]]
+    res = refine(blocks, tb, wb, loss, lam, np.zeros((q, k)), np.zeros(k), tol=1e-9,
+                 max_iter=3000)
+    # Reference: CVXPY + Clarabel on min f(A N + b) + lam ||N||_* (tests/conic.py).
+    con = solve_conic(A, Y, loss=loss, lam=lam, weights=w, n_outputs=k)
+    assert res.converged
+    assert res.objective == pytest.approx(con.objective, rel=1e-7, abs=1e-9)
+    assert np.abs(res.N - con.W).max() < 1e-3 * max(1.0, np.abs(con.W).max())
+    # the factors reproduce N and are orthonormal (SVT output)
+    np.testing.assert_allclose((res.A * res.s) @ res.B.T, res.N, atol=1e-12)
+    np.testing.assert_allclose(res.A.T @ res.A, np.eye(res.s.size), atol=1e-10)
+
+
+def test_refine_warm_start_and_bad_input():
+    rng = np.random.default_rng(2)
+    A = rng.standard_normal((80, 3))
+    y = rng.integers(0, 3, 80)
+    cold = refine(A, y, None, "softmax", 0.05, np.zeros((3, 3)), np.zeros(3), tol=1e-8,
+                  max_iter=2000)
+    warm = refine(A, y, None, "softmax", 0.05, cold.N, cold.b, tol=1e-8, max_iter=2000)
+    # a warm start at the solution stays there and stops at the first check
+    assert warm.iterations <= 5
+    assert warm.objective == pytest.approx(cold.objective, rel=1e-10)
+    with pytest.raises(ConfigError, match="lam must be a positive"):
+        refine(A, y, None, "softmax", -1.0, np.zeros((3, 3)), np.zeros(3), tol=1e-6,
+               max_iter=10)
+    with pytest.raises(ConfigError, match="class ids must lie in 0..2"):
+        refine(A, y + 5, None, "softmax", 0.1, np.zeros((3, 3)), np.zeros(3), tol=1e-6,
+               max_iter=10)
+    with pytest.raises(ConfigError, match="shapes disagree"):
+        refine(A, y, None, "softmax", 0.1, np.zeros((4, 3)), np.zeros(3), tol=1e-6,
+               max_iter=10)
+
+
+# ---------------------------------------------------------------- sigma_1 bound
+
+
+def test_sigma1_lower_bound_with_rank_deficient_blocks():
+    rng = np.random.default_rng(3)
+    d, k, r = 40, 12, 3
+    for trial in range(20):
+        # a gradient with a few dominant directions (rank 5 plus noise)
+        G = rng.standard_normal((d, 5)) @ rng.standard_normal((5, k)) \
+            + 1e-3 * rng.standard_normal((d, k))
+        U = np.linalg.qr(rng.standard_normal((d, r)))[0]
+        V = np.linalg.qr(rng.standard_normal((k, r)))[0]
+        # deliberately degenerate blocks: repeated columns, columns inside span(V) / span(U)
+        base = rng.standard_normal((k, 2))
+        Omega = np.hstack([base, base, V[:, :2] * 3.0, base[:, :1] + 1e-14])
+        Psi0 = rng.standard_normal((d, 2))
+        Psi = np.hstack([Psi0, Psi0 * 2.0, U[:, :1]])
+        Om = _fill(Omega, V, 4, rng)
+        Ps = _fill(Psi, U, 4, rng, cap=6)
+        VO = np.hstack([V, Om])
+        Q = np.hstack([U, Ps])
+        np.testing.assert_allclose(VO.T @ VO, np.eye(VO.shape[1]), atol=1e-12)
+        np.testing.assert_allclose(Q.T @ Q, np.eye(Q.shape[1]), atol=1e-12)
+        est = sigma1_lower_bound(G @ VO, G.T @ Q)
+        # Reference: numpy.linalg.norm(G, 2), the exact spectral norm; Rayleigh-Ritz with
+        # orthonormal bases can never exceed it.
+        exact = np.linalg.norm(G, 2)
+        assert est <= exact * (1 + 1e-12), trial
+        assert est > 0.3 * exact  # the random directions capture a good part of it
+
+
+def test_sigma1_bound_is_exact_on_the_top_singular_vector():
+    rng = np.random.default_rng(4)
+    G = rng.standard_normal((30, 8))
+    u, sv, vt = np.linalg.svd(G)
+    # Reference: numpy SVD; the bound is attained when the basis holds v_1.
+    B = np.hstack([vt[:1].T, np.linalg.qr(rng.standard_normal((8, 2)))[0]])
+    B = np.linalg.qr(B)[0]
+    assert sigma1_lower_bound(G @ B, np.zeros((8, 0))) == pytest.approx(sv[0], rel=1e-12)
+    # the gap formula: W = 0 and sigma_1 <= lam -> zero gap; otherwise tau (sigma_1 - lam)
+    assert gap_estimate(inner=0.0, nuclear=0.0, objective=2.0, lam=1.0, sigma1=0.9) == 0.0
+    assert gap_estimate(inner=0.0, nuclear=0.0, objective=2.0, lam=1.0, sigma1=1.5) == 1.0
+
+
+# ---------------------------------------------------------------- lam_max
+
+
+@pytest.mark.parametrize("dense", [True, False])
+def test_lam_max_is_sigma1_of_gradient_at_best_intercept(dense):
+    X, y = _problem("softmax", n=150, d=20, k=4, seed=5)
+    cfg = SolverConfig(loss="softmax", lam_frac=2.0, dense_gradient=dense, lam_max_passes=30)
+    res = GreedySolver((X, y), cfg).run()
+    # Reference: numpy. b0 = log class frequencies, G = X^T (softmax(b0) - E_y) / n.
+    n, k = X.shape[0], 4
+    freq = np.bincount(y, minlength=k) / n
+    E = np.eye(k)[y]
+    G = np.asarray(X.T @ (freq[None, :] - E)) / n
+    assert res.lam_max == pytest.approx(np.linalg.norm(G, 2), rel=1e-6)
+    # lam = 2 lam_max > lam_max: W = 0 is optimal
+    assert res.status == "converged" and res.rank == 0
+
+
+# ---------------------------------------------------------------- state, determinism
+
+
+def test_state_checkpoint_round_trip_gives_identical_next_pass(tmp_path):
+    X, y = _problem("softmax", seed=6)
+    cfg = SolverConfig(loss="softmax", lam_frac=0.2, dense_gradient=False, tol=1e-8)
+    a = GreedySolver((X, y), cfg)
+    for _ in range(5):
+        a.step()
+    arrays, meta = a.state.to_checkpoint()
+    # through the files a checkpoint uses: npz without pickle and JSON
+    save_npz(tmp_path / "state.npz", arrays)
+    (tmp_path / "state.json").write_text(json.dumps(meta))
+    restored = SolverState.from_checkpoint(load_npz(tmp_path / "state.npz"),
+                                           json.loads((tmp_path / "state.json").read_text()))
+    b = GreedySolver((X, y), cfg, state=restored)
+    for _ in range(3):
+        ra, rb = a.step(), b.step()
+        for key in ("objective", "gap_estimate", "sigma1", "rank", "atoms_added"):
+            assert ra[key] == rb[key], key
+    for name in ("U", "s", "V", "b", "Omega", "Psi"):
+        assert np.array_equal(getattr(a.state, name), getattr(b.state, name)), name
+    assert a.state.rng_state == b.state.rng_state
+
+
+def test_same_seed_same_model_and_callback_stop():
+    X, y = _problem("multilabel", seed=7)
+    cfg = SolverConfig(loss="multilabel", lam_frac=0.3, dense_gradient=False, seed=11)
+    r1 = GreedySolver((X, y), cfg).run()
+    r2 = GreedySolver((X, y), cfg).run()
+    assert r1.passes == r2.passes
+    for name in ("U", "s", "V", "b"):
+        assert np.array_equal(getattr(r1, name), getattr(r2, name)), name
+    seen = []
+    r3 = GreedySolver((X, y), cfg).run(callback=lambda rec: seen.append(rec) or len(seen) >= 3)
+    assert r3.status == "callback" and r3.passes == 3
+
+
+@pytest.mark.parametrize("loss", ["softmax", "squared"])
+def test_dense_and_matrix_free_paths_agree_and_reach_cvxpy(loss):
+    X, y = _problem(loss, n=150, d=20, k=4, seed=8)
+    out = {}
+    for dense in (True, False):
+        cfg = SolverConfig(loss=loss, lam_frac=0.15, dense_gradient=dense, tol=1e-7)
+        out[dense] = GreedySolver((X, y), cfg).run()
+        assert out[dense].status == "converged"
+    a, b = out[True], out[False]
+    assert a.lam == pytest.approx(b.lam, rel=1e-6)
+    assert a.objective == pytest.approx(b.objective, rel=1e-6)
+    Wa, Wb = (a.U * a.s) @ a.V.T, (b.U * b.s) @ b.V.T
+    assert np.abs(Wa - Wb).max() < 1e-2 * np.abs(Wa).max()
+    # Reference: CVXPY + Clarabel optimum of the same problem (tests/conic.py).
+    con = solve_conic(X, y, loss=loss, lam=b.lam, n_outputs=4)
+    for r in (a, b):
+        assert r.objective == pytest.approx(con.objective, rel=1e-6)
+        # the objective the solver reports is the true F of its model (scipy.special)
+        F = _objective_numpy(X, y, r.U, r.s, r.V, r.b, loss, r.lam)
+        assert r.objective == pytest.approx(F, rel=1e-10)
+        # the gap estimate bounds the true suboptimality (up to the conic solver's accuracy)
+        assert r.objective - con.objective <= r.gap + 1e-8
+
+
+# ---------------------------------------------------------------- train()
+
+
+@pytest.mark.parametrize("loss", ["softmax", "squared", "multilabel"])
+def test_train_smoke(loss, tmp_path):
+    X, y = _problem(loss, seed=9)
+    records = []
+    res = train(X, targets=y, loss=loss, lam_frac=0.2, tol=1e-4, out=tmp_path / "run",
+                on_pass=records.append)
+    assert res.status == "converged", res.message
+    assert res.rank >= 1 and res.sigma_ratio <= 1 + 1e-4
+    F = _objective_numpy(X, y, res.model.U, res.model.s, res.model.V, res.model.b, loss, res.lam)
+    assert res.objective == pytest.approx(F, rel=1e-9)  # scipy.special recomputation
+    lines = (tmp_path / "run" / "history.jsonl").read_text().splitlines()
+    assert len(lines) == res.passes == len(records)
+    last = json.loads(lines[-1])
+    for key in ("pass", "objective", "gap_estimate", "sigma_ratio", "rank", "seconds",
+                "bytes_read", "mb_per_s", "atoms_added"):
+        assert key in last
+    from stream.model import load_model
+
+    m = load_model(tmp_path / "run" / "model")
+    np.testing.assert_array_equal(m.s, res.model.s)
+    assert json.loads((tmp_path / "run" / "config.json").read_text())["settings"]["loss"] == loss
+
+
+def test_train_path_class_weights_and_errors(tmp_path):
+    X, y = _problem("softmax", n=240, seed=10)
+    res = train((X[:160], y[:160]), loss="softmax", path=4, valid=(X[160:], y[160:]),
+                path_min_frac=0.1, class_weight="balanced", tol=1e-3)
+    assert len(res.path) >= 3 and res.best_index is not None
+    assert res.lam == pytest.approx(res.path[res.best_index].lam)
+    assert res.path[0].rank == 0  # lam_max: W = 0
+    lams = [p.lam for p in res.path]
+    assert all(b < a for a, b in zip(lams, lams[1:], strict=False))
+    with pytest.raises(ConfigError, match="exactly one of lam, lam_frac and path"):
+        train((X, y), loss="softmax", lam=0.1, lam_frac=0.1)
+    with pytest.raises(ConfigError, match="needs validation data"):
+        train((X, y), loss="softmax", path=3)
+    with pytest.raises(ConfigError, match="softmax loss only"):
+        train((X, y.astype(np.float32)[:, None]), loss="squared", lam=0.1,
+              class_weight="balanced")
+    bad = tmp_path / "cw.txt"
+    bad.write_text("1 2\n")
+    with pytest.raises(InputError, match="2 class weights for 5 classes"):
+        train((X, y), loss="softmax", lam=0.1, class_weight=bad)
+
+
+def test_cli_train_exit_codes(tmp_path, capsys):
+    from stream.cli import main
+    from stream.store import write_store
+
+    X, y = _problem("softmax", n=120, d=15, k=3, seed=12)
+    store = tmp_path / "t.zarr"
+    write_store(store, X, y, kind="classes")
+    args = ["train", str(store), "--loss", "softmax", "--lam-frac", "0.3",
+            "--out", str(tmp_path / "run")]
+    assert main(args) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].split()[:3] == ["pass", "objective", "gap"]
+    assert lines[-1].startswith("converged:")
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert "already exists" in err and len(err.strip().splitlines()) == 1
+    wrong = ["train", str(store), "--loss", "squared", "--lam", "0.1", "--out",
+             str(tmp_path / "r2")]
+    assert main(wrong) == 2
+    assert "needs 'values'" in capsys.readouterr().err
+    assert not (tmp_path / "r2").exists()
+    meta = json.loads((tmp_path / "run" / "model" / "model.json").read_text())
+    assert math.isfinite(meta["objective"])
+    # the console entry point runs the same code (one subprocess, for the exit status)
+    done = subprocess.run([sys.executable, "-m", "stream.cli", "train", str(store), "--loss",
+                           "softmax", "--lam", "-1", "--out", str(tmp_path / "r3")],
+                          capture_output=True, text=True, cwd=ROOT)
+    assert done.returncode == 2 and "lam = -1.0" in done.stderr
