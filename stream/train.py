@@ -266,10 +266,12 @@ def _validation(model: Any, valid: Any, loss: str, block_rows: int | None) -> tu
 class _Recorder:
     """Per-pass hook: keeps the history, appends it to the run dir, calls the user callback."""
 
-    def __init__(self, run: Any, callback: Callable | None, printer: Callable | None) -> None:
+    def __init__(self, run: Any, callback: Callable | None, printer: Callable | None,
+                 hook: Callable[[], bool] | None = None) -> None:
         self.run = run
         self.callback = callback
         self.printer = printer
+        self.hook = hook  # checkpoint cadence / stop flag (stream.rundir.RunRecorder)
         self.history: list[dict] = []
 
     def record(self, rec: dict) -> None:
@@ -282,6 +284,8 @@ class _Recorder:
         self.record(rec)
         if self.printer is not None:
             self.printer(rec)
+        if self.hook is not None and self.hook():
+            return True
         if self.callback is not None:
             return self.callback(rec)
         return None
@@ -318,6 +322,10 @@ def train(
     power_size: int = 6,
     expand_size: int = 6,
     on_pass: Callable[[dict], None] | None = None,
+    checkpoint_seconds: float | None = 60.0,
+    checkpoint_passes: int | None = None,
+    stop: Any = None,
+    resume_point: Any = None,
 ) -> TrainResult:
     """Fit ``min f(W, b) + lam ||W||_*`` on ``source`` with the greedy low-rank solver.
 
@@ -367,6 +375,15 @@ def train(
         Block sizes ``p`` and ``p'`` of the solver (see :class:`SolverConfig`).
     on_pass : callable, optional
         Called with each pass's record for display (never stops the run).
+    checkpoint_seconds, checkpoint_passes : optional
+        With ``out``: a checkpoint every ``checkpoint_seconds`` of training
+        (default 60) or every ``checkpoint_passes`` passes, whichever comes
+        first, at the end of each path step and at the end.
+    stop : stream.signals.StopFlag, optional
+        Checked after each pass; when set, a checkpoint is written and the
+        run ends with status ``"interrupted"`` (no model is written).
+    resume_point : stream.rundir.ResumePoint, optional
+        Continue a run from a checkpoint (see :func:`stream.rundir.resume`).
 
     Returns
     -------
@@ -375,6 +392,9 @@ def train(
     _validate(loss=loss, lam=lam, lam_frac=lam_frac, path=path, path_min_frac=path_min_frac,
               valid=valid, tol=tol, max_passes=max_passes, max_seconds=max_seconds,
               class_weight=class_weight)
+    from .checkpoint import CheckpointSchedule
+
+    CheckpointSchedule(seconds=checkpoint_seconds, passes=checkpoint_passes)  # validates them
     from .losses import check_loss_source
     from .memsource import as_source
 
@@ -388,23 +408,42 @@ def train(
                            block_rows=block_rows, backend=backend, class_weights=cw,
                            dense_gradient=dense_gradient, power_size=power_size,
                            expand_size=expand_size)
-        solver = GreedySolver(src, cfg, progress=progress)
+        if resume_point is not None:
+            cfg = resume_point.solver_config(cfg)
+        solver = GreedySolver(src, cfg, progress=progress,
+                              state=None if resume_point is None else resume_point.state)
         fingerprint = _fingerprint(src)
-        run = None
-        if out is not None:
+        run = None if resume_point is None else resume_point.run
+        if out is not None and run is None:
             run = _create_run(out, src, cfg, fingerprint, overwrite=overwrite,
                               extra={"path": path, "path_min_frac": path_min_frac,
                                      "class_weight": class_weight if isinstance(
                                          class_weight, str) else None,
-                                     "max_seconds": max_seconds})
-        rec = _Recorder(run, callback, on_pass)
+                                     "max_seconds": max_seconds,
+                                     "valid": _path_of(valid),
+                                     "checkpoint_seconds": checkpoint_seconds,
+                                     "checkpoint_passes": checkpoint_passes})
+        ctx, ckpt = _checkpointing(run, solver, resume_point, checkpoint_seconds,
+                                   checkpoint_passes, stop)
+        hook = stop if ckpt is None else (lambda: ckpt.after_pass(solver.state))
+        rec = _Recorder(run, callback, on_pass, hook=hook)
+        if resume_point is not None:
+            rec.history = [h for h in run.read_history() if h.get("kind") == "pass"]
         t0 = time.perf_counter()
         deadline = None if max_seconds is None else t0 + float(max_seconds)
         if path is None:
             result = _train_single(solver, rec, deadline, fingerprint, src, loss)
         else:
             result = _train_path(solver, rec, deadline, fingerprint, src, loss, int(path),
-                                 float(path_min_frac), valid, block_rows)
+                                 float(path_min_frac), valid, block_rows, ctx)
+        if stop is not None and stop:
+            return _with(result, status="interrupted",
+                         run_dir=None if run is None else str(run.path),
+                         message=f"interrupted by {stop.signal_name}; checkpoint written"
+                         if run is not None else f"interrupted by {stop.signal_name}")
+        if ckpt is not None:
+            ctx.finished = True
+            ckpt.checkpoint(solver.state)
         if run is not None:
             from .model import save_model
 
@@ -420,6 +459,56 @@ def _with(result: TrainResult, **changes: Any) -> TrainResult:
     from dataclasses import replace
 
     return replace(result, **changes)
+
+
+def _path_of(source: Any) -> str | None:
+    if isinstance(source, (str, os.PathLike)):
+        return os.fspath(Path(source).resolve())
+    p = getattr(source, "path", None)
+    return None if p is None else os.fspath(Path(p).resolve())
+
+
+class _RunContext:
+    """What a checkpoint holds beside the solver state (``ctx`` in stream.rundir).
+
+    The planner's decisions (block rows, dense gradient), so a resumed run
+    reads the same blocks; on a path, the position (``path``: index, whether
+    its lam is set, points so far, the early-stop count) and the best model
+    so far (``best``: arrays U, s, V, b).
+    """
+
+    def __init__(self, solver: GreedySolver, saved: dict | None = None,
+                 best: dict | None = None) -> None:
+        saved = saved or {}
+        rows = solver.config.block_rows
+        if rows is None and solver.config.block_bytes is None:
+            rows = solver.plan.block_rows
+        self.plan = saved.get("plan") or {"block_rows": None if rows is None else int(rows),
+                                          "dense_gradient": bool(solver.dense)}
+        self.path: dict | None = saved.get("path")
+        self.best: dict | None = best or None
+        self.finished = False
+        self.recorder: Any = None  # the RunRecorder, for the path-step checkpoints
+
+    def __call__(self) -> tuple[dict, dict]:
+        arrays = dict(self.best) if self.best else {}
+        return arrays, {"plan": self.plan, "path": self.path, "finished": self.finished}
+
+
+def _checkpointing(run, solver, resume_point, seconds, passes, stop):
+    """The run context and the checkpoint hook (None without a run directory)."""
+    if resume_point is not None:
+        ctx = _RunContext(solver, resume_point.context, resume_point.context_arrays)
+    else:
+        ctx = _RunContext(solver)
+    if run is None:
+        return ctx, None
+    from .checkpoint import CheckpointSchedule
+    from .rundir import RunRecorder
+
+    sched = CheckpointSchedule(seconds=seconds, passes=passes)
+    ctx.recorder = RunRecorder(run, schedule=sched, stop=stop, context=ctx)
+    return ctx, ctx.recorder
 
 
 def _create_run(out, src, cfg: SolverConfig, fingerprint: str, *, overwrite: bool,
@@ -475,35 +564,65 @@ def _better(a: float, b: float, higher: bool) -> bool:
     return a > b if higher else a < b
 
 
+def _point_best(points: list, higher: bool) -> int:
+    return max(range(len(points)), key=lambda i: points[i].score if higher else -points[i].score)
+
+
 def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, valid,
-                block_rows) -> TrainResult:
-    first = _run_solver(solver, rec, deadline)  # lam_max phase only (lam is None)
-    if first.status != "lam_max":
-        raise ConfigError(f"train: the lam_max phase ended with status {first.status!r}; "
-                          "raise --max-passes or --max-seconds")
+                block_rows, ctx) -> TrainResult:
+    from dataclasses import asdict
+
+    from .model import Model
+
+    pos = ctx.path
+    if pos is None:  # a fresh path (or a resume from inside the lam_max phase)
+        first = _run_solver(solver, rec, deadline)  # lam_max phase only (lam is None)
+        if first.status == "callback":
+            model = _model(src, loss, first, _fit_meta(first, fingerprint, math.nan))
+            return TrainResult(model=model, objective=first.objective, gap=first.gap,
+                               sigma_ratio=first.sigma_ratio, rank=first.rank,
+                               passes=first.passes, seconds=first.seconds, status="callback",
+                               message=first.message, history=list(rec.history),
+                               lam=first.lam, lam_max=first.lam_max)
+        if first.status != "lam_max":
+            raise ConfigError(f"train: the lam_max phase ended with status {first.status!r}; "
+                              "raise --max-passes or --max-seconds")
+        # the path position, in the checkpoints: value index, whether its lam is set,
+        # finished points, early-stop count, best point so far
+        pos = {"index": 0, "started": False, "points": [], "worse": 0, "best": None,
+               "best_meta": None, "status": "converged", "message": "", "passes_before": 0,
+               "done": False}
+        ctx.path = pos
     lam_max = float(solver.state.lam_max)
     key, higher = VALIDATION_METRIC[loss]
     lams = [lam_max * min_frac ** (j / (m - 1)) for j in range(m)]
-    points: list[PathPoint] = []
-    fits: list[tuple[SolverResult, Any]] = []
-    worse = 0
-    status = "converged"
-    message = ""
-    for j, lam_j in enumerate(lams):
-        passes_before = solver.state.passes
-        solver.set_lam(lam_j, path_index=j)
+    points: list[PathPoint] = [PathPoint(**p) for p in pos["points"]]
+    best_model = None
+    if pos["best"] is not None:  # resumed: the best model so far comes from the checkpoint
+        names = getattr(src, "output_names", None)
+        b = ctx.best
+        best_model = Model(U=b["U"], s=b["s"], V=b["V"], b=b["b"], loss=loss,
+                           names=list(names) if names else None, meta=pos["best_meta"])
+    status = message = None
+    while not pos["done"] and pos["index"] < m:
+        j = pos["index"]
+        lam_j = lams[j]
+        if not pos["started"]:
+            pos["passes_before"] = solver.state.passes
+            solver.set_lam(lam_j, path_index=j)
+            pos["started"] = True
         fit = _run_solver(solver, rec, deadline)
         gb = _grad_b(rec.history)
         model = _model(src, loss, fit, _fit_meta(fit, fingerprint, gb))
         metrics, score = _validation(model, valid, loss, block_rows)
         pt = PathPoint(index=j, lam=lam_j, objective=fit.objective, gap=fit.gap,
                        sigma_ratio=fit.sigma_ratio, rank=fit.rank,
-                       passes=solver.state.passes - passes_before, status=fit.status,
+                       passes=solver.state.passes - pos["passes_before"], status=fit.status,
                        metrics=_jsonable(metrics), score=score)
         points.append(pt)
-        fits.append((fit, model))
-        best = max(range(len(points)), key=lambda i: points[i].score if higher
-                   else -points[i].score)
+        best = _point_best(points, higher)
+        if best == len(points) - 1:
+            best_model = model
         rec.event({"kind": "path", "index": j, "lam": lam_j, "rank": fit.rank,
                    "objective": fit.objective, "gap_estimate": fit.gap,
                    "sigma_ratio": fit.sigma_ratio, "status": fit.status,
@@ -511,26 +630,37 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
                    "validation": _jsonable(metrics), "best_lam": points[best].lam,
                    "passes": pt.passes})
         if fit.status in ("callback", "max_seconds"):
+            # unfinished value: the checkpoint keeps the position inside it
             status, message = fit.status, f"path stopped at value {j + 1} of {m}: {fit.message}"
             break
+        if best == len(points) - 1:
+            pos["best"], pos["best_meta"] = j, model.meta
+            ctx.best = {"U": fit.U, "s": fit.s, "V": fit.V, "b": fit.b}
         if len(points) >= 2 and _better(points[-2].score, score, higher):
-            worse += 1
+            pos["worse"] += 1
         else:
-            worse = 0
-        if worse >= 2:
-            status = "path_early_stop"
-            message = f"validation {key} worsened twice in a row; stopped at value {j + 1} of {m}"
-            break
-        if fit.status != "converged":
-            status = fit.status
-    best = max(range(len(points)), key=lambda i: points[i].score if higher else -points[i].score)
-    fit, model = fits[best]
+            pos["worse"] = 0
+        pos["points"] = [asdict(p) for p in points]
+        pos["index"], pos["started"] = j + 1, False
+        if pos["worse"] >= 2:
+            pos["status"] = "path_early_stop"
+            pos["message"] = (f"validation {key} worsened twice in a row; stopped at value "
+                              f"{j + 1} of {m}")
+            pos["done"] = True
+        elif fit.status != "converged":
+            pos["status"] = fit.status
+        if ctx.recorder is not None:  # a checkpoint at the end of each path step
+            ctx.recorder.checkpoint(solver.state)
+    status = status or pos["status"]
+    message = message or pos["message"]
+    best = _point_best(points, higher)
+    pt = points[best]
     if not message:
-        message = (f"path of {len(points)} values; best lam {points[best].lam:.6g} "
-                   f"(validation {key} {points[best].score:.6g})")
-    return TrainResult(model=model, objective=fit.objective, gap=fit.gap,
-                       sigma_ratio=fit.sigma_ratio, rank=fit.rank, passes=solver.state.passes,
+        message = (f"path of {len(points)} values; best lam {pt.lam:.6g} "
+                   f"(validation {key} {pt.score:.6g})")
+    return TrainResult(model=best_model, objective=pt.objective, gap=pt.gap,
+                       sigma_ratio=pt.sigma_ratio, rank=pt.rank, passes=solver.state.passes,
                        seconds=solver.state.seconds, status=status, message=message,
-                       history=list(rec.history), lam=fit.lam, lam_max=lam_max, path=points,
-                       best_index=best, grad_b_norm=float(model.meta.get("grad_b_norm") or
+                       history=list(rec.history), lam=pt.lam, lam_max=lam_max, path=points,
+                       best_index=best, grad_b_norm=float(best_model.meta.get("grad_b_norm") or
                                                           math.nan))

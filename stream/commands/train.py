@@ -53,6 +53,11 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--class-weight", default=None, metavar="balanced|FILE",
                         help="softmax class weights: 'balanced' or a file of k numbers (.npy "
                              "or text)")
+    parser.add_argument("--checkpoint-seconds", type=float, default=60.0, metavar="S",
+                        help="seconds of training between checkpoints (default 60)")
+    parser.add_argument("--checkpoint-passes", type=int, default=None, metavar="N",
+                        help="also checkpoint every N passes (default: by time only; always "
+                             "at the end of each path step and of the run)")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing RUN")
     parser.add_argument("--quiet", action="store_true", help="no per-pass table, no progress")
     parser.add_argument("--json", action="store_true",
@@ -96,6 +101,7 @@ def _summary(res: Any) -> dict:
 
 def run(args: argparse.Namespace) -> int:
     from stream.errors import ConfigError
+    from stream.signals import interrupted_message, stop_on_signals
     from stream.train import train
 
     if args.path is not None and args.valid is None:
@@ -113,14 +119,19 @@ def run(args: argparse.Namespace) -> int:
             printed["header"] = True
         print(pass_line(rec), flush=True)
 
-    res = train(
-        args.store, loss=args.loss, lam=args.lam, lam_frac=args.lam_frac, path=args.path,
-        path_min_frac=args.path_min_frac, valid=args.valid, tol=args.tol,
-        max_passes=args.max_passes, max_seconds=args.max_seconds, memory=args.memory,
-        seed=args.seed, block_rows=args.block_rows, backend=args.backend,
-        class_weight=args.class_weight, progress=show and sys.stderr.isatty(), out=args.out,
-        overwrite=args.overwrite, on_pass=on_pass,
-    )
+    with stop_on_signals() as stop:  # SIGINT/SIGTERM: checkpoint, then exit 130/143
+        res = train(
+            args.store, loss=args.loss, lam=args.lam, lam_frac=args.lam_frac, path=args.path,
+            path_min_frac=args.path_min_frac, valid=args.valid, tol=args.tol,
+            max_passes=args.max_passes, max_seconds=args.max_seconds, memory=args.memory,
+            seed=args.seed, block_rows=args.block_rows, backend=args.backend,
+            class_weight=args.class_weight, progress=show and sys.stderr.isatty(), out=args.out,
+            overwrite=args.overwrite, on_pass=on_pass, stop=stop,
+            checkpoint_seconds=args.checkpoint_seconds, checkpoint_passes=args.checkpoint_passes,
+        )
+    if res.status == "interrupted":
+        print(interrupted_message(args.out), file=sys.stderr, flush=True)
+        return stop.exit_code or 130
     if args.json:
         print(json.dumps(_summary(res), indent=2, sort_keys=True))
         return 0
