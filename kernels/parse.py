@@ -574,3 +574,132 @@ def entries_to_csr(rows, cols, vals, r0, m, indptr, out_cols, out_vals, status):
     status[2] = k + 1
     status[3] = dups
     status[4] = empty
+
+
+@njit(nogil=True, cache=True)
+def _sort_segment(cols, vals, a, b):
+    """Sort ``cols[a:b]`` (carrying ``vals``) stably: insertion sort, merge sort if long."""
+    n = b - a
+    if n <= 32:
+        for i in range(a + 1, b):
+            c = cols[i]
+            v = vals[i]
+            j = i - 1
+            while j >= a and cols[j] > c:
+                cols[j + 1] = cols[j]
+                vals[j + 1] = vals[j]
+                j -= 1
+            cols[j + 1] = c
+            vals[j + 1] = v
+        return
+    order = np.argsort(cols[a:b], kind="mergesort")
+    sc = cols[a:b][order]
+    sv = vals[a:b][order]
+    cols[a:b] = sc
+    vals[a:b] = sv
+
+
+@njit(nogil=True, cache=True)
+def unsorted_entries_to_csr(
+    rows, cols, vals, r0, m, indptr, cursor, tmp_cols, tmp_vals, out_cols, out_vals, status
+):
+    """Gather entries in any order into CSR in O(n + m), summing repeats.
+
+    A counting sort by row (stable), then a stable sort of each row by
+    column, then repeated (row, column) pairs are summed in input order.
+
+    Parameters
+    ----------
+    rows, cols : int64 arrays (n,)
+        Rows in ``r0 .. r0+m-1``, any order.
+    vals : float64 array (n,)
+    r0, m : int
+    indptr : int64 array (m+1,)
+        Out: local row pointers.
+    cursor : int64 array (m,)
+        Work space.
+    tmp_cols : int64 array (n,), tmp_vals : float64 array (n,)
+        Work space.
+    out_cols : int64 array (n,), out_vals : float64 array (n,)
+        Out: the first ``status[2]`` entries.
+    status : int64 array (8,)
+        Out: ``[2]`` entries written, ``[3]`` repeats summed, ``[4]`` empty rows.
+    """
+    for i in range(status.shape[0]):
+        status[i] = 0
+    n = rows.shape[0]
+    for i in range(m + 1):
+        indptr[i] = 0
+    for i in range(n):
+        indptr[rows[i] - r0 + 1] += 1
+    for i in range(m):
+        indptr[i + 1] += indptr[i]
+        cursor[i] = indptr[i]
+    for i in range(n):
+        r = rows[i] - r0
+        k = cursor[r]
+        tmp_cols[k] = cols[i]
+        tmp_vals[k] = vals[i]
+        cursor[r] = k + 1
+    k = 0
+    dups = 0
+    empty = 0
+    start = 0
+    for r in range(m):
+        a = start
+        b = indptr[r + 1]
+        start = b
+        if b == a:
+            empty += 1
+        _sort_segment(tmp_cols, tmp_vals, a, b)
+        first = k
+        for i in range(a, b):
+            if k > first and tmp_cols[i] == out_cols[k - 1]:
+                out_vals[k - 1] += tmp_vals[i]
+                dups += 1
+            else:
+                out_cols[k] = tmp_cols[i]
+                out_vals[k] = tmp_vals[i]
+                k += 1
+        indptr[r + 1] = k
+    status[2] = k
+    status[3] = dups
+    status[4] = empty
+
+
+@njit(nogil=True, cache=True)
+def bucket_scatter(rows, cols, vals, width, b0, counts, cursor, out_rows, out_cols, out_vals):
+    """Group entries by row bucket ``rows // width - b0``, keeping their order within a bucket.
+
+    Parameters
+    ----------
+    rows, cols : int64 arrays (n,)
+    vals : float64 array (n,)
+    width : int
+        Rows per bucket.
+    b0 : int
+        Lowest bucket id present.
+    counts : int64 array (nb + 1,)
+        Out: ``counts[j+1] - counts[j]`` entries of bucket ``b0 + j`` start at
+        ``counts[j]`` (cumulative).
+    cursor : int64 array (nb,)
+        Work space.
+    out_rows, out_cols, out_vals : arrays (n,)
+        Out: the entries grouped by bucket.
+    """
+    nb = cursor.shape[0]
+    for j in range(nb + 1):
+        counts[j] = 0
+    n = rows.shape[0]
+    for i in range(n):
+        counts[rows[i] // width - b0 + 1] += 1
+    for j in range(nb):
+        counts[j + 1] += counts[j]
+        cursor[j] = counts[j]
+    for i in range(n):
+        j = rows[i] // width - b0
+        k = cursor[j]
+        out_rows[k] = rows[i]
+        out_cols[k] = cols[i]
+        out_vals[k] = vals[i]
+        cursor[j] = k + 1

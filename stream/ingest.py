@@ -49,7 +49,6 @@ DUPLICATES = ("sum", "error")
 #: order, sorted copies); common practice, no source: measured peak / entries.
 _SORT_BYTES_PER_ENTRY = 96
 _EMPTY_ROWS_PIECE = 1 << 20
-_REC = np.dtype([("r", "<i8"), ("c", "<i8"), ("v", "<f8")])
 
 
 @dataclass(frozen=True)
@@ -214,30 +213,28 @@ class _RowSink:
         out_v = np.empty(n, dtype=np.float64)
         st = np.zeros(8, dtype=np.int64)
         kp.entries_to_csr(rows, cols, vals, r0, m, indptr, out_c, out_v, st)
-        if st[0] != 0:  # not in (row, column) order: sort, then gather again
-            if m * self.n_cols < 2**62:
-                order = np.argsort((rows - r0) * self.n_cols + cols, kind="stable")
-            else:
-                order = np.lexsort((cols, rows))
-            rows, cols, vals = rows[order], cols[order], vals[order]
-            kp.entries_to_csr(rows, cols, vals, r0, m, indptr, out_c, out_v, st)
+        if st[0] != 0:  # not in (row, column) order: counting sort by row, then by column
+            kp.unsorted_entries_to_csr(
+                rows, cols, vals, r0, m, indptr, np.empty(m, np.int64),
+                np.empty(n, np.int64), np.empty(n), out_c, out_v, st,
+            )  # fmt: skip
         k, n_dup = int(st[2]), int(st[3])
         if n_dup and self.duplicates == "error":
-            self._refuse_duplicate(r0, indptr, out_c, rows, cols)
+            self._refuse_duplicate(r0, rows, cols)
         self.writer.append(indptr, out_c[:k], out_v[:k])
         self.dups += n_dup
         self.empty += int(st[4])
         self.nnz += k
         self.next_row = r1
 
-    def _refuse_duplicate(self, r0, indptr, out_c, rows, cols) -> None:
-        key_r = rows[1:] == rows[:-1]
-        same = np.flatnonzero(key_r & (cols[1:] == cols[:-1]))
-        j = int(same[0]) + 1
+    def _refuse_duplicate(self, r0: int, rows: np.ndarray, cols: np.ndarray) -> None:
+        order = np.lexsort((cols, rows))  # only on the way to an error
+        r, c = rows[order], cols[order]
+        j = int(np.flatnonzero((r[1:] == r[:-1]) & (c[1:] == c[:-1]))[0]) + 1
         base = 1 if self.hdr.one_based else 0
         raise InputError(
-            f"{self.hdr.path}: entry (row {int(rows[j]) + base}, column "
-            f"{int(cols[j]) + base}) appears more than once; remove the repeat or "
+            f"{self.hdr.path}: entry (row {int(r[j]) + base}, column "
+            f"{int(c[j]) + base}) appears more than once; remove the repeat or "
             "pass --duplicates sum to add them"
         )
 
@@ -281,7 +278,9 @@ class _SortedStream:
 
 
 class _Buckets:
-    """Scratch files of entries, one per range of ``width`` rows."""
+    """Scratch files of entries, one set (rows, cols, vals) per range of ``width`` rows."""
+
+    _PARTS = (("r", np.int64), ("c", np.int64), ("v", np.float64))
 
     def __init__(self, root: Path, width: int):
         self.root = root
@@ -289,23 +288,48 @@ class _Buckets:
         self.counts: dict[int, int] = {}
         root.mkdir(parents=True, exist_ok=False)
 
-    def file(self, b: int) -> Path:
-        return self.root / f"bucket-{b:08d}.bin"
+    def file(self, b: int, part: str) -> Path:
+        return self.root / f"bucket-{b:08d}.{part}"
 
     def add(self, rows: np.ndarray, cols: np.ndarray, vals: np.ndarray) -> None:
-        b = rows // self.width
-        order = np.argsort(b, kind="stable")
-        rec = np.empty(rows.shape[0], dtype=_REC)
-        rec["r"], rec["c"], rec["v"] = rows[order], cols[order], vals[order]
-        bs = b[order]
-        cuts = np.flatnonzero(bs[1:] != bs[:-1]) + 1
-        starts = np.concatenate(([0], cuts))
-        stops = np.concatenate((cuts, [bs.shape[0]]))
-        for s, e in zip(starts.tolist(), stops.tolist(), strict=True):
-            bid = int(bs[s])
-            with open(self.file(bid), "ab") as fh:
-                rec[s:e].tofile(fh)
+        n = rows.shape[0]
+        b0 = int(rows.min()) // self.width
+        nb = int(rows.max()) // self.width - b0 + 1
+        counts = np.empty(nb + 1, dtype=np.int64)
+        grouped = (np.empty(n, np.int64), np.empty(n, np.int64), np.empty(n, np.float64))
+        kp.bucket_scatter(rows, cols, vals, self.width, b0, counts, np.empty(nb, np.int64),
+                          *grouped)
+        for j in np.flatnonzero(np.diff(counts)).tolist():  # one write per bucket, not per entry
+            s, e = int(counts[j]), int(counts[j + 1])
+            bid = b0 + j
+            for (part, _dt), arr in zip(self._PARTS, grouped, strict=True):
+                with open(self.file(bid, part), "ab") as fh:
+                    arr[s:e].tofile(fh)
             self.counts[bid] = self.counts.get(bid, 0) + (e - s)
+
+    def read(self, bid: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The whole bucket; its files are removed."""
+        out = []
+        for part, dt in self._PARTS:
+            out.append(np.fromfile(self.file(bid, part), dtype=dt))
+            self.file(bid, part).unlink()
+        return out[0], out[1], out[2]
+
+    def read_pieces(self, bid: int, size: int) -> Iterator[tuple[np.ndarray, ...]]:
+        """The bucket in pieces of ``size`` entries; its files are removed afterwards."""
+        handles = [open(self.file(bid, part), "rb") for part, _dt in self._PARTS]
+        try:
+            while True:
+                got = [np.fromfile(fh, dtype=dt, count=size)
+                       for fh, (_p, dt) in zip(handles, self._PARTS, strict=True)]
+                if got[0].size == 0:
+                    return
+                yield tuple(got)
+        finally:
+            for fh in handles:
+                fh.close()
+            for part, _dt in self._PARTS:
+                self.file(bid, part).unlink()
 
 
 def _drain(
@@ -321,25 +345,18 @@ def _drain(
     for bid in sorted(bk.counts):
         r0 = bid * bk.width
         r1 = min(n_rows, r0 + bk.width)
-        path = bk.file(bid)
         if bk.counts[bid] > max_entries * 5 // 4 and bk.width > 1:
             # too big to sort in the budget: re-bucket by a finer row range
             # (at least halving the width, so the recursion ends)
             finer = min(bk.width // 2, -(-bk.width * max_entries // bk.counts[bid]))
             sub = _Buckets(bk.root / f"split-{bid}", max(1, finer))
-            with open(path, "rb") as fh:
-                while True:
-                    rec = np.fromfile(fh, dtype=_REC, count=max_entries)
-                    if rec.size == 0:
-                        break
-                    sub.add(rec["r"] - r0, rec["c"], rec["v"])
-            path.unlink()
+            for r, c, v in bk.read_pieces(bid, max_entries):
+                sub.add(r - r0, c, v)
             used += _drain_shifted(sub, sink, r0=r0, r1=r1, max_entries=max_entries)
             shutil.rmtree(sub.root, ignore_errors=True)
         else:
-            rec = np.fromfile(path, dtype=_REC)
-            path.unlink()
-            sink.rows(r0, r1, rec["r"], rec["c"], rec["v"])
+            r, c, v = bk.read(bid)
+            sink.rows(r0, r1, r, c, v)
             used += 1
         if progress is not None:
             progress.update(1)
