@@ -2,9 +2,10 @@
 
 References: scipy.sparse is the reference for every matrix round trip (the
 blocks stacked with ``scipy.sparse.vstack`` must equal the input CSR exactly);
-numpy for dense targets; the CRC-32 check value of b"123456789" (0xCBF43926)
-is the published one from the CRC catalogue (Williams, "A painless guide to
-CRC error detection algorithms", 1993, and zlib's own documentation).
+numpy for dense targets; zarr's and h5py's own readers for the direct chunk
+decoders; the CRC-32 check value of b"123456789" (0xCBF43926) is the standard
+published check value of CRC-32/ISO-HDLC (Williams, "A painless guide to CRC
+error detection algorithms", 1993; quoted from memory).
 """
 
 from __future__ import annotations
@@ -542,7 +543,8 @@ def test_block_ranges_respect_the_budget(tmp_path_factory, lengths, budget):
 
 
 def test_crc32_check_value():
-    # published CRC-32 check value for the ASCII string "123456789" (CRC catalogue): CBF43926
+    # published CRC-32 check value of the ASCII string "123456789" (Williams 1993;
+    # the value is quoted from memory): CBF43926
     assert segment_checksum(np.frombuffer(b"123456789", dtype=np.uint8)) == "cbf43926"
 
 
