@@ -316,6 +316,7 @@ _RSS_SCRIPT = textwrap.dedent("""
     import json, sys, time, threading
     import numpy as np, psutil, scipy.sparse as sp
     from stream.gradient_pass import PassRequest, gradient_pass
+    from stream.memory import plan_blocks
 
     class Generated:
         # rows generated per block from the block's seed: nothing is held whole
@@ -358,7 +359,11 @@ _RSS_SCRIPT = textwrap.dedent("""
             base = peak[0] = proc.memory_info().rss
             res = gradient_pass(Generated(n, d, k), req, block_rows=5000, backend=backend)
             time.sleep(0.05)
-            out[f"{backend}-{n}"] = {"rows": res.n_rows, "peak": peak[0], "base": base}
+            plan = plan_blocks(Generated(n, d, k), budget=2**40, rank=r, omega_cols=4,
+                               psi_cols=4, backend=backend, max_block_bytes=5000 * 328,
+                               dense_gradient=False)
+            out[f"{backend}-{n}"] = {"rows": res.n_rows, "peak": peak[0], "base": base,
+                                     "planned": plan.peak_bytes, "plan_rows": plan.block_rows}
             del res
     stop.set(); t.join()
     print(json.dumps(out))
@@ -377,3 +382,8 @@ def test_peak_rss_does_not_grow_with_rows(tmp_path):
         # 4x the rows: peak RSS within 10% of the smaller pass's (the bound of
         # the task; holding every block would add about 40 MB here)
         assert large["peak"] <= 1.10 * small["peak"], out
+        # the planner's estimate of the pass's own peak (blocks of 5000 rows, as
+        # run) is not below what the pass added to the RSS
+        for run in (small, large):
+            assert run["plan_rows"] == 5000
+            assert run["peak"] - run["base"] <= run["planned"], out
