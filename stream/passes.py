@@ -329,6 +329,25 @@ def _serial_backend(job: PassJob) -> None:
         reader.close()
 
 
+def _share_kernel_threads(n_workers: int) -> None:
+    """Give this worker thread its share of numba's threads.
+
+    ``numba.set_num_threads`` is thread-local: with several workers each
+    running parallel kernels, splitting the threads avoids oversubscribing
+    the cores. Done only when the kernels (and their threading-layer guard)
+    are already loaded, so the engine never picks a threading layer itself.
+    """
+    guard = sys.modules.get("kernels.threads")
+    numba = sys.modules.get("numba")
+    if guard is None or numba is None or n_workers <= 1:
+        return
+    try:
+        guard.ensure_threading()
+        numba.set_num_threads(max(1, numba.config.NUMBA_NUM_THREADS // n_workers))
+    except Exception:  # an exotic numba: keep its default
+        return
+
+
 def _threads_backend(job: PassJob) -> None:
     n_workers = max(1, job.n_threads)
     reader = _Reader(job.source, job.ranges, slots=n_workers + 1)
@@ -336,6 +355,7 @@ def _threads_backend(job: PassJob) -> None:
     stop = threading.Event()
 
     def work() -> None:
+        _share_kernel_threads(n_workers)
         while not stop.is_set():
             t0 = time.perf_counter()
             try:
