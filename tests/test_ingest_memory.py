@@ -42,9 +42,11 @@ def _peak(src: Path, out: Path) -> dict:
     return json.loads(res.stdout.strip().splitlines()[-1])
 
 
+# Holding the 4M-entry file's entries in memory would add ~100 MiB (24 bytes
+# each) to a ~200 MiB baseline, far beyond the 10% allowed.
 @pytest.mark.slow
 @pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="needs Linux /proc")
-@pytest.mark.parametrize("order,small", [("sorted", 2_000_000), ("shuffled", 500_000)])
+@pytest.mark.parametrize("order,small", [("sorted", 1_000_000), ("shuffled", 500_000)])
 def test_peak_rss_flat_in_file_size(tmp_path, order, small):
     peaks = []
     for n in (small, 4 * small):
