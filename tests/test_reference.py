@@ -18,6 +18,7 @@ from scipy.optimize import check_grad
 from scipy.special import expit
 from scipy.special import softmax as sm
 from sklearn.metrics import log_loss
+from threadpoolctl import threadpool_limits
 
 from stream.errors import ConfigError, InputError
 from stream.reference import (
@@ -28,6 +29,14 @@ from stream.reference import (
 )
 
 LOSSES = ["softmax", "squared", "multilabel"]
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _one_blas_thread():
+    # OpenBLAS's own thread pool made these small dense products 5-20x slower when the two
+    # cores are shared with other processes (measured on the CI machine); one thread is steady.
+    with threadpool_limits(1, user_api="blas"):
+        yield
 
 
 def make_problem(loss: str, *, n=200, d=20, k=5, rank=2, density=0.3, seed=0, weights=True):
