@@ -122,7 +122,7 @@ class DemoSize:
 
 SIZES: dict[str, DemoSize] = {
     "small": DemoSize(
-        n_rows=3000, n_features=2048, n_sections=120, rank=6, vocab=3000, mean_words=24.0
+        n_rows=2000, n_features=2048, n_sections=60, rank=6, vocab=3000, mean_words=24.0
     ),
     "medium": DemoSize(
         n_rows=40000, n_features=16384, n_sections=300, rank=10, vocab=20000, mean_words=30.0
@@ -361,20 +361,21 @@ def _step_ingest(demo: _Demo) -> None:
 def _step_split(demo: _Demo) -> None:
     from .split import split_store
 
+    store = _need(demo, "store", "ingest")
     train, hold = demo.out / "train.zarr", demo.out / "holdout.zarr"
-    info = split_store(demo.store, train, hold, holdout=0.2, seed=demo.seed)
+    info = split_store(store, train, hold, holdout=0.2, seed=demo.seed)
+    # the path picks its lam on a validation set carved out of the training rows
+    fit, valid = demo.out / "fit.zarr", demo.out / "valid.zarr"
+    vinfo = split_store(train, fit, valid, holdout=0.2, seed=demo.seed + 1)
     demo.train_store, demo.holdout_store = train, hold
-    demo.say(
-        f"  {info.get('train_rows')} training rows -> {train}, "
-        f"{info.get('holdout_rows')} holdout rows -> {hold}"
-    )
-    demo.record(
-        "split",
-        train=str(train),
-        holdout=str(hold),
-        train_rows=info.get("train_rows"),
-        holdout_rows=info.get("holdout_rows"),
-    )
+    demo.fit_store, demo.valid_store = fit, valid
+    demo.say(f"  {info.get('holdout_rows')} holdout rows -> {hold}; the other "
+             f"{info.get('train_rows')} -> {train}, split again into {vinfo.get('train_rows')} "
+             f"fitting rows ({fit.name}) and {vinfo.get('holdout_rows')} validation rows "
+             f"({valid.name})")
+    demo.record("split", train=str(train), holdout=str(hold), fit=str(fit), valid=str(valid),
+                train_rows=info.get("train_rows"), holdout_rows=info.get("holdout_rows"),
+                fit_rows=vinfo.get("train_rows"), valid_rows=vinfo.get("holdout_rows"))
 
 
 class _Skip(Exception):
@@ -391,18 +392,24 @@ def _need(demo: _Demo, attr: str, step: str) -> Any:
 def _step_train(demo: _Demo) -> None:
     from .train import train
 
-    train_store = _need(demo, "train_store", "split")
+    fit = _need(demo, "fit_store", "split")
     run = demo.out / "run"
-    settings = TRAIN_SETTINGS[demo.size]
-    result = train(train_store, out=run, seed=demo.seed, progress=not demo.quiet, **settings)
+    result = train(fit, valid=demo.valid_store, out=run, seed=demo.seed,
+                   progress=not demo.quiet, **TRAIN_SETTINGS[demo.size])
     demo.run_dir = run
     demo.model_dir = run / "model"
-    info = {k: getattr(result, k, None) for k in ("lam", "objective", "gap", "rank", "passes",
-                                                    "status")}
-    info = {k: (float(v) if isinstance(v, (np.floating, float)) else v) for k, v in info.items()}
-    demo.say("  " + ", ".join(f"{k} {v:.4g}" if isinstance(v, float) else f"{k} {v}"
-                              for k, v in info.items() if v is not None) + f" -> {run}")
-    demo.record("train", run=str(run), model=str(run / "model"), **info)
+    path = [(float(p.lam), p.rank, p.passes, float(p.score)) for p in result.path]
+    for lam, rank, passes, score in path:
+        demo.say(f"    lam {lam:9.4g}  rank {rank:3d}  passes {passes:3d}  "
+                 f"validation accuracy {score:.3f}")
+    demo.say(f"  best lam {result.lam:.4g} (rank {result.rank}, {result.passes} passes in "
+             f"{result.seconds:.1f} s, status {result.status}) -> {run}")
+    demo.record("train", run=str(run), model=str(run / "model"), lam=float(result.lam),
+                lam_max=float(result.lam_max), rank=int(result.rank),
+                passes=int(result.passes), status=str(result.status),
+                objective=float(result.objective), gap_estimate=float(result.gap),
+                path=[{"lam": a, "rank": r, "passes": p, "validation_accuracy": v}
+                      for a, r, p, v in path])
 
 
 def _step_evaluate(demo: _Demo) -> None:
@@ -443,10 +450,10 @@ def _step_report(demo: _Demo) -> None:
 
 #: A short regularization path with validation and checkpoints, per size.
 TRAIN_SETTINGS: dict[str, dict[str, Any]] = {
-    "small": {"loss": "softmax", "path": 4, "lam_ratio": 0.02, "validation": 0.15,
-              "max_passes": 25, "tol": 1e-3, "checkpoint_passes": 5},
-    "medium": {"loss": "softmax", "path": 6, "lam_ratio": 0.01, "validation": 0.1,
-               "max_passes": 40, "tol": 1e-3, "checkpoint_passes": 5},
+    "small": {"loss": "softmax", "path": 3, "path_min_frac": 0.05, "max_passes": 6,
+              "tol": 2e-2, "max_seconds": 60.0},
+    "medium": {"loss": "softmax", "path": 5, "path_min_frac": 0.02, "max_passes": 20,
+               "tol": 3e-3, "max_seconds": 900.0},
 }
 
 STEPS: tuple[tuple[str, str, Callable[[_Demo], None]], ...] = (
@@ -467,7 +474,8 @@ def _next_steps(demo: _Demo) -> str:
         f"done in {time.perf_counter() - demo.t0:.1f} s; everything is under {o}/:",
         f"  data/             the invented source files ({o / 'data' / 'catalogue.mtx'}, "
         "sections.txt)",
-        "  catalogue.zarr    the ingested store; train.zarr / holdout.zarr its split",
+        "  catalogue.zarr    the ingested store; train.zarr / holdout.zarr its split,",
+        "                    train.zarr split again into fit.zarr / valid.zarr for the path",
         "  run/              the training run: history.jsonl, checkpoints/, model/",
         "  run/report/       report.html with the plots",
         "  holdout_metrics.json, holdout_predictions.csv",

@@ -221,12 +221,16 @@ def _plot_convergence(passes: Sequence[Mapping[str, Any]], out: Path) -> Path | 
     fig, (a, b, c, d) = _figure(4)
     _plot_line(a, xp, obj, color="C0")
     a.set(xlabel="pass", ylabel="objective F")
-    _plot_line(b, xp, gap, log=True, color="C3")
-    b.set(xlabel="pass", ylabel="gap estimate (at power-iteration tolerance)")
+    rel = _column(passes, "rel_gap")
+    for ax, x in ((b, xp), (d, xs)):
+        _plot_line(ax, x, gap, log=True, color="C3", label="gap estimate")
+        if np.isfinite(rel).any():
+            _plot_line(ax, x, rel, log=True, color="C1", ls="--", label="relative gap")
+            ax.legend(fontsize="small")
+    b.set(xlabel="pass", ylabel="gap (at power-iteration tolerance)")
     _plot_line(c, xs, obj, color="C0")
     c.set(xlabel="seconds", ylabel="objective F")
-    _plot_line(d, xs, gap, log=True, color="C3")
-    d.set(xlabel="seconds", ylabel="gap estimate")
+    d.set(xlabel="seconds", ylabel="gap (at power-iteration tolerance)")
     lam = _column(passes, "lam")
     change = np.flatnonzero(np.diff(lam) != 0) if np.isfinite(lam).sum() > 1 else []
     for i in change:  # mark where a path moved to the next lam

@@ -307,3 +307,42 @@ def test_report_tolerates_missing_keys(tmp_path, ranktide):
     assert (run / "report" / "convergence.png").read_bytes()[:8] == PNG_MAGIC
     assert not (run / "report" / "rank.png").exists()
 
+
+
+def test_demo_small_end_to_end(tmp_path):
+    out = tmp_path / "demo"
+    res = subprocess_ranktide("demo", "--size", "small", "--out", out, "--json", timeout=600)
+    assert res.returncode == 0, res.stderr
+    made = json.loads(res.stdout)
+    assert made["complete"] and not made["skipped"], made["skipped"]
+    assert json.loads((out / "demo.json").read_text()) == made
+    # the source files parse with an outside reader (scipy's Matrix Market reader)
+    import scipy.io
+
+    X = scipy.io.mmread(out / "data" / "catalogue.mtx")
+    labels = (out / "data" / "sections.txt").read_text().split()
+    assert X.shape[0] == len(labels) == made["steps"]["data"]["n_rows"]
+    # the holdout metrics the demo wrote are the API's on the same model and store
+    metrics = json.loads((out / "holdout_metrics.json").read_text())
+    api = evaluate(out / "run" / "model", out / "holdout.zarr")
+    for key in ("accuracy", "top_k_accuracy", "log_loss", "macro_f1"):
+        assert metrics[key] == pytest.approx(api[key], rel=1e-12)
+    # far above chance on 120 sections (common practice, no source: a learnable planted signal)
+    assert metrics["accuracy"] > 10.0 / made["steps"]["data"]["n_sections"]
+    header, rows = _read_csv(out / "holdout_predictions.csv")
+    assert header[:3] == ["row", "label_1", "prob_1"] and len(rows) == metrics["n_rows"]
+    html = (out / "run" / "report" / "report.html").read_text()
+    for png in ("convergence.png", "rank.png", "singular_values.png", "path.png"):
+        assert (out / "run" / "report" / png).read_bytes()[:8] == PNG_MAGIC
+        assert f'src="{png}"' in html
+    # an earlier demo (it has demo.json) is cleared for the next run, a foreign directory is not
+    from stream.demo import _prepare_out
+
+    _prepare_out(out, overwrite=False)
+    assert out.is_dir() and not any(out.iterdir())
+
+
+def test_demo_refuses_foreign_directory(tmp_path, ranktide):
+    (tmp_path / "notes.txt").write_text("mine\n")
+    _one_error_line(ranktide("demo", "--out", tmp_path), "not an earlier demo")
+    assert (tmp_path / "notes.txt").read_text() == "mine\n"
