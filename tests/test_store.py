@@ -223,6 +223,30 @@ class StoreContract:
         ):
             s.verify()
 
+    @pytest.mark.parametrize("codec", ["zstd", "lz4", "none"])
+    def test_threaded_decoding_path(self, tmp_path, codec):
+        # force the thread-pool decoding path (normally for reads >= 1 MiB)
+        import stream._store_hdf5 as h5mod
+        import stream._store_zarr as zmod
+
+        rng = np.random.default_rng(13)
+        X = random_csr(rng, 120, 40, 0.3)
+        y = rng.integers(0, 4, 120)
+        path = self.path(tmp_path)
+        with small_chunks(32):
+            write_store(path, X, y, backend=self.backend, codec=codec).close()
+        with (
+            mock.patch.object(zmod, "_POOL_MIN_BYTES", 0),
+            mock.patch.object(h5mod, "_POOL_MIN_BYTES", 0),
+        ):
+            with open_store(path) as s:
+                blocks = list(s.blocks(block_bytes=900))
+                assert_same_csr(stack_blocks(blocks, 40), X)  # scipy reference
+                assert s._readers["data"].verified.all()  # checked on the decoding threads
+            self.flip_byte(path, "indices", 3)
+            with open_store(path) as s, pytest.raises(StoreError, match=r"'indices' segment 3\b"):
+                s.read_block(0, 120)
+
     def test_corruption_unchecked_when_verify_is_off(self, tmp_path):
         rng = np.random.default_rng(7)
         X = random_csr(rng, 40, 30, 0.2)
