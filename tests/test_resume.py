@@ -1,0 +1,366 @@
+"""Exact resume after kills, signals, damaged checkpoints and write errors.
+
+Data: the first rows of scikit-learn's ``load_digits`` (shipped with the
+package), as a softmax problem. The reference is an uninterrupted run with the
+same settings and seed; every interrupted-and-resumed run must end with the
+same model (objective to 1e-10 relative, same rank and singular values, same
+total passes). Exit statuses follow the POSIX shell convention 128 + signum
+(SIGINT 2 -> 130, SIGTERM 15 -> 143); usage/input errors exit 2 (DESIGN §9).
+
+Faults are injected in subprocesses by a small driver that wraps the real
+command line: it pauses (touches a file, then sleeps) inside the n-th pass,
+at the start of the n-th refinement, or fails the n-th checkpoint write with
+ENOSPC; pauses inside a checkpoint write use the writer's own test hook
+(``RANKTIDE_TEST_PAUSE_IN_CHECKPOINT``). The test then sends SIGKILL there.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+
+from stream.cli import main
+from stream.errors import ModelError
+
+REPO = Path(__file__).resolve().parents[1]
+N_ROWS = 200
+SETTINGS = [
+    "--loss", "softmax", "--lam-frac", "0.05", "--tol", "1e-6", "--seed", "3",
+    "--block-rows", "50", "--checkpoint-passes", "1", "--quiet",
+]  # fmt: skip
+
+DRIVER = r"""
+import errno, functools, os, sys, time
+from pathlib import Path
+
+kind = os.environ.get("RT_KIND", "")
+at = int(os.environ.get("RT_AT", "0"))
+
+
+def pause(name):
+    Path(os.environ["RT_PAUSE_FILE"]).write_text(name)
+    time.sleep(60)
+
+
+if sys.argv[1] == "train":  # the matrix-free path (power blocks, random refills)
+    import stream.train as T
+    T.train = functools.partial(T.train, dense_gradient=False)
+if kind == "refine":
+    import stream.solver as S
+    real_refine, calls = S.refine, [0]
+
+    def refine(*a, **k):
+        calls[0] += 1
+        if calls[0] == at:
+            pause("refine")
+        return real_refine(*a, **k)
+
+    S.refine = refine
+if kind == "pass":
+    import stream.gradient_pass as G
+    real_run_pass, calls = G.run_pass, [0]
+
+    def run_pass(source, block_fn, combine, **kw):
+        calls[0] += 1
+        if calls[0] != at:
+            return real_run_pass(source, block_fn, combine, **kw)
+        seen = [0]
+
+        def fn(block, state):
+            seen[0] += 1
+            if seen[0] == 2:
+                pause("pass")
+            return block_fn(block, state)
+
+        return real_run_pass(source, fn, combine, **kw)
+
+    G.run_pass = run_pass
+if kind == "enospc":
+    import stream.checkpoint as C
+    real_save, calls = C.save_npz, [0]
+
+    def save_npz(path, arrays):
+        calls[0] += 1
+        if calls[0] == at:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real_save(path, arrays)
+
+    C.save_npz = save_npz
+from stream.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+# ---------------------------------------------------------------- fixtures
+@pytest.fixture(scope="module")
+def work(tmp_path_factory):
+    from sklearn.datasets import load_digits
+
+    from stream.store import write_store
+    from stream.train import train
+
+    root = tmp_path_factory.mktemp("resume")
+    X, y = load_digits(return_X_y=True)  # scikit-learn's shipped digits data
+    X = sp.csr_matrix((X[:N_ROWS] / 16.0).astype(np.float32))
+    y = y[:N_ROWS].astype(np.int32)
+    write_store(root / "s.zarr", X, y, kind="classes").close()
+    write_store(root / "other.zarr", X[::-1].tocsr(), y[::-1].copy(), kind="classes").close()
+    (root / "driver.py").write_text(DRIVER)
+    ref = train(
+        str(root / "s.zarr"), loss="softmax", lam_frac=0.05, tol=1e-6, seed=3, block_rows=50,
+        dense_gradient=False, out=root / "ref", checkpoint_passes=1,
+    )  # fmt: skip
+    assert ref.status == "converged"
+    return root, ref
+
+
+def _driver(work_root: Path, args: list[str], **env: str) -> subprocess.Popen:
+    full_env = dict(os.environ, **env)
+    return subprocess.Popen(
+        [sys.executable, str(work_root / "driver.py"), *args],
+        cwd=REPO, env=full_env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+    )  # fmt: skip
+
+
+def _train_args(root: Path, run: Path, *extra: str) -> list[str]:
+    return ["train", str(root / "s.zarr"), *SETTINGS, "--out", str(run), *extra]
+
+
+def _history_lines(run: Path) -> int:
+    try:
+        return sum(1 for line in (run / "history.jsonl").read_text().splitlines() if line)
+    except FileNotFoundError:
+        return 0
+
+
+def _checkpointed_history(run: Path) -> int:
+    try:
+        latest = (run / "checkpoints" / "LATEST").read_text().strip()
+        meta = json.loads((run / "checkpoints" / latest / "meta.json").read_text())
+        return int(meta["meta"]["history_len"])
+    except (FileNotFoundError, KeyError, ValueError):
+        return 0
+
+
+def _wait(proc: subprocess.Popen, ready, what: str, timeout: float = 120.0) -> bool:
+    """Wait until ``ready()``; False if the process ended first."""
+    deadline = time.monotonic() + timeout
+    while not ready():
+        if proc.poll() is not None:
+            return False
+        if time.monotonic() > deadline:
+            proc.kill()
+            proc.wait()
+            pytest.fail(f"timed out waiting for {what}")
+        time.sleep(0.02)
+    return True
+
+
+def _final_model(run: Path):
+    from stream.model import load_model
+
+    return load_model(run / "model")
+
+
+def _assert_same_model(run: Path, ref) -> None:
+    model = _final_model(run)
+    history = [h for h in map(json.loads, (run / "history.jsonl").read_text().splitlines())]
+    passes = [h["pass"] for h in history if h.get("kind") == "pass"]
+    # every pass logged once, in order, as in the uninterrupted run
+    assert passes == [h["pass"] for h in ref.history]
+    assert model.s.shape == ref.model.s.shape  # same rank
+    np.testing.assert_allclose(model.s, ref.model.s, rtol=1e-10, atol=0)
+    np.testing.assert_allclose(model.b, ref.model.b, rtol=1e-10, atol=1e-12)
+    W = model.U @ (model.s[:, None] * model.V.T)
+    W_ref = ref.model.U @ (ref.model.s[:, None] * ref.model.V.T)
+    np.testing.assert_allclose(W, W_ref, rtol=0, atol=1e-10 * np.abs(W_ref).max())
+    obj = float(model.meta["objective"])
+    assert abs(obj - ref.objective) <= 1e-10 * abs(ref.objective)
+    assert int(model.meta["passes"]) == ref.passes
+
+
+# ---------------------------------------------------------------- kills
+def test_sigkill_at_seeded_moments_then_resume_is_exact(work):
+    root, ref = work
+    run = root / "killed"
+    rng = np.random.default_rng(20261201)
+    kinds = ["pass", "refine", "ckpt-write", "ckpt-publish", "timer"]
+    plan = [kinds[i] for i in rng.permutation(np.arange(12) % len(kinds))]
+    kills = []
+    for kind in plan:
+        # a run killed before its first checkpoint cannot be resumed: it is started again
+        started = any((run / "checkpoints").glob("ckpt-*"))
+        args = ["resume", str(run), "--quiet"] if started else _train_args(root, run, "--overwrite")
+        at = int(rng.integers(1, 3))
+        pause = root / f"paused-{len(kills)}"
+        env = {"RT_PAUSE_FILE": str(pause)}
+        if kind in ("pass", "refine"):
+            env.update(RT_KIND=kind, RT_AT=str(at))
+        elif kind.startswith("ckpt"):
+            env.update(
+                RANKTIDE_TEST_PAUSE_IN_CHECKPOINT=str(pause),
+                RANKTIDE_TEST_PAUSE_SAVE=str(at),
+                RANKTIDE_TEST_PAUSE_STAGE=kind.split("-")[1],
+            )
+        base = _checkpointed_history(run)
+        proc = _driver(root, args, **env)
+        if kind == "timer":
+            want = base + at
+            ok = _wait(proc, lambda want=want: _history_lines(run) >= want, "history")
+            time.sleep(float(rng.uniform(0.0, 0.3)))
+        else:
+            ok = _wait(proc, pause.exists, f"pause in {kind}")
+        if not ok or proc.poll() is not None:
+            out, err = proc.communicate()
+            assert proc.returncode == 0, err
+            break  # the run finished before this moment came
+        proc.send_signal(signal.SIGKILL)
+        proc.communicate()
+        assert proc.returncode == -signal.SIGKILL
+        kills.append(kind)
+    assert len(kills) >= 10, kills
+    assert {"pass", "refine", "ckpt-write", "ckpt-publish"} <= set(kills)
+    proc = _driver(root, ["resume", str(run), "--quiet"])
+    out, err = proc.communicate(timeout=300)
+    assert proc.returncode == 0, err
+    _assert_same_model(run, ref)
+
+
+# ---------------------------------------------------------------- signals
+def test_sigterm_and_sigint_checkpoint_and_say_how_to_resume(work):
+    root, ref = work
+    run = root / "signalled"
+    proc = _driver(root, _train_args(root, run))
+    assert _wait(proc, lambda: _history_lines(run) >= 3, "3 passes")
+    proc.send_signal(signal.SIGTERM)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 143, err
+    assert f"ranktide: interrupted; resume with: ranktide resume {run}" in err
+    assert not (run / "model").exists()  # an interrupted run writes no final model
+    n = _checkpointed_history(run)
+    assert n == _history_lines(run)  # the stop checkpoint covers every logged pass
+
+    proc = _driver(root, ["resume", str(run), "--quiet"])
+    assert _wait(proc, lambda: _history_lines(run) >= n + 2, "2 more passes")
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert "resume with: ranktide resume" in err
+
+    assert main(["resume", str(run), "--quiet"]) == 0
+    _assert_same_model(run, ref)
+
+
+# ---------------------------------------------------------------- damage
+@pytest.fixture(scope="module")
+def partial_run(work):
+    """A run stopped by its pass budget after 12 passes (checkpoint every pass)."""
+    root, _ref = work
+    run = root / "partial"
+    proc = _driver(root, _train_args(root, run, "--max-passes", "12"))
+    out, err = proc.communicate(timeout=300)
+    assert proc.returncode == 0, err
+    assert "max_passes" in out
+    return run
+
+
+def _copy(run: Path, name: str) -> Path:
+    dst = run.parent / name
+    shutil.copytree(run, dst)
+    return dst
+
+
+def _latest(run: Path) -> Path:
+    return run / "checkpoints" / (run / "checkpoints" / "LATEST").read_text().strip()
+
+
+def _flip(path: Path) -> None:
+    raw = bytearray(path.read_bytes())
+    raw[len(raw) // 2] ^= 0xFF
+    path.write_bytes(bytes(raw))
+
+
+def test_flipped_byte_falls_back_and_budget_can_grow(work, partial_run, capsys):
+    root, ref = work
+    run = _copy(partial_run, "flipped")
+    _flip(_latest(run) / "state.npz")
+    assert main(["resume", str(run), "--max-passes", "100", "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert "warning: checkpoint ckpt-" in err and "falling back to ckpt-" in err
+    _assert_same_model(run, ref)
+
+
+def test_truncated_latest_falls_back(work, partial_run, capsys):
+    root, ref = work
+    run = _copy(partial_run, "truncated")
+    state = _latest(run) / "state.npz"
+    state.write_bytes(state.read_bytes()[:100])
+    assert main(["resume", str(run), "--max-passes", "100", "--quiet"]) == 0
+    assert "falling back" in capsys.readouterr().err
+    _assert_same_model(run, ref)
+    # ... and a model whose .npz holds a pickled object array is refused
+    np.savez(run / "model" / "factors.npz", U=np.array([{"x": 1}], dtype=object))
+    with pytest.raises(ModelError, match="object"):
+        _final_model(run)
+
+
+def test_no_valid_checkpoint_is_exit_2(partial_run, capsys):
+    run = _copy(partial_run, "ruined")
+    for ckpt in (run / "checkpoints").glob("ckpt-*"):
+        _flip(ckpt / "state.npz")
+    assert main(["resume", str(run), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err[-1].startswith("ranktide resume: error: ") and "no valid checkpoint" in err[-1]
+
+
+def test_refuses_other_store_changed_setting_newer_format(work, partial_run, capsys):
+    root, _ref = work
+    run = _copy(partial_run, "refused")
+    before = sorted(p.name for p in (run / "checkpoints").iterdir())
+    assert main(["resume", str(run), "--store", str(root / "other.zarr")]) == 2
+    assert "fingerprint" in capsys.readouterr().err
+
+    cfg_path = run / "config.json"
+    original = cfg_path.read_text()
+    cfg = json.loads(original)
+    cfg["settings"]["lam_frac"] = 0.5
+    cfg["settings"]["seed"] = 4
+    cfg_path.write_text(json.dumps(cfg))
+    assert main(["resume", str(run)]) == 2
+    line = capsys.readouterr().err.strip()
+    assert "lam_frac (saved 0.05, now 0.5)" in line and "seed (saved 3, now 4)" in line
+    assert "\n" not in line
+
+    cfg = json.loads(original)
+    cfg["format_version"] = 99
+    cfg_path.write_text(json.dumps(cfg))
+    assert main(["resume", str(run)]) == 2
+    assert "newer than this ranktide supports" in capsys.readouterr().err
+    # nothing was touched by the refused attempts
+    assert sorted(p.name for p in (run / "checkpoints").iterdir()) == before
+
+
+# ---------------------------------------------------------------- write errors
+def test_disk_full_during_checkpoint_stops_cleanly(work):
+    root, ref = work
+    run = root / "diskfull"
+    proc = _driver(root, _train_args(root, run), RT_KIND="enospc", RT_AT="4")
+    out, err = proc.communicate(timeout=300)
+    assert proc.returncode == 2, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "No space left on device" in lines[0]
+    assert "ranktide resume" in lines[0]
+    assert _latest(run).name == "ckpt-00000003"  # the three written before stay valid
+    assert not any(p.name.startswith(".ckpt-") for p in (run / "checkpoints").iterdir())
+    assert main(["resume", str(run), "--quiet"]) == 0
+    _assert_same_model(run, ref)
