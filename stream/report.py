@@ -151,17 +151,30 @@ def _singular_values(run_dir: Path) -> np.ndarray | None:
 
 
 def _profile(run_dir: Path) -> dict[str, float] | None:
-    """Seconds per phase from the run's profile (``profile.json``), if any."""
+    """Seconds per phase from the run's profile, if any.
+
+    Looks for ``RUN/profile.json`` or ``RUN/profile/profile.json`` (what
+    ``ranktide profile ... --out RUN/profile`` writes).
+    """
     for name in ("profile.json", "profile/profile.json"):
         doc = _read_json(run_dir / name)
         if isinstance(doc, Mapping):
             break
     else:
         return None
-    phases = doc.get("phases", doc.get("seconds", doc.get("totals")))
+    out: dict[str, float] = {}
+    totals = doc.get("totals")
+    if isinstance(doc.get("seconds_by_phase"), Mapping):
+        # written by stream.profile: kernel phases, plus reading and decoding from the totals
+        phases = dict(doc["seconds_by_phase"])
+        if isinstance(totals, Mapping):
+            for key in ("read_s", "decode_s", "wait_s"):
+                if key in totals:
+                    phases[key.removesuffix("_s")] = totals[key]
+    else:
+        phases = doc.get("phases", doc.get("seconds", totals))
     if not isinstance(phases, Mapping):
         phases = doc
-    out: dict[str, float] = {}
     for key, value in phases.items():
         if isinstance(value, Mapping):
             value = value.get("seconds", value.get("total_s", value.get("total")))
@@ -232,7 +245,8 @@ def _plot_convergence(passes: Sequence[Mapping[str, Any]], out: Path) -> Path | 
     c.set(xlabel="seconds", ylabel="objective F")
     d.set(xlabel="seconds", ylabel="gap (at power-iteration tolerance)")
     lam = _column(passes, "lam")
-    change = np.flatnonzero(np.diff(lam) != 0) if np.isfinite(lam).sum() > 1 else []
+    both = np.isfinite(lam[:-1]) & np.isfinite(lam[1:])
+    change = np.flatnonzero(both & (lam[1:] != lam[:-1]))
     for i in change:  # mark where a path moved to the next lam
         for ax, x in ((a, xp), (b, xp), (c, xs), (d, xs)):
             if np.isfinite(x[i + 1]):

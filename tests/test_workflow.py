@@ -281,14 +281,22 @@ def _fake_run(run: Path, model: Model) -> None:
 
 
 def test_report_writes_pngs_and_html(tmp_path):
+    from stream.profile import profile_store, write_profile
+
     run = tmp_path / "run"
-    _fake_run(run, _model("softmax"))
+    model = _model("softmax")
+    _fake_run(run, model)
+    X = _X()
+    write_store(tmp_path / "s.zarr", X, _targets("softmax", model, X)).close()
+    # a profiled run: the profiler's own files under RUN/profile
+    write_profile(profile_store(tmp_path / "s.zarr", passes=1, rank=2), run / "profile")
     res = subprocess_ranktide("report", run, "--out", tmp_path / "rep", "--json")
     assert res.returncode == 0, res.stderr
     info = json.loads(res.stdout)
     figs = [Path(f) for f in info["figures"]]
     names = {f.name for f in figs}
-    assert {"convergence.png", "rank.png", "singular_values.png", "path.png"} <= names
+    assert {"convergence.png", "rank.png", "singular_values.png", "path.png",
+            "profile.png"} <= names
     html = Path(info["report"]).read_text()
     for f in figs:
         assert f.read_bytes()[:8] == PNG_MAGIC  # RFC 2083 signature
