@@ -16,6 +16,8 @@ W. D. Clinger, "How to read floating point numbers accurately", PLDI 1990.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numba import njit
 
@@ -214,6 +216,66 @@ def _fast_value(mant, exp10, neg):
     return True, -v if neg else v
 
 
+_SPLIT = 134217729.0  # 2**27 + 1, Veltkamp's splitter for doubles
+_MARGIN = 2.0**-30
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _two_prod(x, y):
+    """x * y = p + e exactly (Dekker 1971), without a fused multiply-add."""
+    p = x * y
+    c = _SPLIT * x
+    xh = c - (c - x)
+    xl = x - xh
+    c = _SPLIT * y
+    yh = c - (c - y)
+    yl = y - yh
+    e = ((xh * yh - p) + xh * yl + xl * yh) + xl * yl
+    return p, e
+
+
+@njit(nogil=True, cache=True)
+def _certified_value(mant, exp10, neg):
+    """Correctly rounded ``mant * 10**exp10`` for 2**53 < mant < 2**63, |exp10| <= 22.
+
+    The candidate q = fl(fl(mant) * 10**e) (or the quotient) is off by at
+    most about one unit in the last place. The exact remainder X - q is
+    recovered with error-free products (Dekker 1971) and decides between q
+    and its neighbour; when it lies too close to a half-way point to be sure
+    (or q is a power of two), returns ok = False and the caller converts the
+    token another way. Returns (ok, value).
+    """
+    if exp10 > 22 or exp10 < -22:
+        return False, 0.0
+    a = float(mant)
+    b = float(mant - np.int64(a))  # exact: |b| <= 2**(63-53)
+    big = _POW10[exp10] if exp10 >= 0 else _POW10[-exp10]
+    if exp10 >= 0:
+        q = a * big
+        h, lo = _two_prod(a, big)  # h == q
+        hb, lb = _two_prod(b, big)
+        d = (lo + hb) + lb  # X - q, up to rounding far below half an ulp
+        scale = 1.0
+    else:
+        q = a / big
+        h, lo = _two_prod(q, big)
+        d = ((a - h) - lo) + b  # (X - q) * big; a - h is exact (Sterbenz)
+        scale = big
+    f, ex = math.frexp(q)
+    if f == 0.5:
+        return False, 0.0  # the gap below q is half the gap above: leave it
+    ulp = math.ldexp(1.0, ex - 53)
+    half = 0.5 * ulp * scale
+    ad = abs(d)
+    if ad < half * (1.0 - _MARGIN):
+        v = q
+    elif half * (1.0 + _MARGIN) < ad < 2.0 * half * (1.0 - _MARGIN):
+        v = q + ulp if d > 0 else q - ulp
+    else:
+        return False, 0.0
+    return True, -v if neg else v
+
+
 @njit(nogil=True, cache=True, inline="always")
 def _scan_index(buf, p, stop, comment):
     """Parse a non-negative integer index token at ``p``.
@@ -365,6 +427,8 @@ def parse_numeric_lines(
                 v = 0.0
                 if (fflags & 1) == 0:
                     ok, v = _fast_value(fmant, fexp, (fflags & 2) != 0)
+                    if not ok and fmant > _TWO53:
+                        ok, v = _certified_value(fmant, fexp, (fflags & 2) != 0)
                 if ok:
                     vals[ne] = v
                 else:

@@ -293,3 +293,21 @@ def test_cli_json_summary(tmp_path, capsys):
     assert res["nnz"] == A.nnz and res["n_rows"] == 20 and Path(res["path"]).exists()
     with open_store(tmp_path / "a.zarr") as st:
         assert st.codec == "lz4"
+
+
+def test_parser_rounds_near_half_way_values(tmp_path):
+    # decimal strings within 1e-18 (relative) of the midpoint of two adjacent doubles,
+    # the hardest inputs for rounding; reference: Python's float() on the same strings
+    from decimal import Decimal, getcontext
+
+    getcontext().prec = 60
+    rng = np.random.default_rng(12)
+    v = np.abs(rng.standard_normal(20000)) * 10.0 ** rng.integers(-6, 6, 20000)
+    nxt = np.nextafter(v, np.inf)
+    digits = rng.integers(16, 19, v.size).tolist()
+    toks = [format((Decimal(a) + Decimal(b)) / 2, f".{k - 1}e")
+            for a, b, k in zip(v.tolist(), nxt.tolist(), digits, strict=True)]
+    src = tmp_path / "h.txt"
+    src.write_text("".join(f"0 0 {t}\n" for t in toks))
+    got = np.concatenate([ch.vals.copy() for ch in iter_entries(read_header(src))])
+    assert np.array_equal(got, np.array([float(t) for t in toks]))
