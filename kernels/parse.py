@@ -1,17 +1,29 @@
 """Byte-level parsers for numeric text lines and label/tag tokens.
 
 The kernels scan a ``uint8`` buffer that holds whole lines, validate every
-token and write the results into caller-owned arrays. Values with at most 18
-significant digits whose decimal exponent keeps the product exact are
-converted on the fast path of Clinger (1990): ``m * 10**e`` or ``m / 10**-e``
-with ``m <= 2**53`` and ``|e| <= 22`` involves exactly one rounding, so the
-result is the correctly rounded double. Every other value token is reported
-back (entry, start, length) for the caller to convert with a correctly
-rounding library routine (:func:`gather_tokens` packs them for numpy).
+token and write the results into caller-owned arrays. Value tokens are
+converted to the correctly rounded double in three tiers:
+
+1. mantissa <= 2**53 and |decimal exponent| <= 22 (after moving powers of
+   ten into the mantissa): Clinger's fast path, ``m * 10**e`` or
+   ``m / 10**-e`` with exact operands and a single rounding;
+2. up to 18 significant digits, |exponent| <= 22: the candidate is checked
+   with error-free products (Dekker) and moved to its neighbour when the
+   exact remainder says so; inputs too close to a half-way point are left
+   to tier 3;
+3. everything else is reported back (entry, start, length) for the caller to
+   convert with numpy's correctly rounding string conversion
+   (:func:`gather_tokens` packs the tokens for it).
+
+The file also holds the kernels that turn parsed entries into CSR rows
+(:func:`entries_to_csr`, :func:`unsorted_entries_to_csr`) and group them by
+row range for the ingest's scratch buckets (:func:`bucket_scatter`).
 
 References
 ----------
 W. D. Clinger, "How to read floating point numbers accurately", PLDI 1990.
+T. J. Dekker, "A floating-point technique for extending the available
+precision", Numerische Mathematik 18, 1971.
 """
 
 from __future__ import annotations
@@ -44,6 +56,9 @@ __all__ = [
     "entry_line",
     "gather_tokens",
     "split_tokens",
+    "entries_to_csr",
+    "unsorted_entries_to_csr",
+    "bucket_scatter",
 ]
 
 ERR_OK = 0
