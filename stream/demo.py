@@ -404,7 +404,8 @@ def _step_train(demo: _Demo) -> None:
                  f"validation accuracy {score:.3f}")
     demo.say(f"  best lam {result.lam:.4g} (rank {result.rank}, {result.passes} passes in "
              f"{result.seconds:.1f} s, status {result.status}) -> {run}")
-    demo.record("train", run=str(run), model=str(run / "model"), lam=float(result.lam),
+    demo.record("train", run=str(run), model=str(run / "model"),
+                checkpoints=str(run / "checkpoints"), lam=float(result.lam),
                 lam_max=float(result.lam_max), rank=int(result.rank),
                 passes=int(result.passes), status=str(result.status),
                 objective=float(result.objective), gap_estimate=float(result.gap),
@@ -451,9 +452,9 @@ def _step_report(demo: _Demo) -> None:
 #: A short regularization path with validation and checkpoints, per size.
 TRAIN_SETTINGS: dict[str, dict[str, Any]] = {
     "small": {"loss": "softmax", "path": 3, "path_min_frac": 0.05, "max_passes": 6,
-              "tol": 2e-2, "max_seconds": 60.0},
+              "tol": 2e-2, "max_seconds": 60.0, "checkpoint_passes": 2},
     "medium": {"loss": "softmax", "path": 5, "path_min_frac": 0.02, "max_passes": 20,
-               "tol": 3e-3, "max_seconds": 900.0},
+               "tol": 3e-3, "max_seconds": 900.0, "checkpoint_passes": 5},
 }
 
 STEPS: tuple[tuple[str, str, Callable[[_Demo], None]], ...] = (
