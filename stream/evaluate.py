@@ -71,6 +71,7 @@ class DataSource:
         n_cols: int,
         target_kind: str | None,
         n_outputs: int | None,
+        output_names: list[str] | None = None,
         store: Any = None,
         X: sp.csr_matrix | None = None,
         targets: Any = None,
@@ -81,6 +82,7 @@ class DataSource:
         self.n_cols = int(n_cols)
         self.target_kind = target_kind
         self.n_outputs = n_outputs
+        self.output_names = output_names
         self._store = store
         self._X = X
         self._targets = targets
@@ -176,6 +178,7 @@ def _from_store(store: Any, name: str) -> DataSource:
     return DataSource(
         name=name, n_rows=n_rows, n_cols=n_cols, target_kind=store.target_kind,
         n_outputs=store.n_outputs, store=store,
+        output_names=None if store.output_names is None else [str(x) for x in store.output_names],
     )
 
 
@@ -252,7 +255,21 @@ def check_compatible(model: Any, src: DataSource, *, need_targets: bool) -> tupl
             f"{src.name}: targets cover {n_out} outputs but the model has {k}; use a store with "
             "the model's classes, tags or outputs"
         )
+    _check_names(model_names(model), src)
     return d, k
+
+
+def _check_names(names: list[str] | None, src: DataSource) -> None:
+    """Target ids must mean the same outputs in the store and in the model."""
+    theirs = src.output_names
+    if names is None or theirs is None:
+        return
+    for j, (a, b) in enumerate(zip(theirs, names, strict=False)):
+        if a != b:
+            raise ModelError(
+                f"{src.name}: output {j} is {a!r} in the store but {b!r} in the model; ingest "
+                "the evaluation data with the training data's label set (or split one store)"
+            )
 
 
 def _check_classes(y: np.ndarray, k: int, name: str, start: int) -> None:

@@ -233,6 +233,7 @@ def test_bad_arguments_exit_2_with_one_line(tmp_path, ranktide):
     write_store(tmp_path / "s.zarr", X, y).close()
     write_store(tmp_path / "nolabels.zarr", X).close()
     write_store(tmp_path / "narrow.zarr", X[:, :10], y).close()
+    write_store(tmp_path / "renamed.zarr", X, y, names=model.names[::-1]).close()
     save_model(tmp_path / "sq", _model("squared"))
     m, s = tmp_path / "m", tmp_path / "s.zarr"
     _one_error_line(subprocess_ranktide("evaluate", m, tmp_path / "missing.zarr"), "missing.zarr")
@@ -241,6 +242,8 @@ def test_bad_arguments_exit_2_with_one_line(tmp_path, ranktide):
     _one_error_line(ranktide("evaluate", m, tmp_path / "nolabels.zarr"), "has no targets")
     _one_error_line(ranktide("evaluate", m, tmp_path / "narrow.zarr"), "10 feature columns")
     _one_error_line(ranktide("evaluate", tmp_path / "sq", s), "targets are classes")
+    _one_error_line(ranktide("evaluate", m, tmp_path / "renamed.zarr"),
+                    "output 0 is 'bin 6' in the store but 'bin 0' in the model")
     _one_error_line(ranktide("predict", m, s, "--out", tmp_path / "p.txt"), "unknown output format")
     _one_error_line(ranktide("predict", tmp_path / "sq", s, "--out", tmp_path / "p.csv",
                              "--proba"), "--proba")
