@@ -11,7 +11,8 @@ EXAMPLE = "ranktide demo --size small --out demo-out"
 
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--size", choices=("small", "medium"), default="small",
-                        help="small: ~3000 rows, about a minute; medium: ~40000 rows")
+                        help="small: 2000 rows, 60 sections (about a minute); "
+                             "medium: 40000 rows, 300 sections")
     parser.add_argument("--out", default="demo-out", metavar="DIR",
                         help="output directory (default demo-out; an earlier demo is replaced)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the invented data and fit")
