@@ -485,8 +485,10 @@ def _next_steps(demo: _Demo) -> str:
         f"  ranktide inspect {o / 'train.zarr'}",
         f"  ranktide evaluate {o / 'run' / 'model'} {o / 'holdout.zarr'} --top 10",
         f"  ranktide predict {o / 'run' / 'model'} {o / 'holdout.zarr'} --out preds.csv --proba",
-        f"  ranktide profile {o / 'train.zarr'} --model {o / 'run' / 'model'} --out profile",
-        f"  ranktide report {o / 'run'}   (open {o / 'run' / 'report' / 'report.html'})",
+        f"  ranktide profile {o / 'fit.zarr'} --model {o / 'run' / 'model'} "
+        f"--out {o / 'run' / 'profile'}",
+        f"  ranktide report {o / 'run'}   (adds the profile; open "
+        f"{o / 'run' / 'report' / 'report.html'})",
     ]
     if demo.made["skipped"]:
         lines += ["", "skipped steps: " + "; ".join(f"{k} ({v})" for k, v in
