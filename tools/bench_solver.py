@@ -99,6 +99,19 @@ def _rss() -> int:
     return int(psutil.Process().memory_info().rss)
 
 
+def _vm_hwm() -> int:
+    """Peak RSS of this process image in bytes (VmHWM; getrusage's ru_maxrss survives exec
+    and can report the parent's peak)."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 0
+
+
 def child_greedy(args) -> dict:
     from stream.train import train
 
@@ -108,8 +121,14 @@ def child_greedy(args) -> dict:
     if args.streaming:
         kw["dense_gradient"] = False
     t0 = time.perf_counter()
+
+    def show(rec):
+        print(f"  greedy pass {rec.get('pass')}: F={rec.get('objective')} "
+              f"rel_gap={rec.get('rel_gap')} rank={rec.get('rank')} "
+              f"t={rec.get('seconds', 0):.1f}s", file=sys.stderr, flush=True)
+
     res = train((X, y), loss="softmax", lam=args.lam, tol=args.tol, max_passes=args.max_passes,
-                seed=0, **kw)
+                max_seconds=args.greedy_cap, seed=0, on_pass=show, **kw)
     wall = time.perf_counter() - t0
     hist = []
     for i, rec in enumerate(res.history):
@@ -131,8 +150,14 @@ def child_reference(args) -> dict:
     X, y = load_problem(Path(args.data))
     base = _rss()
     t0 = time.perf_counter()
+
+    def show(rec):
+        if rec["iteration"] % 25 == 0:
+            print(f"  reference iteration {rec['iteration']}: passes={rec['passes']} "
+                  f"F={rec['objective']} t={rec['seconds']:.1f}s", file=sys.stderr, flush=True)
+
     res = reference_solve(X, y, loss="softmax", lam=args.lam, tol=1e-12,
-                          max_iter=args.max_iter, max_seconds=args.cap)
+                          max_iter=args.max_iter, max_seconds=args.cap, callback=show)
     wall = time.perf_counter() - t0
     hist = [{"passes": h["passes"], "objective": h["objective"], "seconds": h["seconds"]}
             for h in res.history]
@@ -176,7 +201,7 @@ def run_child(kind: str, data: Path, workdir: Path, extra: list[str]) -> dict:
     if proc.returncode != 0:
         raise RuntimeError(f"{kind} child failed with exit status {proc.returncode}")
     result = json.loads(out.read_text())
-    result["peak_rss"] = max(peak, int(result.get("ru_maxrss", 0)))
+    result["peak_rss"] = max(peak, int(result.get("vm_hwm", 0)))
     return result
 
 
@@ -209,21 +234,23 @@ def summarize(results: dict, f_star: float) -> tuple[list[dict], dict]:
             row[f"seconds_to_{eps:g}"] = None if hit is None else hit[1]
         rows.append(row)
     ratios = {}
-    g, r = rows[0], rows[-1]
-    for eps in THRESHOLDS:
-        for what in ("passes", "seconds"):
-            a, b = g[f"{what}_to_{eps:g}"], r[f"{what}_to_{eps:g}"]
-            if a is None:
-                ratios[f"{what}_ratio_{eps:g}"] = None
-            elif b is None:
-                # the reference did not get there: the ratio is at least its total / greedy's
-                ratios[f"{what}_ratio_{eps:g}"] = {
-                    "at_least": r[f"{what}_total"] / a if a else None}
-            else:
-                ratios[f"{what}_ratio_{eps:g}"] = b / a if a else None
-    ratios["peak_rss_ratio"] = r["peak_rss_mb"] / g["peak_rss_mb"]
-    ratios["peak_rss_above_data_ratio"] = (r["peak_rss_above_data_mb"]
-                                           / max(g["peak_rss_above_data_mb"], 1e-9))
+    r = rows[-1]  # the reference
+    for g in rows[:-1]:
+        tag = g["solver"]
+        for eps in THRESHOLDS:
+            for what in ("passes", "seconds"):
+                a, b = g[f"{what}_to_{eps:g}"], r[f"{what}_to_{eps:g}"]
+                key = f"{tag}: {what} ratio to {eps:g}"
+                if a is None:
+                    ratios[key] = None
+                elif b is None:
+                    # the reference did not get there: the ratio is at least its total / greedy's
+                    ratios[key] = f">= {r[f'{what}_total'] / a:.3g} (reference not reached)"
+                else:
+                    ratios[key] = b / a if a else None
+        ratios[f"{tag}: peak RSS ratio"] = r["peak_rss_mb"] / g["peak_rss_mb"]
+        ratios[f"{tag}: peak RSS above data ratio"] = (
+            r["peak_rss_above_data_mb"] / max(g["peak_rss_above_data_mb"], 1e-9))
     return rows, ratios
 
 
@@ -245,7 +272,7 @@ def print_table(rows: list[dict], ratios: dict, meta: dict) -> None:
               f"{r['peak_rss_above_data_mb']:>14.0f}")
     print("('-' = not reached within the pass budget / time cap)")
     for key, val in ratios.items():
-        print(f"  {key:<28} {val}")
+        print(f"  {key:<44} {val if not isinstance(val, float) else format(val, '.3g')}")
 
 
 # --------------------------------------------------------------------------- main
@@ -261,6 +288,10 @@ def parse(argv):
     ap.add_argument("--rank", type=int, default=10, help="rank of the planted weights")
     ap.add_argument("--lam-frac", type=float, default=0.1)
     ap.add_argument("--cap", type=float, default=1200.0, help="reference time cap, seconds")
+    ap.add_argument("--greedy-cap", type=float, default=None,
+                    help="greedy time budget, seconds (default none)")
+    ap.add_argument("--from-runs", action="store_true",
+                    help="summarize the runs saved under --out instead of running again")
     ap.add_argument("--max-iter", type=int, default=100_000)
     ap.add_argument("--tol", type=float, default=1e-7, help="greedy tolerance (long run)")
     ap.add_argument("--max-passes", type=int, default=300)
@@ -284,17 +315,8 @@ def parse(argv):
     return args
 
 
-def main(argv=None) -> int:
-    args = parse(argv)
-    if args.child:
-        import resource
-
-        res = CHILDREN[args.child](args)
-        res["ru_maxrss"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
-        Path(args.result).write_text(json.dumps(res))
-        return 0
-    args.out.mkdir(parents=True, exist_ok=True)
-    BLAS_THREADS[0] = args.blas_threads
+def _run_all(args) -> tuple[dict, float, float, list[int]]:
+    """Make the data, then run lam_max, the greedy solver(s) and the reference in subprocesses."""
     with tempfile.TemporaryDirectory(prefix="bench-solver-") as tmp:
         tmpd = Path(tmp)
         data = tmpd / "problem.npz"
@@ -302,34 +324,57 @@ def main(argv=None) -> int:
         X, y = make_problem(n=args.n, d=args.d, k=args.k, nnz_row=args.nnz_row, rank=args.rank,
                             seed=args.seed)
         save_problem(data, X, y)
+        shape = [int(X.shape[0]), int(X.shape[1]), int(args.k), int(X.nnz)]
         print(f"data: {X.shape[0]} x {X.shape[1]}, {X.nnz} nonzeros, {args.k} classes "
               f"({time.perf_counter() - t0:.1f} s)", flush=True)
+        del X, y
         runs = tmpd / "runs"
         runs.mkdir()
         lam_max = run_child("lam_max", data, runs, [])["lam_max"]
         lam = args.lam_frac * lam_max
         common = ["--lam", repr(lam)]
+        greedy = [*common, "--tol", repr(args.tol), "--max-passes", str(args.max_passes)]
+        if args.greedy_cap is not None:
+            greedy += ["--greedy-cap", repr(args.greedy_cap)]
         results = {}
-        results["greedy"] = run_child(
-            "greedy", data, runs, [*common, "--tol", repr(args.tol),
-                                   "--max-passes", str(args.max_passes)])
+        results["greedy"] = run_child("greedy", data, runs, greedy)
         print(f"greedy: {results['greedy']['message']}", flush=True)
         if not args.no_streaming:
-            results["greedy-streaming"] = run_child(
-                "greedy", data, runs, [*common, "--tol", repr(args.tol), "--max-passes",
-                                       str(args.max_passes), "--streaming"])
+            results["greedy-streaming"] = run_child("greedy", data, runs, [*greedy, "--streaming"])
             print(f"greedy-streaming: {results['greedy-streaming']['message']}", flush=True)
         results["reference"] = run_child(
             "reference", data, runs, [*common, "--cap", repr(args.cap),
                                       "--max-iter", str(args.max_iter)])
         print(f"reference: {results['reference']['message']}", flush=True)
+    return results, lam, lam_max, shape
+
+
+def main(argv=None) -> int:
+    args = parse(argv)
+    if args.child:
+        res = CHILDREN[args.child](args)
+        res["vm_hwm"] = _vm_hwm()
+        Path(args.result).write_text(json.dumps(res))
+        return 0
+    args.out.mkdir(parents=True, exist_ok=True)
+    BLAS_THREADS[0] = args.blas_threads
+    saved = args.out / "bench_solver_runs.json"
+    if args.from_runs:
+        doc = json.loads(saved.read_text())
+        results, lam, lam_max, shape = doc["results"], doc["lam"], doc["lam_max"], doc["shape"]
+    else:
+        results, lam, lam_max, shape = _run_all(args)
+        from stream.atomic import atomic_write_json
+
+        atomic_write_json(saved, {"results": results, "lam": lam, "lam_max": lam_max,
+                                  "shape": shape})
     # F*: the best objective seen; the long greedy run's gap certifies how close it is.
     best = min(results, key=lambda name: results[name]["objective"])
     f_star = results[best]["objective"]
     g = results["greedy"]
     f_lower = g["objective"] - g["gap"] if np.isfinite(g["gap"]) else float("nan")
     rows, ratios = summarize(results, f_star)
-    meta = {"n": int(X.shape[0]), "d": int(X.shape[1]), "k": args.k, "nnz": int(X.nnz),
+    meta = {"n": shape[0], "d": shape[1], "k": shape[2], "nnz": shape[3],
             "lam": lam, "lam_max": lam_max, "lam_frac": args.lam_frac, "f_star": f_star,
             "f_star_from": best, "f_star_lower_bound": f_lower,
             "f_star_rel_gap": (f_star - f_lower) / abs(f_star), "reference_cap_s": args.cap,
