@@ -164,6 +164,36 @@ class StoreContract:
                 assert set(b.io) == {"read_s", "decode_s", "bytes_disk", "bytes_decoded"}
                 assert b.io["read_s"] >= 0 and b.io["decode_s"] >= 0
 
+    def test_block_buffers_are_recycled_only_when_dropped(self, tmp_path):
+        rng = np.random.default_rng(14)
+        X = random_csr(rng, 400, 50, 0.2)
+        with small_chunks(32):
+            s = write_store(self.path(tmp_path), X, backend=self.backend)
+        with s:
+            ranges = s.block_ranges(block_bytes=1500)
+            kept = s.read_block(*ranges[0])
+            later = [s.read_block(a, b) for a, b in ranges[1:4]]
+            # scipy reference: a block still held is never overwritten by later reads
+            assert_same_csr(kept.X, X[ranges[0][0] : ranges[0][1]])
+            for blk, (a, b) in zip(later, ranges[1:4], strict=True):
+                assert_same_csr(blk.X, X[a:b])
+            first_data = later[-1].X.data
+
+            def span(a):
+                lo = a.__array_interface__["data"][0]
+                return lo, lo + a.nbytes
+
+            held = span(first_data)
+            del kept, later, blk
+            # address spans only: holding the spare buffers would keep them busy
+            spare = [span(b) for b in s._readers["data"]._spare]
+            again = s.read_block(*ranges[4])
+            assert_same_csr(again.X, X[ranges[4][0] : ranges[4][1]])
+            start = span(again.X.data)[0]
+            inside = [lo <= start < hi for lo, hi in spare]
+            assert any(inside)  # a free buffer was recycled
+            assert not held[0] <= start < held[1]  # not the one still held
+
     def test_random_access_blocks(self, tmp_path):
         rng = np.random.default_rng(4)
         X = random_csr(rng, 200, 30, 0.2)
