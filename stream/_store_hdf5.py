@@ -43,7 +43,7 @@ def _pool() -> ThreadPoolExecutor:
     with _POOL_LOCK:
         if _POOL is None:
             workers = max(1, os.cpu_count() or 1)
-            _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="ranktide-h5")
+            _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="store-decode-hdf5")
         return _POOL
 
 

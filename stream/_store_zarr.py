@@ -59,7 +59,7 @@ def _pool() -> ThreadPoolExecutor:
     with _CONFIG_LOCK:
         if _POOL is None:
             workers = max(1, os.cpu_count() or 1)
-            _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="ranktide-zarr")
+            _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="store-decode-zarr")
         return _POOL
 
 
