@@ -38,6 +38,16 @@ _POOL: ThreadPoolExecutor | None = None
 _POOL_MIN_BYTES = 1 << 20
 
 
+def _forget_pool() -> None:
+    """In a forked child the pool's threads do not exist: start a new pool there."""
+    global _POOL
+    _POOL = None
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_pool)
+
+
 def _pool() -> ThreadPoolExecutor:
     global _POOL
     with _POOL_LOCK:

@@ -54,6 +54,16 @@ def _tune_zarr() -> None:
         _CONFIGURED = True
 
 
+def _forget_pool() -> None:
+    """In a forked child the pool's threads do not exist: start a new pool there."""
+    global _POOL
+    _POOL = None
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_pool)
+
+
 def _pool() -> ThreadPoolExecutor:
     global _POOL
     with _CONFIG_LOCK:
