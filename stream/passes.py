@@ -9,7 +9,7 @@ the kernels themselves; the fold order never changes).
 and returns one partial of the same kind: it must be associative, and
 ``combine([p])`` must equal ``p``. The engine calls it as
 ``acc = combine([acc, p_i])`` block after block (``acc`` starting from
-``init`` when given, else from the first partial), so a pass never holds more
+``init`` when given, else from ``combine([p_0])``), so a pass never holds more
 than a few partials, whatever the number of rows. A distributed backend uses
 the same function for its tree reduction.
 
@@ -435,7 +435,7 @@ class _Folder:
         wait_s: float,
     ) -> None:
         if self.profile is None:
-            self.acc = partial if self.acc is _EMPTY else self.combine([self.acc, partial])
+            self.acc = self._fold_in(partial)
         else:
             # phases named inside the combine are recorded with the block's
             # phases; combine_s is the rest of the combine's time
@@ -443,7 +443,7 @@ class _Folder:
             _local.timer = timer
             t0 = time.perf_counter()
             try:
-                self.acc = partial if self.acc is _EMPTY else self.combine([self.acc, partial])
+                self.acc = self._fold_in(partial)
             finally:
                 _local.timer = None
             fold_s = time.perf_counter() - t0
@@ -452,6 +452,13 @@ class _Folder:
                          timer.phases)
         if self.bar is not None:
             self._progress(block)
+
+    def _fold_in(self, partial: Any) -> Any:
+        # the first partial goes through combine too, so work a combine does per
+        # partial (e.g. adding pending terms) is timed with its own block
+        if self.acc is _EMPTY:
+            return self.combine([partial])
+        return self.combine([self.acc, partial])
 
     def _record(
         self,
@@ -560,8 +567,8 @@ def run_pass(
         Show a progress bar (blocks/s, decoded MB/s, ETA) when stderr is a
         terminal and the pass lasts more than half a second.
     init : object, optional
-        Starting value of the fold (an identity partial); by default the
-        first block's partial.
+        Starting value of the fold (an identity partial, consumed by the
+        pass); by default ``combine([first block's partial])``.
 
     Returns
     -------
