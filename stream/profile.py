@@ -366,7 +366,7 @@ def _png_bytes(prof: PassProfile) -> bytes:
             if n not in names:
                 names.append(n)
     x = np.arange(len(recs))
-    fig = Figure(figsize=(max(6.0, min(18.0, 0.12 * len(recs) + 4)), 4.5))
+    fig = Figure(figsize=(max(6.0, min(18.0, 0.12 * len(recs) + 4)), 5.0))
     ax = fig.add_subplot(1, 1, 1)
     bottom = np.zeros(len(recs))
     for name in names:
@@ -384,7 +384,8 @@ def _png_bytes(prof: PassProfile) -> bytes:
         ax.axvline(start - 0.5, color="grey", linewidth=0.8, linestyle=":")
     h1, l1 = ax.get_legend_handles_labels()
     h2, l2 = ax2.get_legend_handles_labels()
-    ax.legend(h1 + h2, l1 + l2, fontsize=7, loc="upper left", ncol=3)
+    ax.legend(h1 + h2, l1 + l2, fontsize=7, loc="upper center", ncol=4,
+              bbox_to_anchor=(0.5, -0.16), frameon=False)
     ax.set_title("time per block by phase")
     fig.tight_layout()
     buf = io.BytesIO()
