@@ -196,7 +196,9 @@ def _range_task(
             )
         else:
             partial = block_fn(block, state)
-        acc = partial if acc is None else combine([acc, partial])
+        # combine even a lone partial: it adds pending terms that would otherwise
+        # ship block data back to the client
+        acc = combine([partial]) if acc is None else combine([acc, partial])
         del block, partial
     return acc, records
 
