@@ -6,6 +6,8 @@ import argparse
 import json
 import sys
 
+from ._cluster_opt import add_cluster_option, cluster_backend
+
 HELP = "Profile solver-style passes over a store: I/O vs compute per block and phase"
 EXAMPLE = "ranktide profile data.zarr --passes 3 --rank 16 --out prof"
 
@@ -31,6 +33,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--threads", type=int, default=None, metavar="N",
                         help="compute threads of the threads backend")
     parser.add_argument("--seed", type=int, default=0, help="seed of the random factors")
+    add_cluster_option(parser)
     parser.add_argument("--quiet", action="store_true", help="no progress bar, no table")
     parser.add_argument("--json", action="store_true",
                         help="print the summary as JSON instead of the table")
@@ -44,11 +47,12 @@ def run(args: argparse.Namespace) -> int:
     if args.block_rows is not None and args.block_rows < 1:
         raise ConfigError(f"--block-rows {args.block_rows}: must be at least 1")
     budget = parse_memory(args.memory) if args.memory is not None else None
-    report = profile_store(
-        args.store, model=args.model, passes=args.passes, rank=args.rank,
-        backend=args.backend, block_rows=args.block_rows, memory=budget,
-        n_threads=args.threads, seed=args.seed, progress=not args.quiet,
-    )
+    with cluster_backend(args) as backend:
+        report = profile_store(
+            args.store, model=args.model, passes=args.passes, rank=args.rank,
+            backend=backend, block_rows=args.block_rows, memory=budget,
+            n_threads=args.threads, seed=args.seed, progress=not args.quiet,
+        )
     paths = write_profile(report, args.out) if args.out else {}
     if args.json:
         print(json.dumps(jsonable(report.summary), indent=2, sort_keys=True))
