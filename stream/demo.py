@@ -305,7 +305,6 @@ class _Demo:
             "seed": seed,
             "complete": False,
             "steps": {},
-            "skipped": {},
         }
         self.t0 = time.perf_counter()
 
@@ -317,9 +316,6 @@ class _Demo:
         self.made["steps"][step] = info
         atomic_write_json(self.out / MARKER, self.made)
 
-    def skip(self, step: str, why: str) -> None:
-        self.made["skipped"][step] = why
-        self.say(f"  skipped {step}: {why}")
 
 
 def _prepare_out(out: Path, *, overwrite: bool) -> None:
@@ -361,7 +357,7 @@ def _step_ingest(demo: _Demo) -> None:
 def _step_split(demo: _Demo) -> None:
     from .split import split_store
 
-    store = _need(demo, "store", "ingest")
+    store = demo.store
     train, hold = demo.out / "train.zarr", demo.out / "holdout.zarr"
     info = split_store(store, train, hold, holdout=0.2, seed=demo.seed)
     # the path picks its lam on a validation set carved out of the training rows
@@ -378,21 +374,10 @@ def _step_split(demo: _Demo) -> None:
                 fit_rows=vinfo.get("train_rows"), valid_rows=vinfo.get("holdout_rows"))
 
 
-class _Skip(Exception):
-    """A step cannot run because an earlier one was skipped."""
-
-
-def _need(demo: _Demo, attr: str, step: str) -> Any:
-    value = getattr(demo, attr, None)
-    if value is None:
-        raise _Skip(f"needs the output of the {step} step")
-    return value
-
-
 def _step_train(demo: _Demo) -> None:
     from .train import train
 
-    fit = _need(demo, "fit_store", "split")
+    fit = demo.fit_store
     run = demo.out / "run"
     result = train(fit, valid=demo.valid_store, out=run, seed=demo.seed,
                    progress=not demo.quiet, **TRAIN_SETTINGS[demo.size])
@@ -416,8 +401,8 @@ def _step_train(demo: _Demo) -> None:
 def _step_evaluate(demo: _Demo) -> None:
     from .evaluate import evaluate
 
-    model = _need(demo, "model_dir", "train")
-    hold = _need(demo, "holdout_store", "split")
+    model = demo.model_dir
+    hold = demo.holdout_store
     res = evaluate(model, hold, top_k=5, progress=not demo.quiet)
     atomic_write_json(demo.out / "holdout_metrics.json", res)
     demo.metrics = res
@@ -432,8 +417,8 @@ def _step_evaluate(demo: _Demo) -> None:
 def _step_predict(demo: _Demo) -> None:
     from .predict import predict_to_file
 
-    model = _need(demo, "model_dir", "train")
-    hold = _need(demo, "holdout_store", "split")
+    model = demo.model_dir
+    hold = demo.holdout_store
     out = demo.out / "holdout_predictions.csv"
     info = predict_to_file(model, hold, out, top_k=5, proba=True, progress=not demo.quiet)
     demo.say(f"  top-5 sections with probabilities for {info['n_rows']} rows -> {out}")
@@ -443,7 +428,7 @@ def _step_predict(demo: _Demo) -> None:
 def _step_report(demo: _Demo) -> None:
     from .report import write_report
 
-    run = _need(demo, "run_dir", "train")
+    run = demo.run_dir
     page = write_report(run)
     demo.say(f"  {page}")
     demo.record("report", report=str(page))
@@ -490,9 +475,6 @@ def _next_steps(demo: _Demo) -> str:
         f"  ranktide report {o / 'run'}   (adds the profile; open "
         f"{o / 'run' / 'report' / 'report.html'})",
     ]
-    if demo.made["skipped"]:
-        lines += ["", "skipped steps: " + "; ".join(f"{k} ({v})" for k, v in
-                                                     demo.made["skipped"].items())]
     return "\n".join(lines)
 
 
@@ -536,16 +518,9 @@ def run_demo(
     for i, (name, what, step) in enumerate(STEPS, 1):
         t = time.perf_counter()
         demo.say(f"[{i}/{len(STEPS)}] {what}")
-        try:
-            step(demo)
-        except ModuleNotFoundError as exc:  # a module not in yet: say so and go on
-            demo.skip(name, f"module {exc.name} is not available")
-            continue
-        except _Skip as exc:
-            demo.skip(name, str(exc))
-            continue
+        step(demo)
         demo.made["steps"][name]["seconds"] = round(time.perf_counter() - t, 3)
-    demo.made["complete"] = not demo.made["skipped"]
+    demo.made["complete"] = True
     demo.made["seconds"] = round(time.perf_counter() - demo.t0, 3)
     atomic_write_json(out / MARKER, demo.made)
     demo.say(_next_steps(demo))
