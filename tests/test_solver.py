@@ -13,6 +13,7 @@
 
 from __future__ import annotations
 
+import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -26,11 +27,17 @@ LOSSES = ["softmax", "squared", "multilabel"]
 
 
 @pytest.fixture(autouse=True, scope="module")
-def _one_blas_thread():
-    # OpenBLAS's own thread pool made these small dense products 5-20x slower when the two
-    # cores are shared with other processes (measured on the CI machine); one thread is steady.
-    with threadpool_limits(1, user_api="blas"):
-        yield
+def _one_thread():
+    # On small problems the thread pools cost more than they give when the two cores are
+    # shared with other processes: OpenBLAS was 5-20x and numba's OpenMP kernels ~7x slower
+    # per call (measured on the CI machine). Results do not depend on the thread count.
+    before = numba.get_num_threads()
+    numba.set_num_threads(1)
+    try:
+        with threadpool_limits(1, user_api="blas"):
+            yield
+    finally:
+        numba.set_num_threads(before)
 TOL = 1e-8  # the solver's relative gap tolerance in the accuracy tests
 
 
@@ -209,20 +216,20 @@ def test_lam_max_threshold(loss):
 
 def test_greedy_matches_reference_on_mid_size_sparse_problem():
     rng = np.random.default_rng(7)
-    n, d, k = 3000, 2000, 50
-    X = sp.random(n, d, density=0.01, random_state=rng, format="csr", dtype=np.float64)
+    n, d, k = 1500, 2000, 50
+    X = sp.random(n, d, density=0.02, random_state=rng, format="csr", dtype=np.float64)
     X.data = (1.0 + X.data).astype(np.float32).astype(np.float64)
     A = rng.standard_normal((d, 3)) @ rng.standard_normal((3, k))
     y = np.argmax(np.asarray(X @ A) + rng.gumbel(size=(n, k)), axis=1).astype(np.int32)
     lam = 0.3 * lam_max_dense(X, y, "softmax", n_outputs=k)
-    res = train((X, y), loss="softmax", lam=lam, tol=1e-7, max_passes=200, seed=0)
+    res = train((X, y), loss="softmax", lam=lam, tol=1e-6, max_passes=200, seed=0)
     ref = reference_solve(X, y, loss="softmax", lam=lam, n_outputs=k, tol=1e-9,
-                          W0=_W(res.model), b0=res.model.b, max_seconds=15)
+                          W0=_W(res.model), b0=res.model.b, max_seconds=8)
     # Reference: dense FISTA + SVT (stream/reference.py), warm-started at the greedy model;
     # it can only go down, so a large drop would expose a greedy solution short of the optimum.
     assert ref.objective <= res.objective * (1 + 1e-12)
     assert abs(res.objective - ref.objective) <= 1e-5 * ref.objective
-    cold = reference_solve(X, y, loss="softmax", lam=lam, n_outputs=k, tol=1e-7, max_seconds=15)
+    cold = reference_solve(X, y, loss="softmax", lam=lam, n_outputs=k, tol=1e-7, max_seconds=5)
     assert res.objective <= cold.objective * (1 + 1e-5)
 
 
@@ -230,13 +237,15 @@ def test_greedy_matches_reference_on_mid_size_sparse_problem():
 
 
 def test_same_seed_same_model_and_backends_agree():
-    X, y, w, k = make_problem("softmax", seed=400, weights=True)
+    X, y, w, k = make_problem("softmax", n=120, seed=400, weights=True)
     lam = 0.2 * lam_max_dense(X, y, "softmax", weights=w, n_outputs=k)
-    a = train((X, y, w), loss="softmax", lam=lam, tol=1e-6, seed=3)
-    b = train((X, y, w), loss="softmax", lam=lam, tol=1e-6, seed=3)
+    a = train((X, y, w), loss="softmax", lam=lam, tol=1e-4, seed=3, block_rows=40)
+    b = train((X, y, w), loss="softmax", lam=lam, tol=1e-4, seed=3, block_rows=40)
     for name in ("U", "s", "V", "b"):
         np.testing.assert_array_equal(getattr(a.model, name), getattr(b.model, name))
-    c = train((X, y, w), loss="softmax", lam=lam, tol=1e-6, seed=3, backend="threads")
+    c = train((X, y, w), loss="softmax", lam=lam, tol=1e-4, seed=3, backend="threads",
+              block_rows=40)
+    assert a.model.rank >= 1
     # DESIGN §5: same seed and block order give the same result on every backend, to rounding.
     np.testing.assert_allclose(_W(c.model), _W(a.model), atol=1e-10)
     np.testing.assert_allclose(c.model.b, a.model.b, atol=1e-10)
@@ -261,8 +270,10 @@ def test_digits_path_selected_model(tmp_path):
     val = write_store(tmp_path / "val", sp.csr_matrix(Xval), yval, kind="classes")
     fit.close()
     val.close()
-    res = train(tmp_path / "fit", loss="softmax", path=8, valid=tmp_path / "val", tol=1e-4,
-                seed=0)
+    # lam_j = lam_max * 0.01^(j/2), j = 0, 1, 2; validation accuracy picks one
+    res = train(tmp_path / "fit", loss="softmax", path=3, path_min_frac=0.01,
+                valid=tmp_path / "val", tol=1e-3, seed=0)
+    assert len(res.path) == 3 and res.best_index is not None
     acc = float(np.mean(res.model.predict(sp.csr_matrix(Xte)) == yte))
     # Linear models reach ~0.95-0.97 test accuracy on digits (common practice, from memory).
     assert acc >= 0.94, acc
