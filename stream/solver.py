@@ -64,7 +64,8 @@ class SolverConfig:
     tol : float
         Stop when the relative gap estimate ``gap / F <= tol`` (default 1e-4).
     max_passes : int
-        Passes allowed for one value of ``lam`` (default 100).
+        Passes allowed for one value of ``lam`` (default 100); the passes at
+        ``W = 0`` that find ``lam_max`` have their own budget, ``lam_max_passes``.
     max_seconds : float, optional
         Wall-clock budget of one :meth:`GreedySolver.run` (default none).
     power_size : int
