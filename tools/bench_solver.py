@@ -39,6 +39,7 @@ if str(ROOT) not in sys.path:
 
 THRESHOLDS = (1e-3, 1e-4)
 BLAS_THREADS = [1]
+NUMBA_THREADS = [0]
 
 
 # --------------------------------------------------------------------------- data
@@ -189,6 +190,8 @@ def run_child(kind: str, data: Path, workdir: Path, extra: list[str]) -> dict:
         # OpenBLAS's own thread pool is ~20x slower on small factorizations when the
         # cores are shared (measured here); both solvers get the same setting.
         env["OPENBLAS_NUM_THREADS"] = str(BLAS_THREADS[0])
+    if NUMBA_THREADS[0]:
+        env["NUMBA_NUM_THREADS"] = str(NUMBA_THREADS[0])
     proc = subprocess.Popen(cmd, cwd=str(ROOT), env=env)
     ps = psutil.Process(proc.pid)
     peak = 0
@@ -298,6 +301,9 @@ def parse(argv):
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--blas-threads", type=int, default=1,
                     help="OPENBLAS_NUM_THREADS of both solvers (0: leave unset)")
+    ap.add_argument("--numba-threads", type=int, default=0,
+                    help="NUMBA_NUM_THREADS of both solvers (0: leave unset); on a loaded "
+                    "machine OpenMP kernels were ~7x slower per call with 2 threads than 1")
     ap.add_argument("--small", action="store_true", help="smoke run: n=5000 d=2000 k=50")
     ap.add_argument("--no-streaming", action="store_true",
                     help="skip the run that forbids the dense-gradient path")
@@ -358,6 +364,7 @@ def main(argv=None) -> int:
         return 0
     args.out.mkdir(parents=True, exist_ok=True)
     BLAS_THREADS[0] = args.blas_threads
+    NUMBA_THREADS[0] = args.numba_threads
     saved = args.out / "bench_solver_runs.json"
     if args.from_runs:
         doc = json.loads(saved.read_text())
@@ -379,6 +386,7 @@ def main(argv=None) -> int:
             "f_star_from": best, "f_star_lower_bound": f_lower,
             "f_star_rel_gap": (f_star - f_lower) / abs(f_star), "reference_cap_s": args.cap,
             "greedy_tol": args.tol, "seed": args.seed, "blas_threads": args.blas_threads,
+            "numba_threads": args.numba_threads, "greedy_cap_s": args.greedy_cap,
             "cpu_count": os.cpu_count(),
             "targets": {"passes_ratio_1e-4": 50, "seconds_ratio_1e-4": 10,
                         "peak_rss_ratio": 5}}
