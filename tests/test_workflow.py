@@ -360,3 +360,13 @@ def test_demo_refuses_foreign_directory(tmp_path, ranktide):
     (tmp_path / "notes.txt").write_text("mine\n")
     _one_error_line(ranktide("demo", "--out", tmp_path), "not an earlier demo")
     assert (tmp_path / "notes.txt").read_text() == "mine\n"
+
+
+def test_evaluate_api_accepts_in_memory_data(case):
+    # the same rows from memory (CSR + targets + weights) give the store's metrics
+    T = case["T"]
+    mem = evaluate(case["model"], (case["X"], T, case["w"]), top_k=3, block_rows=41)
+    disk = evaluate(case["model_dir"], case["store"], top_k=3)
+    for key, value in disk.items():
+        if isinstance(value, float):
+            assert mem[key] == pytest.approx(value, rel=1e-9, abs=1e-12), key
