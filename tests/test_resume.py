@@ -366,3 +366,50 @@ def test_disk_full_during_checkpoint_stops_cleanly(work):
 
     _arrays, meta, path = CheckpointManager(run).load_latest()  # verifies the checksums
     assert path.name == "ckpt-00000003" and meta["solver"]["passes"] == 3
+
+
+# ---------------------------------------------------------------- regularization path
+def test_path_stopped_at_each_kind_of_moment_resumes_exactly(work):
+    """A path run stopped (stop flag) inside the lam_max phase, inside a value and at a
+    value's end resumes to the uninterrupted path: same points, same best model."""
+    from sklearn.datasets import load_digits
+
+    from stream.rundir import resume
+    from stream.signals import StopFlag
+    from stream.store import write_store
+    from stream.train import train
+
+    root, _ref = work
+    X, y = load_digits(return_X_y=True)  # rows after the training rows, for validation
+    Xv = sp.csr_matrix((X[N_ROWS : N_ROWS + 100] / 16.0).astype(np.float32))
+    write_store(root / "valid.zarr", Xv, y[N_ROWS : N_ROWS + 100].astype(np.int32),
+                kind="classes").close()  # fmt: skip
+    kw = {
+        "loss": "softmax", "path": 3, "path_min_frac": 0.1, "valid": str(root / "valid.zarr"),
+        "tol": 1e-5, "seed": 5, "block_rows": 50, "dense_gradient": False,
+        "checkpoint_passes": 1,
+    }  # fmt: skip
+    full = train(str(root / "s.zarr"), out=root / "path-ref", **kw)
+    assert len(full.path) >= 2
+    step_end = sum(p.passes for p in full.path[:1]) + (
+        full.passes - sum(p.passes for p in full.path)
+    )
+    for cut in (1, step_end + 1):  # inside the lam_max phase; inside the second value
+        flag = StopFlag()
+        seen = [0]
+
+        def cb(rec, flag=flag, seen=seen, cut=cut):
+            seen[0] += 1
+            if seen[0] == cut:
+                flag.request(signal.SIGTERM)
+
+        run = root / f"path-{cut}"
+        part = train(str(root / "s.zarr"), out=run, stop=flag, callback=cb, **kw)
+        assert part.status == "interrupted"
+        res = resume(run)
+        assert [p.lam for p in res.path] == [p.lam for p in full.path]
+        assert [p.passes for p in res.path] == [p.passes for p in full.path]
+        assert [p.score for p in res.path] == [p.score for p in full.path]
+        assert res.best_index == full.best_index and res.passes == full.passes
+        np.testing.assert_allclose(res.model.s, full.model.s, rtol=1e-10, atol=0)
+        assert abs(res.objective - full.objective) <= 1e-10 * abs(full.objective)
