@@ -523,6 +523,22 @@ def load_resume_point(
     )
 
 
+def _check_changes(changes: Mapping[str, Any]) -> None:
+    """Validate new budgets and cadence before anything in the run is touched."""
+    tol = changes.get("tol")
+    if tol is not None and not (0 < tol < 1):
+        raise ConfigError(f"--tol {tol}: must lie in (0, 1)")
+    passes = changes.get("max_passes")
+    if passes is not None and int(passes) < 1:
+        raise ConfigError(f"--max-passes {passes}: must be >= 1")
+    secs = changes.get("max_seconds")
+    if secs is not None and not secs > 0:
+        raise ConfigError(f"--max-seconds {secs}: must be > 0")
+    CheckpointSchedule(
+        seconds=changes.get("checkpoint_seconds", 60.0), passes=changes.get("checkpoint_passes")
+    )
+
+
 def resume(
     run_dir: str | os.PathLike,
     *,
@@ -574,6 +590,7 @@ def resume(
         "checkpoint_passes": checkpoint_passes,
     }
     changes = {k: v for k, v in given.items() if v is not None}
+    _check_changes(changes)
     with open_store(where) as src:
         point = load_resume_point(run.path, fingerprint=src.fingerprint, changes=changes)
         s = point.run.settings

@@ -454,3 +454,19 @@ def test_recorder_cadence_step_end_and_stop(tmp_path):
     assert not rec2.after_pass(state) and rec2.checkpoints_written == 0
     now[0] += 1.0
     assert not rec2.after_pass(state) and rec2.checkpoints_written == 1
+
+
+def test_resume_rejects_bad_budgets_before_touching_the_run(tmp_path):
+    from stream.rundir import resume
+
+    run = _run(tmp_path)
+    before = run.config_path.read_text()
+    for kw, msg in [
+        ({"tol": 2.0}, "--tol 2.0: must lie in"),
+        ({"max_passes": 0}, "--max-passes 0: must be >= 1"),
+        ({"max_seconds": -1.0}, "--max-seconds -1.0: must be > 0"),
+        ({"checkpoint_passes": 0}, "--checkpoint-passes 0: must be >= 1"),
+    ]:
+        with pytest.raises((ConfigError, CheckpointError), match=msg):
+            resume(run.path, **kw)
+    assert run.config_path.read_text() == before
