@@ -306,16 +306,31 @@ class StoreWriter:
             )
         _check_local_indptr(ip, idx.shape[0], "indptr", where)
         first = self.n_rows
+        self._check_column_ids(ip, idx, first)
+        _check_sorted_rows(ip, idx, first, "column ids", where)
+        val32 = self._finite_float32(ip, idx, val, first)
+        self._a["indptr"].append(ip[1:] + self._nnz)
+        self._a["indices"].append(idx)
+        self._a["data"].append(val32)
+        self._nnz += int(idx.shape[0])
+
+    def _check_column_ids(self, ip: np.ndarray, idx: np.ndarray, first: int) -> None:
+        """Column ids ``idx`` (nnz_chunk,) must lie in ``0..n_cols-1``."""
         if idx.size:
             bad = (idx < 0) | (idx >= self.n_cols)
             if bad.any():
                 pos = int(np.flatnonzero(bad)[0])
                 row = int(np.searchsorted(ip, pos, side="right")) - 1 + first
                 raise InputError(
-                    f"{where}: row {row}: column id {int(idx[pos])} is outside "
+                    f"{self._where}: row {row}: column id {int(idx[pos])} is outside "
                     f"0..{self.n_cols - 1}; fix the id or declare more columns"
                 )
-        _check_sorted_rows(ip, idx, first, "column ids", where)
+
+    def _finite_float32(
+        self, ip: np.ndarray, idx: np.ndarray, val: np.ndarray, first: int
+    ) -> np.ndarray:
+        """``val`` (nnz_chunk,) as float32, every value finite after the cast."""
+        where = self._where
         try:
             val32 = val.astype(np.float32, copy=False)
         except (TypeError, ValueError):
@@ -328,10 +343,7 @@ class StoreWriter:
                 f"{where}: row {row}, column {int(idx[pos])}: value {float(val[pos])!r} is not "
                 "finite as float32; remove it or fix the source"
             )
-        self._a["indptr"].append(ip[1:] + self._nnz)
-        self._a["indices"].append(idx)
-        self._a["data"].append(val32)
-        self._nnz += int(idx.shape[0])
+        return val32
 
     # ----------------------------------------------------------------- targets
     def _set_kind(self, kind: str) -> None:
@@ -638,6 +650,33 @@ class _Aborted(Exception):
     """Thrown into the atomic-directory context so it removes the temporary."""
 
 
+def _check_create_args(
+    p: Path,
+    *,
+    n_cols: int,
+    kind: str | None,
+    n_outputs: int | None,
+    names: Sequence[str] | None,
+    backend: str | None,
+    codec: str,
+    overwrite: bool,
+) -> str:
+    """Validate the arguments of :func:`create_store`; return the backend name."""
+    be = _choose_backend(p, backend)
+    _check_codec(codec)
+    if kind is not None and kind not in KINDS:
+        raise ConfigError(f"target kind {kind!r} is unknown; use one of {', '.join(KINDS)}")
+    if int(n_cols) < 1:
+        raise ConfigError(f"{p}: n_cols must be >= 1, got {n_cols}")
+    if n_outputs is not None and int(n_outputs) < 0:
+        raise ConfigError(f"{p}: n_outputs must be >= 0, got {n_outputs}")
+    if names is not None and n_outputs is not None and len(names) != int(n_outputs):
+        raise ConfigError(f"{p}: {len(names)} names for {n_outputs} outputs; give one per output")
+    if p.exists() and not overwrite:
+        raise OutputExistsError(f"{p}: already exists; pass --overwrite to replace it")
+    return be
+
+
 def create_store(
     path: str | os.PathLike,
     *,
@@ -678,18 +717,16 @@ def create_store(
     StoreWriter
     """
     p = Path(path)
-    be = _choose_backend(p, backend)
-    _check_codec(codec)
-    if kind is not None and kind not in KINDS:
-        raise ConfigError(f"target kind {kind!r} is unknown; use one of {', '.join(KINDS)}")
-    if int(n_cols) < 1:
-        raise ConfigError(f"{p}: n_cols must be >= 1, got {n_cols}")
-    if n_outputs is not None and int(n_outputs) < 0:
-        raise ConfigError(f"{p}: n_outputs must be >= 0, got {n_outputs}")
-    if names is not None and n_outputs is not None and len(names) != int(n_outputs):
-        raise ConfigError(f"{p}: {len(names)} names for {n_outputs} outputs; give one per output")
-    if p.exists() and not overwrite:
-        raise OutputExistsError(f"{p}: already exists; pass --overwrite to replace it")
+    be = _check_create_args(
+        p,
+        n_cols=n_cols,
+        kind=kind,
+        n_outputs=n_outputs,
+        names=names,
+        backend=backend,
+        codec=codec,
+        overwrite=overwrite,
+    )
     return StoreWriter(
         p,
         n_cols=int(n_cols),
