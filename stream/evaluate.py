@@ -287,8 +287,9 @@ def progress_bar(total: int, *, enabled: bool, desc: str) -> Any:
     from tqdm.auto import tqdm
 
     show = bool(enabled) and sys.stderr.isatty()
+    # delay: runs shorter than half a second never draw a bar
     return tqdm(total=total, disable=not show, desc=desc, unit="rows", unit_scale=True,
-                leave=False, file=sys.stderr)
+                leave=False, file=sys.stderr, delay=0.5)
 
 
 def evaluate(

@@ -93,7 +93,36 @@ class _Base:
         return {"loss": self.loss, "n_rows": int(self.n_rows), "total_weight": self.total_weight}
 
 
-class SoftmaxMetrics(_Base):
+class _Counted(_Base):
+    """Per-output weighted counts (true positives, predicted, true) and the k of top-k."""
+
+    _sums: tuple[str, ...] = ()
+
+    def __init__(
+        self, *, n_outputs: int, top_k: int = 5, output_names: Sequence[str] | None = None
+    ) -> None:
+        super().__init__(n_outputs=n_outputs, output_names=output_names)
+        if int(top_k) < 1:
+            raise InputError(f"top_k={top_k}: must be at least 1")
+        self.top_k = min(int(top_k), self.n_outputs)
+        self.tp = np.zeros(self.n_outputs)
+        self.n_pred = np.zeros(self.n_outputs)
+        self.n_true = np.zeros(self.n_outputs)
+        for name in self._sums:
+            setattr(self, name, 0.0)
+
+    def merge(self, other: _Counted) -> _Counted:
+        """Add the sums of ``other`` (a disjoint set of rows) into this one."""
+        self._check_merge(other)
+        for name in (*self._sums, "total_weight", "n_rows"):
+            setattr(self, name, getattr(self, name) + getattr(other, name))
+        self.tp += other.tp
+        self.n_pred += other.n_pred
+        self.n_true += other.n_true
+        return self
+
+
+class SoftmaxMetrics(_Counted):
     """Accuracy, top-k accuracy, log-loss, macro-F1 and the worst per-class recalls.
 
     Parameters
@@ -115,22 +144,13 @@ class SoftmaxMetrics(_Base):
     """
 
     loss = "softmax"
+    _sums = ("correct", "topk_correct", "logloss_sum")
 
     def __init__(
         self, *, n_outputs: int, top_k: int = 5, output_names: Sequence[str] | None = None
     ) -> None:
-        super().__init__(n_outputs=n_outputs, output_names=output_names)
-        if int(top_k) < 1:
-            raise InputError(f"top_k={top_k}: must be at least 1")
-        self.top_k = min(int(top_k), self.n_outputs)
-        k = self.n_outputs
-        self.correct = 0.0
-        self.topk_correct = 0.0
-        self.logloss_sum = 0.0
-        self.tp = np.zeros(k)
-        self.n_pred = np.zeros(k)
-        self.n_true = np.zeros(k)
-        self.seen = np.zeros(k, dtype=bool)
+        super().__init__(n_outputs=n_outputs, top_k=top_k, output_names=output_names)
+        self.seen = np.zeros(self.n_outputs, dtype=bool)
 
     def update(
         self, block_scores: np.ndarray, targets: np.ndarray, weights: np.ndarray | None = None
@@ -176,12 +196,7 @@ class SoftmaxMetrics(_Base):
 
     def merge(self, other: SoftmaxMetrics) -> SoftmaxMetrics:
         """Add the sums of ``other`` (a disjoint set of rows) into this one."""
-        self._check_merge(other)
-        for name in ("correct", "topk_correct", "logloss_sum", "total_weight", "n_rows"):
-            setattr(self, name, getattr(self, name) + getattr(other, name))
-        self.tp += other.tp
-        self.n_pred += other.n_pred
-        self.n_true += other.n_true
+        super().merge(other)
         self.seen |= other.seen
         return self
 
@@ -237,7 +252,7 @@ def _tag_entries(targets: Any, n: int, k: int) -> tuple[np.ndarray, np.ndarray]:
     return rows, cols.astype(np.int64)
 
 
-class MultilabelMetrics(_Base):
+class MultilabelMetrics(_Counted):
     """Micro- and macro-F1 of the predicted tag sets, and precision@k.
 
     A tag is predicted when its score is positive (probability above 1/2).
@@ -262,20 +277,7 @@ class MultilabelMetrics(_Base):
     """
 
     loss = "multilabel"
-
-    def __init__(
-        self, *, n_outputs: int, top_k: int = 5, output_names: Sequence[str] | None = None
-    ) -> None:
-        super().__init__(n_outputs=n_outputs, output_names=output_names)
-        if int(top_k) < 1:
-            raise InputError(f"top_k={top_k}: must be at least 1")
-        self.top_k = min(int(top_k), self.n_outputs)
-        k = self.n_outputs
-        self.tp = np.zeros(k)
-        self.n_pred = np.zeros(k)
-        self.n_true = np.zeros(k)
-        self.patk_sum = 0.0
-        self.loss_sum = 0.0
+    _sums = ("patk_sum", "loss_sum")
 
     def update(
         self, block_scores: np.ndarray, targets: Any, weights: np.ndarray | None = None
@@ -317,16 +319,6 @@ class MultilabelMetrics(_Base):
             self.loss_sum += float(w @ softplus) - float(w_at @ z_at)
         self.n_rows += n
         self.total_weight += float(w.sum())
-
-    def merge(self, other: MultilabelMetrics) -> MultilabelMetrics:
-        """Add the sums of ``other`` (a disjoint set of rows) into this one."""
-        self._check_merge(other)
-        for name in ("patk_sum", "loss_sum", "total_weight", "n_rows"):
-            setattr(self, name, getattr(self, name) + getattr(other, name))
-        self.tp += other.tp
-        self.n_pred += other.n_pred
-        self.n_true += other.n_true
-        return self
 
     def result(self) -> dict[str, Any]:
         """Return the metrics as a JSON-ready dict."""

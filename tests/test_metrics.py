@@ -178,8 +178,13 @@ def test_multilabel_blocks_equal_whole_array():
     whole = MultilabelMetrics(n_outputs=k, top_k=2)
     whole.update(z, sp.csr_matrix(Y), w)
     blocks = _stream(MultilabelMetrics(n_outputs=k, top_k=2), z, Y, w)
+    left, right = MultilabelMetrics(n_outputs=k, top_k=2), MultilabelMetrics(n_outputs=k, top_k=2)
+    left.update(z[:77], Y[:77], w[:77])
+    right.update(z[77:], Y[77:], w[77:])
+    merged = left.merge(right).result()
     for key in ("micro_f1", "macro_f1", "precision_at_k", "mean_loss"):
         assert blocks[key] == pytest.approx(whole.result()[key], rel=1e-12)
+        assert merged[key] == pytest.approx(whole.result()[key], rel=1e-12)
 
 
 def _squared_data(seed, n=200, k=5):
