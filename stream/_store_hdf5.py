@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 
 from .errors import StoreError
-from .store import ATTRS_KEY, StoreBackend
+from .store_format import ATTRS_KEY, StoreBackend
 
 __all__ = ["Hdf5Backend"]
 

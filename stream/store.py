@@ -53,11 +53,6 @@ working. Assigning a tunable on this module (``CHUNK_ELEMENTS``,
 
 from __future__ import annotations
 
-import sys
-import types
-from typing import Any
-
-from . import store_format as _fmt
 from .store_format import (  # noqa: F401  (re-exported names and tunables)
     _FREE_REFS,
     _INDPTR_PIECE,
@@ -93,15 +88,3 @@ __all__ = [
     "CHUNK_ELEMENTS",
     "DEFAULT_BLOCK_BYTES",
 ]
-
-
-class _StoreModule(types.ModuleType):
-    """This module, with assignments to a tunable forwarded to ``store_format``."""
-
-    def __setattr__(self, name: str, value: Any) -> None:
-        if name in _fmt.TUNABLES:
-            setattr(_fmt, name, value)
-        super().__setattr__(name, value)
-
-
-sys.modules[__name__].__class__ = _StoreModule

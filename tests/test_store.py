@@ -24,7 +24,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from stream import atomic as atomic_mod
-from stream import store as store_mod
+from stream import store_format as store_mod
 from stream.checksums import SegmentHasher, segment_checksum
 from stream.errors import ConfigError, InputError, OutputExistsError, StoreError
 from stream.store import create_store, open_store, write_store
