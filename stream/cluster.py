@@ -306,3 +306,65 @@ def register() -> None:
     from .passes import register_backend
 
     register_backend("dask", dask_backend)
+
+
+# ---------------------------------------------------------------------------
+# ordered per-block maps (evaluate, predict)
+# ---------------------------------------------------------------------------
+def _block_task(source_ref: Any, start: int, stop: int, fn: Any, state: Any) -> Any:
+    """Read one block on a worker and apply ``fn(block, state)`` to it."""
+    return fn(_open_remote(source_ref).read_block(start, stop), state)
+
+
+def map_blocks_ordered(
+    store: Any,
+    ranges: list[tuple[int, int]],
+    fn: Any,
+    state: Any,
+    *,
+    window: int | None = None,
+) -> Iterator[tuple[int, int, Any]]:
+    """Apply ``fn(block, state)`` to each block on the cluster; yield results in order.
+
+    At most ``window`` blocks (default: two per worker) are in flight, so the
+    client holds a bounded number of results whatever the number of rows.
+    ``store`` must be a store opened from a path the workers can reach.
+
+    Yields
+    ------
+    (start, stop, result)
+        One per range, in range order.
+    """
+    from distributed import default_client
+
+    ref = _source_ref(store)
+    if not (isinstance(ref, tuple) and ref and ref[0] == "store"):
+        raise ConfigError(
+            "--cluster: the data must be a store on a path the workers can read, not "
+            "in-memory arrays"
+        )
+    client = default_client()
+    n_workers = max(1, len(client.scheduler_info(n_workers=-1).get("workers", {})))
+    window = max(1, int(window or 2 * n_workers))
+    [state_f] = client.scatter([state], broadcast=True, hash=False)
+    pending: list[tuple[int, int, Any]] = []
+    it = iter(ranges)
+    try:
+        while True:
+            while len(pending) < window:
+                nxt = next(it, None)
+                if nxt is None:
+                    break
+                a, b = nxt
+                pending.append((a, b, client.submit(
+                    _block_task, ref, a, b, fn, state_f, pure=False, retries=2)))
+            if not pending:
+                return
+            a, b, fut = pending.pop(0)
+            result = fut.result()
+            fut.release()
+            yield a, b, result
+    finally:
+        for _, _, fut in pending:
+            fut.cancel()
+        state_f.release()

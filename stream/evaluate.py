@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-from .errors import InputError, ModelError
+from .errors import ConfigError, InputError, ModelError
 from .metrics import make_metrics
 
 __all__ = [
@@ -99,6 +99,27 @@ class DataSource:
             t = None if self._targets is None else self._targets[a:z]
             w = None if self._weights is None else self._weights[a:z]
             yield SourceBlock(a, z, self._X[a:z], t, w)
+
+    def map_blocks(
+        self, rows: int, fn: Any, state: Any, *, backend: str = "serial"
+    ) -> Iterator[tuple[int, int, Any]]:
+        """Yield ``(start, stop, fn(block, state))`` for each block, in order.
+
+        ``backend="dask"`` runs ``fn`` on the workers of the current
+        dask.distributed client (the data must be a store on a shared path);
+        ``fn`` must then be a module-level function.
+        """
+        if backend == "dask":
+            if self._store is None:
+                raise ConfigError("--cluster: evaluate and predict on a cluster need a store "
+                                  "path, not in-memory arrays")
+            from .cluster import map_blocks_ordered
+
+            ranges = self._store.block_ranges(rows=rows)
+            yield from map_blocks_ordered(self._store, ranges, fn, state)
+            return
+        for blk in self.blocks(rows):
+            yield blk.start, blk.stop, fn(blk, state)
 
     def close(self) -> None:
         if self._store is not None and hasattr(self._store, "close"):
@@ -292,6 +313,17 @@ def progress_bar(total: int, *, enabled: bool, desc: str) -> Any:
                 leave=False, file=sys.stderr, delay=0.5)
 
 
+def _metrics_of_block(blk: Any, state: tuple) -> Any:
+    """The metric sums of one block (a module-level function, so workers can run it)."""
+    model, k, top_k, name, kind = state
+    if kind == "classes":
+        _check_classes(np.asarray(blk.targets), k, name, blk.start)
+    acc = make_metrics(str(model.loss), n_outputs=k, top_k=top_k,
+                       output_names=model_names(model))
+    acc.update(np.asarray(model.scores(blk.X)), blk.targets, blk.weights)
+    return acc
+
+
 def evaluate(
     model: Any,
     source: Any,
@@ -299,6 +331,7 @@ def evaluate(
     top_k: int = 5,
     block_rows: int | None = None,
     progress: bool = False,
+    backend: str = "serial",
 ) -> dict[str, Any]:
     """Evaluate ``model`` on labelled data, streamed block by block.
 
@@ -317,6 +350,9 @@ def evaluate(
         Rows per block; default keeps a block's dense scores near 64 MiB.
     progress : bool
         Show a progress bar on a terminal.
+    backend : {"serial", "dask"}
+        ``"dask"`` scores the blocks on the current dask.distributed client's
+        workers and merges their metric sums in block order.
 
     Returns
     -------
@@ -341,12 +377,11 @@ def evaluate(
         acc = make_metrics(str(model.loss), n_outputs=k, top_k=top_k,
                            output_names=model_names(model))
         rows = score_block_rows(k, block_rows)
+        state = (model, k, top_k, src.name, src.target_kind)
         with progress_bar(src.n_rows, enabled=progress, desc="evaluate") as bar:
-            for blk in src.blocks(rows):
-                if src.target_kind == "classes":
-                    _check_classes(np.asarray(blk.targets), k, src.name, blk.start)
-                acc.update(np.asarray(model.scores(blk.X)), blk.targets, blk.weights)
-                bar.update(blk.stop - blk.start)
+            for a, z, part in src.map_blocks(rows, _metrics_of_block, state, backend=backend):
+                acc.merge(part)
+                bar.update(z - a)
         if not acc.total_weight > 0:
             raise InputError(
                 f"{src.name}: {acc.n_rows} rows and no positive row weight; evaluate on a "

@@ -176,6 +176,7 @@ def predict_to_file(
     block_rows: int | None = None,
     progress: bool = False,
     overwrite: bool = False,
+    backend: str = "serial",
 ) -> dict[str, Any]:
     """Predict every row of ``source`` and write the predictions to ``out``.
 
@@ -198,6 +199,9 @@ def predict_to_file(
         Show a progress bar on a terminal.
     overwrite : bool
         Replace an existing ``out``.
+    backend : {"serial", "dask"}
+        ``"dask"`` scores the blocks on the current dask.distributed client's
+        workers (a few blocks in flight) and writes them here in row order.
 
     Returns
     -------
@@ -228,14 +232,15 @@ def predict_to_file(
         _, k = check_compatible(model, src, need_targets=False)
         return _write(model, src, out, fmt, k=k, top_k=min(int(top_k), k), proba=proba,
                       squared=squared, block_rows=block_rows, progress=progress,
-                      overwrite=overwrite)
+                      overwrite=overwrite, backend=backend)
     finally:
         if close:
             src.close()
 
 
 def _write(model: Any, src: Any, out: Path, fmt: str, *, k: int, top_k: int, proba: bool,
-           squared: bool, block_rows: int | None, progress: bool, overwrite: bool) -> dict:
+           squared: bool, block_rows: int | None, progress: bool, overwrite: bool,
+           backend: str = "serial") -> dict:
     names_list = model_names(model) or [str(i) for i in range(k)]
     top = not squared and fmt != ".npy"
     kind = "values" if squared else ("probabilities" if proba else "scores")
@@ -259,7 +264,7 @@ def _write(model: Any, src: Any, out: Path, fmt: str, *, k: int, top_k: int, pro
                                  attrs=attrs)
         try:
             _fill(writer, model, src, k=k, top_k=top_k, proba=proba, top=top,
-                  block_rows=block_rows, progress=progress)
+                  block_rows=block_rows, progress=progress, backend=backend)
             writer.finish()
         except BaseException:
             writer.abort()
@@ -269,21 +274,26 @@ def _write(model: Any, src: Any, out: Path, fmt: str, *, k: int, top_k: int, pro
 
 
 def _fill(writer: Any, model: Any, src: Any, *, k: int, top_k: int, proba: bool, top: bool,
-          block_rows: int | None, progress: bool) -> None:
+          block_rows: int | None, progress: bool, backend: str = "serial") -> None:
     rows = score_block_rows(k, block_rows)
-    loss = str(model.loss)
+    state = (model, top_k, proba, top)
     with progress_bar(src.n_rows, enabled=progress, desc="predict") as bar:
-        for blk in src.blocks(rows):
-            labels = None
-            if top:
-                Z = np.asarray(model.scores(blk.X), dtype=np.float64)
-                labels, vals = top_k_of(Z, top_k)
-                if proba:
-                    vals = _probabilities(vals, Z, loss)
-            else:
-                vals = np.asarray(model.predict_proba(blk.X) if proba else model.scores(blk.X))
-            writer.write(blk.start, labels, vals)
-            bar.update(blk.stop - blk.start)
+        for a, z, (labels, vals) in src.map_blocks(rows, _predict_block, state,
+                                                   backend=backend):
+            writer.write(a, labels, vals)
+            bar.update(z - a)
+
+
+def _predict_block(blk: Any, state: tuple) -> tuple[np.ndarray | None, np.ndarray]:
+    """Top labels and their values (or all values) of one block (module-level for workers)."""
+    model, top_k, proba, top = state
+    if not top:
+        return None, np.asarray(model.predict_proba(blk.X) if proba else model.scores(blk.X))
+    Z = np.asarray(model.scores(blk.X), dtype=np.float64)
+    labels, vals = top_k_of(Z, top_k)
+    if proba:
+        vals = _probabilities(vals, Z, str(model.loss))
+    return labels, vals
 
 
 def _probabilities(top: np.ndarray, Z: np.ndarray, loss: str) -> np.ndarray:

@@ -126,3 +126,39 @@ def test_unreachable_scheduler_is_one_clear_error():
     with pytest.raises(ConfigError, match="cannot reach the scheduler"):
         with cluster_client("tcp://127.0.0.1:9", timeout=1):
             pass
+
+
+def _model(tmp_path, req):
+    from stream.model import Model, save_model
+
+    m = Model(U=req.U, s=req.s, V=req.V, b=req.b, loss="softmax")
+    return save_model(tmp_path / "model", m)
+
+
+def test_evaluate_and_predict_on_cluster_equal_serial(tmp_path, client):
+    from stream.evaluate import evaluate
+    from stream.predict import predict_to_file
+
+    path, req = _problem(tmp_path)
+    model_dir = _model(tmp_path, req)
+    serial = evaluate(model_dir, path, block_rows=700)
+    dist = evaluate(model_dir, path, block_rows=700, backend="dask")
+    for key in ("accuracy", "top_k_accuracy", "log_loss", "macro_f1", "n_rows"):
+        np.testing.assert_allclose(dist[key], serial[key], rtol=1e-12, err_msg=key)
+    a = predict_to_file(model_dir, path, tmp_path / "serial.csv", top_k=3, block_rows=700)
+    b = predict_to_file(model_dir, path, tmp_path / "dask.csv", top_k=3, block_rows=700,
+                        backend="dask")
+    assert a["n_rows"] == b["n_rows"] == 3000
+    assert (tmp_path / "serial.csv").read_text() == (tmp_path / "dask.csv").read_text()
+
+
+def test_cluster_needs_a_store_for_evaluate(client):
+    from stream.evaluate import evaluate
+
+    rng = np.random.default_rng(0)
+    X = sp.random(50, 10, density=0.2, format="csr", random_state=0)
+    from stream.model import Model
+
+    m = Model(U=np.eye(10, 2), s=np.ones(2), V=np.eye(3, 2), b=np.zeros(3), loss="softmax")
+    with pytest.raises(ConfigError, match="need a store path"):
+        evaluate(m, (X, rng.integers(0, 3, 50)), backend="dask")

@@ -8,6 +8,8 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
+from ._cluster_opt import add_cluster_option, cluster_backend
+
 HELP = "Evaluate a model on a labelled store (streamed): accuracy, F1, RMSE, ..."
 EXAMPLE = "ranktide evaluate run/model holdout.zarr --top 5 --json"
 
@@ -24,6 +26,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="rows per block (default: from a 64 MiB score budget)")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    add_cluster_option(parser)
 
 
 def aligned_table(rows: Sequence[Sequence[Any]], header: Sequence[str] | None = None) -> str:
@@ -81,8 +84,9 @@ def run(args: argparse.Namespace) -> int:
 
     if args.top < 1:
         raise ConfigError(f"--top {args.top}: must be at least 1")
-    res = evaluate(args.model, args.store, top_k=args.top, block_rows=args.block_rows,
-                   progress=not args.quiet)
+    with cluster_backend(args) as backend:
+        res = evaluate(args.model, args.store, top_k=args.top, block_rows=args.block_rows,
+                       progress=not args.quiet, backend=backend)
     if args.json:
         print(json.dumps(res, sort_keys=False))
     else:

@@ -5,6 +5,8 @@ from __future__ import annotations
 import argparse
 import json
 
+from ._cluster_opt import add_cluster_option, cluster_backend
+
 HELP = "Predict every row of a store (streamed) into CSV, .npy or zarr"
 EXAMPLE = "ranktide predict run/model holdout.zarr --out predictions.csv --top 5 --proba"
 
@@ -24,6 +26,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--overwrite", action="store_true", help="replace an existing output")
     parser.add_argument("--json", action="store_true", help="print a JSON summary")
     parser.add_argument("--quiet", action="store_true", help="no progress bar, no summary line")
+    add_cluster_option(parser)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -32,9 +35,11 @@ def run(args: argparse.Namespace) -> int:
 
     if args.top < 1:
         raise ConfigError(f"--top {args.top}: must be at least 1")
-    info = predict_to_file(args.model, args.store, args.out, top_k=args.top, proba=args.proba,
-                           block_rows=args.block_rows, progress=not args.quiet,
-                           overwrite=args.overwrite)
+    with cluster_backend(args) as backend:
+        info = predict_to_file(args.model, args.store, args.out, top_k=args.top,
+                               proba=args.proba, block_rows=args.block_rows,
+                               progress=not args.quiet, overwrite=args.overwrite,
+                               backend=backend)
     if args.json:
         print(json.dumps(info))
     elif not args.quiet:
