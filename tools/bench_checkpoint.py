@@ -18,7 +18,7 @@ seconds per checkpoint and its projection at the default cadence
 
 Usage::
 
-    .venv/bin/python tools/bench_checkpoint.py --out bench-out [--rows 5000]
+    .venv/bin/python tools/bench_checkpoint.py --out bench-out [--rows 20000]
 """
 
 from __future__ import annotations
@@ -139,11 +139,11 @@ def _table(rows: list[dict]) -> str:
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", required=True, help="directory for bench_checkpoint.json")
-    ap.add_argument("--rows", type=int, default=5_000)
+    ap.add_argument("--rows", type=int, default=20_000)
     ap.add_argument("--cols", type=int, default=20_000)
     ap.add_argument("--outputs", type=int, default=40)
     ap.add_argument("--per-row", type=int, default=40)
-    ap.add_argument("--max-passes", type=int, default=8)
+    ap.add_argument("--max-passes", type=int, default=60)
     ap.add_argument("--seed", type=int, default=0)
     args = ap.parse_args(argv)
 
