@@ -30,7 +30,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -444,7 +444,6 @@ class GreedySolver:
         self._check_state(self.state)
         self._rng = _generator(self.state.rng_state)
         self._plan_memory()
-        self._t_run = None
         self._history: list[dict] = []
 
     # ------------------------------------------------------------ set-up
@@ -807,8 +806,3 @@ class GreedySolver:
         closer = getattr(self.source, "close", None)
         if closer is not None:
             closer()
-
-
-def with_config(config: SolverConfig, **changes: Any) -> SolverConfig:
-    """A copy of ``config`` with some settings changed."""
-    return replace(config, **changes)
