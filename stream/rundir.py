@@ -55,6 +55,7 @@ RESUME_MUTABLE: frozenset[str] = frozenset(
         "tol",
         "checkpoint_seconds",
         "checkpoint_passes",
+        "backend",
         "quiet",
         "json",
         "progress",
@@ -523,6 +524,11 @@ def load_resume_point(
     )
 
 
+def _resume_backend(saved: str) -> str:
+    """The saved backend, or ``"serial"`` for one that needs a cluster session."""
+    return "serial" if saved == "dask" else saved
+
+
 def _check_changes(changes: Mapping[str, Any]) -> None:
     """Validate new budgets and cadence before anything in the run is touched."""
     tol = changes.get("tol")
@@ -548,6 +554,7 @@ def resume(
     tol: float | None = None,
     checkpoint_seconds: float | None = None,
     checkpoint_passes: int | None = None,
+    backend: str | None = None,
     stop: StopFlag | None = None,
     callback: Callable[[dict], Any] | None = None,
     on_pass: Callable[[dict], None] | None = None,
@@ -566,6 +573,10 @@ def resume(
         The training store, when it has moved (its fingerprint must match).
     max_passes, max_seconds, tol, checkpoint_seconds, checkpoint_passes : optional
         New budgets, tolerance and checkpoint cadence (the saved ones otherwise).
+    backend : str, optional
+        Pass backend for the rest of the run (results agree across backends to
+        rounding); by default the saved one, except that a run trained on a
+        cluster resumes on ``"serial"`` unless a backend is given.
     stop, callback, on_pass, progress
         As in :func:`stream.train.train`.
 
@@ -609,7 +620,7 @@ def resume(
             memory=s.get("memory"),
             seed=s["seed"],
             block_rows=s.get("block_rows"),
-            backend=s.get("backend", "serial"),
+            backend=backend or _resume_backend(s.get("backend", "serial")),
             class_weight=None if cw is None else np.asarray(cw, dtype=np.float64),
             callback=callback,
             progress=progress,

@@ -7,6 +7,8 @@ import json
 import sys
 import warnings
 
+from ._cluster_opt import add_cluster_option, cluster_backend
+
 HELP = "Continue an interrupted run from its latest valid checkpoint"
 EXAMPLE = "ranktide resume run1 --max-passes 200"
 
@@ -26,6 +28,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--checkpoint-passes", type=int, default=None, metavar="N",
                         help="passes between checkpoints (default: the run's)")
     parser.add_argument("--quiet", action="store_true", help="no per-pass table, no progress")
+    add_cluster_option(parser)
     parser.add_argument("--json", action="store_true",
                         help="print one JSON summary instead of the table")
 
@@ -52,7 +55,8 @@ def run(args: argparse.Namespace) -> int:
             printed["header"] = True
         print(pass_line(rec), flush=True)
 
-    with stop_on_signals() as stop, warnings.catch_warnings(record=True) as caught:
+    with (cluster_backend(args, default="") as backend, stop_on_signals() as stop,
+          warnings.catch_warnings(record=True) as caught):
         warnings.simplefilter("always", CheckpointWarning)
         try:
             res = resume(
@@ -60,7 +64,7 @@ def run(args: argparse.Namespace) -> int:
                 max_seconds=args.max_seconds, tol=args.tol,
                 checkpoint_seconds=args.checkpoint_seconds,
                 checkpoint_passes=args.checkpoint_passes, stop=stop, on_pass=on_pass,
-                progress=show and sys.stderr.isatty(),
+                progress=show and sys.stderr.isatty(), backend=backend,
             )
         finally:
             _warn_lines([w for w in caught if issubclass(w.category, CheckpointWarning)])

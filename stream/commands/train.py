@@ -8,6 +8,8 @@ import math
 import sys
 from typing import Any
 
+from ._cluster_opt import add_cluster_option, cluster_backend
+
 HELP = "Train a trace-norm regularized model on a store (one lam or a regularization path)"
 EXAMPLE = "ranktide train tickets.zarr --loss softmax --lam-frac 0.1 --out run1"
 
@@ -48,6 +50,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--block-rows", type=int, default=None, metavar="N",
                         help="rows per block (default from the memory budget)")
+    add_cluster_option(parser)
     parser.add_argument("--backend", choices=("serial", "threads"), default="serial",
                         help="pass backend (default serial)")
     parser.add_argument("--class-weight", default=None, metavar="balanced|FILE",
@@ -119,12 +122,13 @@ def run(args: argparse.Namespace) -> int:
             printed["header"] = True
         print(pass_line(rec), flush=True)
 
-    with stop_on_signals() as stop:  # SIGINT/SIGTERM: checkpoint, then exit 130/143
+    # SIGINT/SIGTERM: checkpoint, then exit 130/143
+    with cluster_backend(args) as backend, stop_on_signals() as stop:
         res = train(
             args.store, loss=args.loss, lam=args.lam, lam_frac=args.lam_frac, path=args.path,
             path_min_frac=args.path_min_frac, valid=args.valid, tol=args.tol,
             max_passes=args.max_passes, max_seconds=args.max_seconds, memory=args.memory,
-            seed=args.seed, block_rows=args.block_rows, backend=args.backend,
+            seed=args.seed, block_rows=args.block_rows, backend=backend,
             class_weight=args.class_weight, progress=show and sys.stderr.isatty(), out=args.out,
             overwrite=args.overwrite, on_pass=on_pass, stop=stop,
             checkpoint_seconds=args.checkpoint_seconds, checkpoint_passes=args.checkpoint_passes,
