@@ -26,3 +26,21 @@ def test_unknown_option_is_one_line_exit_2(capsys):
     assert exc.value.code == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "see --help" in err[0]
+
+
+def test_train_stopped_before_lam_max_prints_a_summary(tmp_path, capsys):
+    # A run whose time budget ends inside the lam_max phase has no lam yet: the summary
+    # line must still print (regression: it raised TypeError on None).
+    import numpy as np
+    import scipy.sparse as sp
+
+    from stream.store import write_store
+
+    rng = np.random.default_rng(0)
+    X = sp.random(200, 30, density=0.2, format="csr", random_state=1, dtype=np.float32)
+    write_store(tmp_path / "s.zarr", X, rng.integers(0, 4, 200).astype(np.int32))
+    code = cli.main(["train", str(tmp_path / "s.zarr"), "--loss", "softmax", "--lam-frac",
+                     "0.1", "--out", str(tmp_path / "run"), "--max-seconds", "1e-6", "--quiet"])
+    assert code == 0
+    out = capsys.readouterr().out
+    assert "max_seconds" in out and "lam_max -" in out

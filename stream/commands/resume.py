@@ -40,7 +40,7 @@ def _warn_lines(caught: list) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from stream.checkpoint import CheckpointWarning
-    from stream.commands.train import _summary, header_line, pass_line
+    from stream.commands.train import _summary, header_line, pass_line, summary_line
     from stream.rundir import resume
     from stream.signals import interrupted_message, stop_on_signals
 
@@ -74,7 +74,5 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(_summary(res), indent=2, sort_keys=True))
         return 0
-    print(f"{res.status}: objective {res.objective:.10g}, gap estimate {res.gap:.3e}, "
-          f"sigma1/lam {res.sigma_ratio:.6f}, rank {res.rank}, {res.passes} passes, "
-          f"{res.seconds:.1f} s; {res.message}; model in {res.run_dir}/model")
+    print(f"{summary_line(res)}; {res.message}; model in {res.run_dir}/model")
     return 0

@@ -86,6 +86,18 @@ def pass_line(rec: dict) -> str:
     return "  ".join(_cell(rec.get(key), w, fmt) for _, key, w, fmt in COLUMNS)
 
 
+def _num(x: Any, spec: str) -> str:
+    """``x`` formatted with ``spec``, or ``-`` when the run never computed it."""
+    return "-" if x is None else format(x, spec)
+
+
+def summary_line(res: Any) -> str:
+    """The final line's figures; values a run stopped too early to compute print as ``-``."""
+    return (f"{res.status}: objective {_num(res.objective, '.10g')}, gap estimate "
+            f"{_num(res.gap, '.3e')}, sigma1/lam {_num(res.sigma_ratio, '.6f')}, rank {res.rank}, "
+            f"{res.passes} passes, {_num(res.seconds, '.1f')} s")
+
+
 def _summary(res: Any) -> dict:
     out = {
         "status": res.status, "message": res.message, "objective": res.objective,
@@ -139,8 +151,6 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(_summary(res), indent=2, sort_keys=True))
         return 0
-    print(f"{res.status}: objective {res.objective:.10g}, gap estimate {res.gap:.3e}, "
-          f"sigma1/lam {res.sigma_ratio:.6f}, rank {res.rank}, {res.passes} passes, "
-          f"{res.seconds:.1f} s, lam {res.lam:.6g} (lam_max {res.lam_max:.6g}); {res.message}; "
-          f"model in {res.run_dir}/model")
+    lam = f"lam {_num(res.lam, '.6g')} (lam_max {_num(res.lam_max, '.6g')}); "
+    print(f"{summary_line(res)}, {lam}{res.message}; model in {res.run_dir}/model")
     return 0
