@@ -22,14 +22,18 @@ from .errors import ConfigError
 
 __all__ = ["ClusterSpec", "parse_cluster", "cluster_client", "open_store_cached"]
 
-# Environment every worker process gets before it starts: one thread each for
-# numba, OpenMP and BLAS, so N single-threaded workers never oversubscribe.
-WORKER_ENV = {
-    "NUMBA_NUM_THREADS": "1",
+# One thread each for numba, OpenMP and BLAS, so N single-threaded workers never
+# oversubscribe. BLAS and OpenMP read their variables when their libraries load, so
+# they are set before the worker process is spawned (the nanny does this by updating
+# the parent's environment, which cluster_client restores afterwards). numba's
+# variable goes in after spawn: set in the parent it would break numba there, which
+# refuses a NUMBA_NUM_THREADS different from the threads it already launched.
+WORKER_ENV_PRE_SPAWN = {
     "OMP_NUM_THREADS": "1",
     "OPENBLAS_NUM_THREADS": "1",
     "MKL_NUM_THREADS": "1",
 }
+WORKER_ENV = {"NUMBA_NUM_THREADS": "1"}
 
 
 @dataclass(frozen=True)
@@ -70,8 +74,8 @@ def cluster_client(spec: ClusterSpec | str, *, timeout: float = 10.0) -> Iterato
     """Start (or connect to) a cluster and yield a ``distributed.Client``.
 
     A local cluster uses worker processes started by spawn (forking after
-    OpenMP has run kills the child), one thread each, with :data:`WORKER_ENV`
-    set before each worker starts.
+    OpenMP has run kills the child), one thread each, with
+    :data:`WORKER_ENV_PRE_SPAWN` and :data:`WORKER_ENV` set in each worker.
     """
     try:
         import dask.config
@@ -82,8 +86,10 @@ def cluster_client(spec: ClusterSpec | str, *, timeout: float = 10.0) -> Iterato
         ) from None
     if isinstance(spec, str):
         spec = parse_cluster(spec)
-    env = {f"distributed.nanny.pre-spawn-environ.{k}": v for k, v in WORKER_ENV.items()}
+    env = {f"distributed.nanny.pre-spawn-environ.{k}": v for k, v in WORKER_ENV_PRE_SPAWN.items()}
+    env.update({f"distributed.nanny.environ.{k}": v for k, v in WORKER_ENV.items()})
     env["distributed.worker.multiprocessing-method"] = "spawn"
+    saved_env = dict(os.environ)
     with dask.config.set(env):
         if spec.is_local:
             cluster = LocalCluster(
@@ -106,6 +112,7 @@ def cluster_client(spec: ClusterSpec | str, *, timeout: float = 10.0) -> Iterato
                     f"--cluster {spec.address}: cannot reach the scheduler ({exc}); "
                     "check the address and that `dask scheduler` is running there"
                 ) from None
+    _restore_env(saved_env)
     register()
     try:
         yield client
@@ -113,6 +120,16 @@ def cluster_client(spec: ClusterSpec | str, *, timeout: float = 10.0) -> Iterato
         client.close()
         if cluster is not None:
             cluster.close()
+        _restore_env(saved_env)
+
+
+def _restore_env(saved: dict[str, str]) -> None:
+    """Undo what starting worker processes wrote into this process's environment."""
+    for key in set(os.environ) - set(saved):
+        del os.environ[key]
+    for key, value in saved.items():
+        if os.environ.get(key) != value:
+            os.environ[key] = value
 
 
 @functools.lru_cache(maxsize=8)

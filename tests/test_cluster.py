@@ -181,3 +181,16 @@ def test_trained_model_on_cluster_equals_serial(tmp_path, client):
     W_s = serial.model.U @ np.diag(serial.model.s) @ serial.model.V.T
     W_d = dist.model.U @ np.diag(dist.model.s) @ dist.model.V.T
     np.testing.assert_allclose(W_d, W_s, rtol=0, atol=1e-6 * np.abs(W_s).max())
+
+
+def test_workers_single_threaded_and_client_env_untouched(client):
+    # The client process keeps its own thread settings (numba refuses a changed
+    # NUMBA_NUM_THREADS once its threads run); each worker runs one numba thread.
+    assert "NUMBA_NUM_THREADS" not in os.environ or os.environ["NUMBA_NUM_THREADS"] != "1"
+
+    def probe():
+        import numba
+
+        return numba.config.NUMBA_NUM_THREADS, os.environ.get("OMP_NUM_THREADS")
+
+    assert set(client.run(probe).values()) == {(1, "1")}
