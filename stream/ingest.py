@@ -40,6 +40,7 @@ from .mmio import (
     load_npz_matrix_whole,
     read_header,
 )
+from .store_format import DEFAULT_CODEC
 from .targets_io import TargetSource, WeightSource, open_targets, open_weights
 
 __all__ = ["IngestSummary", "ingest", "DUPLICATES"]
@@ -582,7 +583,7 @@ def ingest(
     fmt: str | None = None,
     duplicates: str = "sum",
     backend: str | None = None,
-    codec: str = "zstd",
+    codec: str = DEFAULT_CODEC,
     overwrite: bool = False,
     memory: str | int | None = None,
     progress: bool = False,

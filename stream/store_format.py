@@ -32,6 +32,8 @@ ChunkCheck = Callable[[int, np.ndarray], None]
 CHUNK_ELEMENTS = 262_144
 DEFAULT_BLOCK_BYTES = 64 * 1024 * 1024
 CODECS = ("zstd", "lz4", "none")
+#: The codec new stores get unless told otherwise (chosen from tools/bench_store.py).
+DEFAULT_CODEC = "zstd"
 BACKENDS = ("zarr", "hdf5")
 KINDS = ("classes", "values", "tags")
 _SLAB_CHUNKS = 4

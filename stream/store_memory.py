@@ -17,7 +17,7 @@ import scipy.sparse as sp
 
 from . import store_format as _fmt
 from .errors import ConfigError, InputError
-from .store_format import _SLAB_CHUNKS, CHUNK_ELEMENTS, KINDS
+from .store_format import _SLAB_CHUNKS, CHUNK_ELEMENTS, DEFAULT_CODEC, KINDS
 from .store_reader import Store, open_store
 from .store_writer import StoreWriter, create_store
 
@@ -79,7 +79,7 @@ def write_store(
     weights: Any = None,
     names: Sequence[str] | None = None,
     backend: str | None = None,
-    codec: str = "zstd",
+    codec: str = DEFAULT_CODEC,
     overwrite: bool = False,
 ) -> Store:
     """Write an in-memory matrix (and targets, weights) as a store.

@@ -24,6 +24,7 @@ from .atomic import atomic_dir
 from .checksums import ALGORITHM, SegmentHasher, fingerprint
 from .errors import ConfigError, InputError, OutputExistsError
 from .store_format import (
+    DEFAULT_CODEC,
     FORMAT_NAME,
     FORMAT_VERSION,
     KINDS,
@@ -685,7 +686,7 @@ def create_store(
     n_outputs: int | None = None,
     names: Sequence[str] | None = None,
     backend: str | None = None,
-    codec: str = "zstd",
+    codec: str = DEFAULT_CODEC,
     overwrite: bool = False,
     source: str | None = None,
 ) -> StoreWriter:

@@ -6,6 +6,8 @@ import argparse
 import json
 import sys
 
+from ..store_format import DEFAULT_CODEC
+
 HELP = "Read a Matrix Market, triplet or .npz sparse matrix (and targets) into a store"
 EXAMPLE = (
     "ranktide ingest reviews.mtx --out reviews.zarr --labels reviews.labels "
@@ -32,8 +34,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="repeated (row, column) entries: add them (default) or refuse")
     parser.add_argument("--backend", choices=("zarr", "hdf5"),
                         help="store backend (default: hdf5 for .h5/.hdf5, else zarr)")
-    parser.add_argument("--codec", choices=("zstd", "lz4", "none"), default="zstd",
-                        help="compression (default zstd)")
+    parser.add_argument("--codec", choices=("zstd", "lz4", "none"), default=None,
+                        help=f"compression (default {DEFAULT_CODEC}, chosen by measured read "
+                             "speed; see tools/bench_store.py)")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing store")
     parser.add_argument("--memory", metavar="SIZE",
                         help="memory budget, e.g. 4GB or 25%% (default: a quarter of RAM)")
@@ -55,7 +58,7 @@ def run(args: argparse.Namespace) -> int:
         fmt=args.fmt,
         duplicates=args.duplicates,
         backend=args.backend,
-        codec=args.codec,
+        codec=args.codec or DEFAULT_CODEC,
         overwrite=args.overwrite,
         memory=args.memory,
         progress=not args.quiet,
