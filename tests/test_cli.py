@@ -44,3 +44,10 @@ def test_train_stopped_before_lam_max_prints_a_summary(tmp_path, capsys):
     assert code == 0
     out = capsys.readouterr().out
     assert "max_seconds" in out and "lam_max -" in out
+
+
+def test_every_command_has_quiet():
+    parser = cli.build_parser()
+    sub = next(a for a in parser._actions if a.dest == "command")
+    missing = [n for n, p in sub.choices.items() if "--quiet" not in p.format_help()]
+    assert missing == []

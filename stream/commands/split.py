@@ -23,6 +23,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="holdout store to create")
     parser.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+    parser.add_argument("--quiet", action="store_true", help="no summary")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -35,7 +36,7 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         json.dump(res, sys.stdout, indent=2)
         sys.stdout.write("\n")
-    else:
+    elif not args.quiet:
         rows = [("train", f"{res['train']} ({res['train_rows']:,} rows)"),
                 ("holdout", f"{res['holdout']} ({res['holdout_rows']:,} rows)"),
                 ("seed", str(res["seed"])),
