@@ -87,6 +87,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"ranktide {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # the reader of stdout went away (e.g. `| head`): stop quietly, as shell tools do
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
 
 
 if __name__ == "__main__":
