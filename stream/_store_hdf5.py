@@ -15,8 +15,6 @@ filter actually used in the attributes.
 from __future__ import annotations
 
 import json
-import os
-import threading
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
@@ -24,7 +22,7 @@ from typing import Any
 import numpy as np
 
 from .errors import StoreError
-from .store_format import ATTRS_KEY, StoreBackend
+from .store_format import ATTRS_KEY, DecodePool, StoreBackend
 
 __all__ = ["Hdf5Backend"]
 
@@ -32,29 +30,15 @@ _CACHE_BYTES = 64 * 1024 * 1024
 _SIGNATURE = b"\x89HDF\r\n\x1a\n"
 _ZSTD_FILTER = 32015  # registered HDF5 filter ids (hdf5plugin)
 _BLOSC_FILTER = 32001
-_POOL_LOCK = threading.Lock()
-_POOL: ThreadPoolExecutor | None = None
 #: Reads smaller than this decode inline: handing tiny chunks to threads costs more.
 _POOL_MIN_BYTES = 1 << 20
 
 
-def _forget_pool() -> None:
-    """In a forked child the pool's threads do not exist: start a new pool there."""
-    global _POOL
-    _POOL = None
-
-
-if hasattr(os, "register_at_fork"):
-    os.register_at_fork(after_in_child=_forget_pool)
+_DECODERS = DecodePool("store-decode-hdf5")
 
 
 def _pool() -> ThreadPoolExecutor:
-    global _POOL
-    with _POOL_LOCK:
-        if _POOL is None:
-            workers = max(1, os.cpu_count() or 1)
-            _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="store-decode-hdf5")
-        return _POOL
+    return _DECODERS.get()
 
 
 def _direct_decoder(ds: Any) -> Any:

@@ -26,13 +26,12 @@ from typing import Any
 import numpy as np
 
 from .errors import StoreError
-from .store_format import ATTRS_KEY, StoreBackend
+from .store_format import ATTRS_KEY, DecodePool, StoreBackend
 
 __all__ = ["ZarrBackend"]
 
 _CONFIG_LOCK = threading.Lock()
 _CONFIGURED = False
-_POOL: ThreadPoolExecutor | None = None
 #: Reads smaller than this decode inline: handing tiny chunks to threads costs more.
 _POOL_MIN_BYTES = 1 << 20
 
@@ -54,23 +53,11 @@ def _tune_zarr() -> None:
         _CONFIGURED = True
 
 
-def _forget_pool() -> None:
-    """In a forked child the pool's threads do not exist: start a new pool there."""
-    global _POOL
-    _POOL = None
-
-
-if hasattr(os, "register_at_fork"):
-    os.register_at_fork(after_in_child=_forget_pool)
+_DECODERS = DecodePool("store-decode-zarr")
 
 
 def _pool() -> ThreadPoolExecutor:
-    global _POOL
-    with _CONFIG_LOCK:
-        if _POOL is None:
-            workers = max(1, os.cpu_count() or 1)
-            _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="store-decode-zarr")
-        return _POOL
+    return _DECODERS.get()
 
 
 class _DirectChunks:

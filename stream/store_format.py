@@ -13,6 +13,7 @@ forwards the assignment) takes effect for the next store written or read.
 
 from __future__ import annotations
 
+import os
 from abc import ABC, abstractmethod
 from collections.abc import Callable
 from pathlib import Path
@@ -193,3 +194,36 @@ def _check_codec(codec: str) -> None:
 #: shuffle to 0.33 at ~710; level 3 gains < 1% of size and writes slower; level
 #: -1 decodes ~1.4x faster but packs to 0.57.
 ZSTD_LEVEL = 1
+
+
+class DecodePool:
+    """A process-wide thread pool for decoding chunks, started on first use.
+
+    A forked child has none of the parent's threads, so the pool is forgotten
+    there and started anew on the child's first use.
+    """
+
+    def __init__(self, prefix: str) -> None:
+        import threading
+
+        self._prefix = prefix
+        self._lock = threading.Lock()
+        self._pool: Any = None
+        if hasattr(os, "register_at_fork"):
+            os.register_at_fork(after_in_child=self._forget)
+
+    def _forget(self) -> None:
+        import threading
+
+        self._pool = None
+        self._lock = threading.Lock()
+
+    def get(self) -> Any:
+        """The pool (``concurrent.futures.ThreadPoolExecutor``), one thread per core."""
+        from concurrent.futures import ThreadPoolExecutor
+
+        with self._lock:
+            if self._pool is None:
+                self._pool = ThreadPoolExecutor(max_workers=max(1, os.cpu_count() or 1),
+                                                thread_name_prefix=self._prefix)
+            return self._pool

@@ -40,20 +40,12 @@ def _warn_lines(caught: list) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from stream.checkpoint import CheckpointWarning
-    from stream.commands.train import _summary, header_line, pass_line, summary_line
+    from stream.commands.train import _summary, pass_printer, summary_line
     from stream.rundir import resume
     from stream.signals import interrupted_message, stop_on_signals
 
     show = not (args.quiet or args.json)
-    printed = {"header": False}
-
-    def on_pass(rec: dict) -> None:
-        if not show:
-            return
-        if not printed["header"]:
-            print(header_line(), flush=True)
-            printed["header"] = True
-        print(pass_line(rec), flush=True)
+    on_pass = pass_printer(show)
 
     with (cluster_backend(args, default="") as backend, stop_on_signals() as stop,
           warnings.catch_warnings(record=True) as caught):

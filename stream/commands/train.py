@@ -86,6 +86,21 @@ def pass_line(rec: dict) -> str:
     return "  ".join(_cell(rec.get(key), w, fmt) for _, key, w, fmt in COLUMNS)
 
 
+def pass_printer(show: bool) -> Any:
+    """A per-pass callback printing the aligned table (header before the first row)."""
+    printed = [False]
+
+    def on_pass(rec: dict) -> None:
+        if not show:
+            return
+        if not printed[0]:
+            print(header_line(), flush=True)
+            printed[0] = True
+        print(pass_line(rec), flush=True)
+
+    return on_pass
+
+
 def _num(x: Any, spec: str) -> str:
     """``x`` formatted with ``spec``, or ``-`` when the run never computed it."""
     return "-" if x is None else format(x, spec)
@@ -124,15 +139,7 @@ def run(args: argparse.Namespace) -> int:
     if args.valid is not None and args.path is None:
         raise ConfigError("--valid is used with --path only; drop it or add --path M")
     show = not (args.quiet or args.json)
-    printed = {"header": False}
-
-    def on_pass(rec: dict) -> None:
-        if not show:
-            return
-        if not printed["header"]:
-            print(header_line(), flush=True)
-            printed["header"] = True
-        print(pass_line(rec), flush=True)
+    on_pass = pass_printer(show)
 
     # SIGINT/SIGTERM: checkpoint, then exit 130/143
     with cluster_backend(args) as backend, stop_on_signals() as stop:
