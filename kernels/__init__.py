@@ -10,9 +10,10 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
-from ._config import ensure_cache_dir
+from ._config import ensure_cache_dir, ensure_passive_wait
 
 ensure_cache_dir()
+ensure_passive_wait()
 
 
 def __getattr__(name: str) -> Any:
