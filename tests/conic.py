@@ -114,3 +114,21 @@ def solve_conic(
         W=np.asarray(W.value, dtype=np.float64), b=bval, objective=float(prob.value) / scale,
         status=str(prob.status),
     )
+
+
+def orthonormal_centred_design(n: int, d: int, seed: int, *, float32: bool = False) -> np.ndarray:
+    """X (n, d) with X^T X = I and 1^T X = 0 (so the intercept decouples).
+
+    ``float32=True`` rounds it to float32 values, which is what a store holds.
+    """
+    rng = np.random.default_rng(seed)
+    A = rng.standard_normal((n, d))
+    A -= A.mean(axis=0)
+    Q, _ = np.linalg.qr(A)
+    return Q.astype(np.float32).astype(np.float64) if float32 else Q
+
+
+def svt_numpy(A: np.ndarray, tau: float) -> np.ndarray:
+    """Singular value thresholding in plain numpy (Cai, Candès & Shen 2010)."""
+    U, s, Vt = np.linalg.svd(A, full_matrices=False)
+    return (U * np.maximum(s - tau, 0.0)) @ Vt

@@ -13,7 +13,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.sparse as sp
-from conic import solve_conic
+from conic import orthonormal_centred_design, solve_conic, svt_numpy
 from scipy.optimize import check_grad
 from scipy.special import expit
 from scipy.special import softmax as sm
@@ -71,24 +71,10 @@ def test_reference_matches_cvxpy_clarabel(loss):
     assert abs(F - ref.objective) <= 1e-12 * abs(F)
 
 
-def _orthonormal_centred_design(n, d, seed):
-    """X (n, d) with X^T X = I and 1^T X = 0 (so the intercept decouples)."""
-    rng = np.random.default_rng(seed)
-    A = rng.standard_normal((n, d))
-    A -= A.mean(axis=0)
-    Q, _ = np.linalg.qr(A)
-    return Q
-
-
-def _svt_numpy(A, tau):
-    U, s, Vt = np.linalg.svd(A, full_matrices=False)
-    return (U * np.maximum(s - tau, 0.0)) @ Vt
-
-
 @pytest.mark.parametrize("keep", [1, 3])
 def test_squared_orthogonal_design_closed_form(keep):
     n, d, k = 120, 15, 6
-    X = _orthonormal_centred_design(n, d, seed=2)
+    X = orthonormal_centred_design(n, d, seed=2)
     rng = np.random.default_rng(3)
     Y = rng.standard_normal((n, k)) + np.arange(k)
     sv = np.linalg.svd(X.T @ Y, compute_uv=False)
@@ -96,7 +82,7 @@ def test_squared_orthogonal_design_closed_form(keep):
     ref = reference_solve(X, Y, loss="squared", lam=lam, tol=1e-12)
     # Closed form: f = (1/2n)||XW + 1b^T - Y||^2 with X^T X = I, 1^T X = 0 gives
     # b* = mean(Y) and W* = SVT(X^T Y, n lam) (Cai, Candès & Shen 2010, Thm 2.1).
-    W_star = _svt_numpy(X.T @ Y, n * lam)
+    W_star = svt_numpy(X.T @ Y, n * lam)
     np.testing.assert_allclose(ref.W, W_star, atol=1e-8)
     np.testing.assert_allclose(ref.b, Y.mean(axis=0), atol=1e-8)
     assert ref.rank(rtol=1e-6) == keep
@@ -104,7 +90,7 @@ def test_squared_orthogonal_design_closed_form(keep):
 
 def test_rank_one_targets_closed_form():
     n, d, k = 100, 12, 5
-    X = _orthonormal_centred_design(n, d, seed=4)
+    X = orthonormal_centred_design(n, d, seed=4)
     rng = np.random.default_rng(5)
     u = rng.standard_normal(d)
     u /= np.linalg.norm(u)
@@ -121,7 +107,7 @@ def test_rank_one_targets_closed_form():
 
 def test_lam_max_squared_closed_form_and_zero_solution():
     n, d, k = 150, 10, 4
-    X = _orthonormal_centred_design(n, d, seed=6)
+    X = orthonormal_centred_design(n, d, seed=6)
     Y = np.random.default_rng(7).standard_normal((n, k))
     lm = lam_max_dense(X, Y, "squared")
     # Closed form: G(0, mean Y) = -X^T (Y - mean Y) / n, so lam_max = ||X^T Y_c||_2 / n.

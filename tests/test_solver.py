@@ -17,7 +17,7 @@ import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
-from conic import solve_conic
+from conic import orthonormal_centred_design, solve_conic, svt_numpy
 from threadpoolctl import threadpool_limits
 
 from stream.reference import dense_gradient, lam_max_dense, reference_solve
@@ -148,23 +148,9 @@ def test_kkt_conditions_at_returned_model(solved, loss, weighted):
 # --------------------------------------------------------------------------- closed forms
 
 
-def _orthonormal_centred_design(n, d, seed):
-    """X (n, d) with X^T X = I and 1^T X = 0, rounded to float32 (what the solver stores)."""
-    rng = np.random.default_rng(seed)
-    A = rng.standard_normal((n, d))
-    A -= A.mean(axis=0)
-    Q, _ = np.linalg.qr(A)
-    return Q.astype(np.float32).astype(np.float64)
-
-
-def _svt_numpy(A, tau):
-    U, s, Vt = np.linalg.svd(A, full_matrices=False)
-    return (U * np.maximum(s - tau, 0.0)) @ Vt
-
-
 def test_squared_orthogonal_design_closed_form():
     n, d, k = 120, 12, 6
-    X = _orthonormal_centred_design(n, d, seed=2)
+    X = orthonormal_centred_design(n, d, seed=2, float32=True)
     rng = np.random.default_rng(3)
     Y = (rng.standard_normal((n, k)) + np.arange(k)).astype(np.float32).astype(np.float64)
     sv = np.linalg.svd(X.T @ Y, compute_uv=False)
@@ -172,14 +158,14 @@ def test_squared_orthogonal_design_closed_form():
     res = train((sp.csr_matrix(X), Y), loss="squared", lam=lam, tol=TOL, max_passes=200)
     # Closed form (Cai, Candès & Shen 2010, Thm 2.1): W* = SVT(X^T Y, n lam), b* = mean(Y);
     # exact for X^T X = I, here to the float32 rounding of X (~1e-7).
-    np.testing.assert_allclose(_W(res.model), _svt_numpy(X.T @ Y, n * lam), atol=1e-5)
+    np.testing.assert_allclose(_W(res.model), svt_numpy(X.T @ Y, n * lam), atol=1e-5)
     np.testing.assert_allclose(res.model.b, Y.mean(axis=0), atol=1e-5)
     assert res.model.rank == 2
 
 
 def test_rank_one_targets_closed_form():
     n, d, k = 100, 10, 5
-    X = _orthonormal_centred_design(n, d, seed=4)
+    X = orthonormal_centred_design(n, d, seed=4, float32=True)
     rng = np.random.default_rng(5)
     u = rng.standard_normal(d)
     u /= np.linalg.norm(u)
