@@ -401,6 +401,7 @@ def gradient_pass(
     n_threads: int | None = None,
     profile: PassProfile | bool | None = None,
     progress: bool = False,
+    should_stop: Any = None,
 ) -> PassResult:
     """One pass over ``source`` at the model of ``request``.
 
@@ -408,8 +409,9 @@ def gradient_pass(
     ----------
     source : Store, path, scipy CSR tuple ``(X, targets[, weights])`` or source
     request : PassRequest
-    backend, block_rows, block_bytes, n_threads, progress
-        As in :func:`stream.passes.run_pass`.
+    backend, block_rows, block_bytes, n_threads, progress, should_stop
+        As in :func:`stream.passes.run_pass` (``should_stop`` abandons the
+        pass at a block boundary with :class:`stream.signals.StopRequested`).
     profile : PassProfile or bool, optional
         A profile to append this pass's timings to, or True for a new one.
 
@@ -444,6 +446,7 @@ def gradient_pass(
             profile=prof,
             progress=progress,
             desc="gradient pass",
+            should_stop=should_stop,
         )
         acc = combine_partials([acc])  # adds the last pending terms (a one-block pass)
         return _finalize(acc, st, prof, where)

@@ -41,6 +41,7 @@ from typing import Any
 
 from .errors import ConfigError
 from .memsource import as_source
+from .signals import StopRequested
 
 __all__ = [
     "run_pass",
@@ -228,7 +229,9 @@ class PassJob:
     ``ranges`` are the row blocks in order; ``fold`` takes
     ``(index, block, partial, phases, compute_s, wait_s)`` strictly in block
     order (backends that reduce remotely call ``combine`` themselves and hand
-    ``fold`` their range partials).
+    ``fold`` their range partials). ``fold`` raises
+    :class:`stream.signals.StopRequested` when ``should_stop`` fires; a
+    backend that waits on remote work polls ``should_stop`` itself.
     """
 
     source: Any
@@ -239,6 +242,7 @@ class PassJob:
     n_threads: int
     timed: bool
     fold: Callable[..., None]
+    should_stop: Callable[[], bool] | None = None
 
 
 Backend = Callable[[PassJob], None]
@@ -415,8 +419,10 @@ _EMPTY = object()
 
 class _Folder:
     def __init__(
-        self, combine: Callable, init: Any, profile: PassProfile | None, pass_index: int, bar: Any
+        self, combine: Callable, init: Any, profile: PassProfile | None, pass_index: int, bar: Any,
+        should_stop: Callable[[], bool] | None = None,
     ) -> None:
+        self.should_stop = should_stop
         self.combine = combine
         self.acc = _EMPTY if init is None else init
         self.profile = profile
@@ -452,6 +458,8 @@ class _Folder:
                          timer.phases)
         if self.bar is not None:
             self._progress(block)
+        if self.should_stop is not None and self.should_stop():
+            raise StopRequested(f"stop requested after block {index}")
 
     def _fold_in(self, partial: Any) -> Any:
         # the first partial goes through combine too, so work a combine does per
@@ -538,6 +546,7 @@ def run_pass(
     progress: bool = False,
     init: Any = None,
     desc: str = "pass",
+    should_stop: Callable[[], bool] | None = None,
 ) -> Any:
     """Run one pass over ``source`` and return the folded partials.
 
@@ -569,6 +578,12 @@ def run_pass(
     init : object, optional
         Starting value of the fold (an identity partial, consumed by the
         pass); by default ``combine([first block's partial])``.
+    desc : str
+        Label of the progress bar.
+    should_stop : callable, optional
+        Checked after each block is folded in; when it returns True the rest
+        of the pass is abandoned and :class:`stream.signals.StopRequested` is
+        raised (the partial result is dropped).
 
     Returns
     -------
@@ -595,7 +610,7 @@ def run_pass(
                 backend=backend, n_threads=threads, n_blocks=len(ranges), rows=rows
             )
         bar = _progress_bar(progress, len(ranges), desc)
-        folder = _Folder(combine, init, profile, pass_index, bar)
+        folder = _Folder(combine, init, profile, pass_index, bar, should_stop)
         t0 = time.perf_counter()
         try:
             fn(
@@ -608,6 +623,7 @@ def run_pass(
                     n_threads=threads,
                     timed=profile is not None,
                     fold=folder,
+                    should_stop=should_stop,
                 )
             )
         finally:

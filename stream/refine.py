@@ -20,12 +20,14 @@ statistics only.
 from __future__ import annotations
 
 import contextlib
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
 
 from .errors import ConfigError
+from .signals import StopRequested
 
 __all__ = ["RefineResult", "refine", "svt", "loss_and_residual"]
 
@@ -325,6 +327,7 @@ def refine(
     max_iter: int,
     class_weights: np.ndarray | None = None,
     check_every: int = 5,
+    should_stop: Callable[[], bool] | None = None,
 ) -> RefineResult:
     """Solve the refinement ``min f(XQ N + b) + lam ||N||_*`` on cached projections.
 
@@ -353,6 +356,9 @@ def refine(
         Softmax only: row ``i`` weighs ``w_i * class_weights[y_i]``.
     check_every : int
         Steps between two certificate checks (each costs one extra ``n q k`` product).
+    should_stop : callable, optional
+        Checked before every step; when it returns True the refinement is
+        abandoned with :class:`stream.signals.StopRequested`.
 
     Returns
     -------
@@ -415,8 +421,10 @@ def refine(
     w = w / total
     with _blas_one_thread():
         if loss == "squared":
-            return _refine_squared(A, Y, w, lam, N0, b0, tol, int(max_iter), check_every)
-        return _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, int(max_iter), check_every)
+            return _refine_squared(A, Y, w, lam, N0, b0, tol, int(max_iter), check_every,
+                                   should_stop)
+        return _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, int(max_iter), check_every,
+                              should_stop)
 
 
 def _lipschitz_bound(A: np.ndarray, w: np.ndarray, curvature: float) -> float:
@@ -430,7 +438,13 @@ def _lipschitz_bound(A: np.ndarray, w: np.ndarray, curvature: float) -> float:
     return curvature * float(np.linalg.eigvalsh(M)[-1]) * (1.0 + 1e-12)
 
 
-def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every) -> RefineResult:
+def _check_stop(should_stop: Callable[[], bool] | None, it: int) -> None:
+    if should_stop is not None and should_stop():
+        raise StopRequested(f"stop requested at refinement step {it}")
+
+
+def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
+                   should_stop=None) -> RefineResult:
     L_max = _lipschitz_bound(A, w, _CURVATURE[loss])
     n, k = A.shape[0], N0.shape[1]
     # tiny score matrices: the parallel kernels' start-up costs more than the arithmetic
@@ -451,6 +465,7 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every) -> Re
     gap_rel, gb = np.inf, np.inf
     converged = False
     while it < max_iter:
+        _check_stop(should_stop, it)
         it += 1
         t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
         beta = (t - 1.0) / t_next
@@ -502,7 +517,8 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every) -> Re
     )
 
 
-def _refine_squared(A, Y, w, lam, N0, b0, tol, max_iter, check_every) -> RefineResult:
+def _refine_squared(A, Y, w, lam, N0, b0, tol, max_iter, check_every,
+                    should_stop=None) -> RefineResult:
     abar = A.T @ w
     ybar = Y.T @ w
     Aw = A * w[:, None]
@@ -526,6 +542,7 @@ def _refine_squared(A, Y, w, lam, N0, b0, tol, max_iter, check_every) -> RefineR
     gap_rel = np.inf
     converged = False
     while it < max_iter:
+        _check_stop(should_stop, it)
         it += 1
         t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
         beta = (t - 1.0) / t_next

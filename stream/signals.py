@@ -1,8 +1,9 @@
 """Graceful stop on SIGINT / SIGTERM.
 
 :func:`stop_on_signals` installs handlers that only set a flag; the pass
-engine and the solver check the flag between blocks and passes, the trainer
-then writes a checkpoint and the command exits with 128 + the signal number
+engine checks it after every block and the refinement after every step (the
+unfinished outer iteration is abandoned, see :class:`StopRequested`), the
+trainer then writes a checkpoint and the command exits with 128 + the signal number
 (130 for SIGINT, 143 for SIGTERM). A second signal while stopping raises
 :class:`KeyboardInterrupt` so a stuck run can still be aborted; checkpoint
 writes are atomic, so even that leaves a valid run directory.
@@ -15,7 +16,17 @@ import signal
 import threading
 from collections.abc import Iterator, Sequence
 
-__all__ = ["StopFlag", "stop_on_signals", "interrupted_message"]
+__all__ = ["StopFlag", "StopRequested", "stop_on_signals", "interrupted_message"]
+
+
+class StopRequested(Exception):
+    """Raised inside a pass or a refinement when its stop check fires.
+
+    The pass engine raises it at a block boundary (the current block finished,
+    later ones abandoned); the solver catches it, puts its state back to where
+    it was before the interrupted outer iteration and ends the run with status
+    ``"interrupted"``, so a checkpoint written then resumes exactly.
+    """
 
 
 class StopFlag:

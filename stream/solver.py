@@ -30,7 +30,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from typing import Any
 
 import numpy as np
@@ -38,6 +38,7 @@ import numpy as np
 from .errors import CheckpointError, ConfigError
 from .power import orth_against
 from .refine import _blas_one_thread, refine
+from .signals import StopRequested
 
 __all__ = ["SolverConfig", "SolverState", "GreedySolver", "SolverResult",
            "sigma1_lower_bound", "gap_estimate"]
@@ -420,6 +421,12 @@ class GreedySolver:
     pass_fn : callable, optional
         ``pass_fn(source, request, **kw) -> PassResult``; default
         :func:`stream.gradient_pass.gradient_pass`.
+    stop : callable, optional
+        ``stop() -> bool``, checked after every block of a pass and every
+        refinement step (e.g. a :class:`stream.signals.StopFlag`). When it
+        fires, the unfinished outer iteration is abandoned, ``self.state`` is
+        put back to where it was before it, and :meth:`run` returns status
+        ``"interrupted"``: a checkpoint of that state resumes exactly.
 
     Notes
     -----
@@ -429,7 +436,8 @@ class GreedySolver:
     """
 
     def __init__(self, source: Any, config: SolverConfig, *, state: SolverState | None = None,
-                 progress: bool = False, pass_fn: Callable | None = None) -> None:
+                 progress: bool = False, pass_fn: Callable | None = None,
+                 stop: Callable[[], bool] | None = None) -> None:
         from .memsource import as_source
 
         self.config = config
@@ -437,6 +445,7 @@ class GreedySolver:
         self.n, self.d = (int(x) for x in self.source.shape)
         self.k = int(self.source.n_outputs)
         self.progress = progress
+        self.stop = stop
         if pass_fn is None:
             from .gradient_pass import gradient_pass as pass_fn
         self._pass_fn = pass_fn
@@ -530,7 +539,8 @@ class GreedySolver:
         if rows is None and cfg.block_bytes is None:
             rows = self.plan.block_rows
         res = self._pass_fn(self.source, req, backend=cfg.backend, block_rows=rows,
-                            block_bytes=cfg.block_bytes, profile=prof, progress=self.progress)
+                            block_bytes=cfg.block_bytes, profile=prof, progress=self.progress,
+                            should_stop=self.stop)
         st.passes += 1
         st.step_passes += 1
         return req, res, prof
@@ -613,7 +623,7 @@ class GreedySolver:
         t0 = time.perf_counter()
         out = refine(A, targets, weights, cfg.loss, st.lam, N0, req.b,
                      tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
-                     class_weights=cfg.class_weights)
+                     class_weights=cfg.class_weights, should_stop=self.stop)
         secs = time.perf_counter() - t0
         U_new = Q @ out.A
         # re-orthonormalize against rounding of the product Q A
@@ -642,8 +652,20 @@ class GreedySolver:
         thin (d x q, k x q); measured on the shared 2-core machine, an SVD of a 2000 x 50
         gradient took 1.8 s with OpenBLAS's thread pool against the kernels' threads.
         """
-        with _blas_one_thread():
-            return self._step()
+        # the iteration replaces the state's arrays (never writes into them), so a
+        # shallow copy is the state as it was before it
+        st = self.state
+        before = {f.name: getattr(st, f.name) for f in fields(st)}
+        t0 = time.perf_counter()
+        try:
+            with _blas_one_thread():
+                return self._step()
+        except StopRequested:
+            for name, value in before.items():
+                setattr(st, name, value)
+            st.seconds += time.perf_counter() - t0  # spent; the work is redone on resume
+            self._rng = _generator(st.rng_state)
+            raise
 
     def _step(self) -> dict:
         cfg, st = self.config, self.state
@@ -767,7 +789,14 @@ class GreedySolver:
             if cfg.max_seconds is not None and time.perf_counter() - t_start >= cfg.max_seconds:
                 status = "max_seconds"
                 break
-            rec = self.step()
+            if self.stop is not None and self.stop():
+                status = "interrupted"
+                break
+            try:
+                rec = self.step()
+            except StopRequested:
+                status = "interrupted"
+                break
             if st.status == "lam_max":
                 status = "lam_max"
                 break
@@ -792,6 +821,7 @@ class GreedySolver:
                           f"estimate {rel:.2e}",
             "max_seconds": f"stopped at the time budget; relative gap estimate {rel:.2e}",
             "callback": "stopped by the callback",
+            "interrupted": "interrupted; the unfinished pass was abandoned",
             "lam_max": f"lam_max = {st.lam_max:.6g} found; set lam to fit"
             if st.lam_max else "lam_max phase",
         }

@@ -71,7 +71,8 @@ class TrainResult:
     Attributes
     ----------
     model : stream.model.Model
-        The fitted model (on a path: the best lam's).
+        The fitted model (on a path: the best lam's); None when a path was
+        interrupted inside its first value.
     objective : float
         ``F(W, b)`` of the model.
     gap : float
@@ -380,8 +381,10 @@ def train(
         (default 60) or every ``checkpoint_passes`` passes, whichever comes
         first, at the end of each path step and at the end.
     stop : stream.signals.StopFlag, optional
-        Checked after each pass; when set, a checkpoint is written and the
-        run ends with status ``"interrupted"`` (no model is written).
+        Checked after every block and refinement step; when set, the
+        unfinished outer iteration is abandoned, a checkpoint of the state
+        before it is written and the run ends with status ``"interrupted"``
+        (no model is written).
     resume_point : stream.rundir.ResumePoint, optional
         Continue a run from a checkpoint (see :func:`stream.rundir.resume`).
 
@@ -411,7 +414,8 @@ def train(
         if resume_point is not None:
             cfg = resume_point.solver_config(cfg)
         solver = GreedySolver(src, cfg, progress=progress,
-                              state=None if resume_point is None else resume_point.state)
+                              state=None if resume_point is None else resume_point.state,
+                              stop=stop)
         fingerprint = _fingerprint(src)
         run = None if resume_point is None else resume_point.run
         if out is not None and run is None:
@@ -539,7 +543,10 @@ def _run_solver(solver: GreedySolver, rec: _Recorder, deadline: float | None) ->
     from dataclasses import replace
 
     solver.config = replace(solver.config, max_seconds=_seconds_left(deadline))
-    return solver.run(callback=rec)
+    fit = solver.run(callback=rec)
+    if fit.status == "interrupted" and rec.hook is not None:
+        rec.hook()  # the stop flag is set: this writes the checkpoint
+    return fit
 
 
 def _grad_b(history: list) -> float:
@@ -577,11 +584,11 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
     pos = ctx.path
     if pos is None:  # a fresh path (or a resume from inside the lam_max phase)
         first = _run_solver(solver, rec, deadline)  # lam_max phase only (lam is None)
-        if first.status == "callback":
+        if first.status in ("callback", "interrupted"):
             model = _model(src, loss, first, _fit_meta(first, fingerprint, math.nan))
             return TrainResult(model=model, objective=first.objective, gap=first.gap,
                                sigma_ratio=first.sigma_ratio, rank=first.rank,
-                               passes=first.passes, seconds=first.seconds, status="callback",
+                               passes=first.passes, seconds=first.seconds, status=first.status,
                                message=first.message, history=list(rec.history),
                                lam=first.lam, lam_max=first.lam_max)
         if first.status != "lam_max":
@@ -612,6 +619,9 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
             solver.set_lam(lam_j, path_index=j)
             pos["started"] = True
         fit = _run_solver(solver, rec, deadline)
+        if fit.status == "interrupted":  # the checkpoint keeps the position inside this value
+            status, message = fit.status, f"path interrupted at value {j + 1} of {m}"
+            break
         gb = _grad_b(rec.history)
         model = _model(src, loss, fit, _fit_meta(fit, fingerprint, gb))
         metrics, score = _validation(model, valid, loss, block_rows)
@@ -653,6 +663,12 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
             ctx.recorder.checkpoint(solver.state)
     status = status or pos["status"]
     message = message or pos["message"]
+    if not points:  # interrupted inside the first value: nothing to report but the state
+        st = solver.state
+        return TrainResult(model=None, objective=math.nan, gap=math.nan, sigma_ratio=math.nan,
+                           rank=st.rank, passes=st.passes, seconds=st.seconds, status=status,
+                           message=message, history=list(rec.history), lam=lams[0],
+                           lam_max=lam_max)
     best = _point_best(points, higher)
     pt = points[best]
     if not message:

@@ -130,6 +130,33 @@ def test_errors_propagate_without_hanging(backend):
     assert not [t for t in threading.enumerate() if t.name.startswith("ranktide-")]
 
 
+@pytest.mark.parametrize("backend", ["serial", "threads"])
+def test_stop_check_abandons_the_pass_at_a_block_boundary(backend):
+    from stream.signals import StopFlag, StopRequested
+
+    X, y, w = _data(n=200)
+    computed: list[int] = []
+    flag = StopFlag()
+
+    def fold_watch(parts):
+        out = _sums_combine(parts)
+        if len(out["starts"]) == 3:  # the third block has been folded in
+            flag.request()
+        return out
+
+    def block(b, state):
+        computed.append(b.start)
+        return _sums_block(b, state)
+
+    with pytest.raises(StopRequested, match="after block 2"):
+        run_pass(MemorySource(X, y, weights=w), block, fold_watch, state=1.0, block_rows=10,
+                 backend=backend, n_threads=2, should_stop=flag)
+    # serial computes nothing past the stop; threads at most the blocks already in flight
+    assert max(computed) <= (20 if backend == "serial" else 20 + 10 * 3)
+    time.sleep(0.2)
+    assert not [t for t in threading.enumerate() if t.name.startswith("ranktide-")]
+
+
 def test_backend_registry_and_errors():
     X, y, w = _data(n=30)
     src = MemorySource(X, y, weights=w)

@@ -66,6 +66,26 @@ if kind == "refine":
         return real_refine(*a, **k)
 
     S.refine = refine
+if kind == "slow":  # blocks 2.. of the at-th pass take a second each (a signal lands there)
+    import stream.gradient_pass as G
+    real_run_pass, calls = G.run_pass, [0]
+
+    def run_pass(source, block_fn, combine, **kw):
+        calls[0] += 1
+        if calls[0] != at:
+            return real_run_pass(source, block_fn, combine, **kw)
+        seen = [0]
+
+        def fn(block, state):
+            seen[0] += 1
+            if seen[0] >= 2:
+                Path(os.environ["RT_PAUSE_FILE"]).write_text(str(seen[0]))
+                time.sleep(1.0)
+            return block_fn(block, state)
+
+        return real_run_pass(source, fn, combine, **kw)
+
+    G.run_pass = run_pass
 if kind == "pass":
     import stream.gradient_pass as G
     real_run_pass, calls = G.run_pass, [0]
@@ -258,6 +278,81 @@ def test_sigterm_and_sigint_checkpoint_and_say_how_to_resume(work):
     assert "resume with: ranktide resume" in err
 
     assert main(["resume", str(run), "--quiet"]) == 0
+    _assert_same_model(run, ref)
+
+
+def test_signal_inside_a_pass_abandons_it_at_the_block_boundary(work):
+    """SIGTERM while block 2 of pass 4 computes: that block finishes, blocks 3-4 are
+    abandoned, the checkpoint holds the state before pass 4 and resume is exact."""
+    root, ref = work
+    run = root / "midpass"
+    pause = root / "midpass-paused"
+    t0 = time.monotonic()
+    proc = _driver(root, _train_args(root, run), RT_KIND="slow", RT_AT="4",
+                   RT_PAUSE_FILE=str(pause))  # fmt: skip
+    assert _wait(proc, pause.exists, "block 2 of pass 4")
+    proc.send_signal(signal.SIGTERM)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 143, err
+    assert f"resume with: ranktide resume {run}" in err
+    assert pause.read_text() == "2"  # no later block of the pass started
+    assert _history_lines(run) == 3  # pass 4 never finished, so it is not logged
+    assert _checkpointed_history(run) == 3
+    assert time.monotonic() - t0 < 60
+    assert main(["resume", str(run), "--quiet"]) == 0
+    _assert_same_model(run, ref)
+
+
+@pytest.mark.parametrize("where", ["block", "refine"])
+def test_stop_inside_a_pass_or_a_refinement_restores_the_state(work, monkeypatch, where):
+    """In process: a stop request during a block (of pass 5), or during the third
+    refinement, leaves the solver state as it was before that outer iteration (that is
+    what is checkpointed), and resuming reaches the uninterrupted model."""
+    import stream.gradient_pass as G
+    import stream.solver as S
+    from stream.rundir import resume
+    from stream.signals import StopFlag
+    from stream.train import train
+
+    root, ref = work
+    flag, passes, refines = StopFlag(), [0], [0]
+    real_run_pass, real_refine = G.run_pass, S.refine
+
+    def run_pass(source, block_fn, combine, **k):
+        passes[0] += 1
+        if where != "block" or passes[0] != 5:
+            return real_run_pass(source, block_fn, combine, **k)
+
+        def fn(block, state):
+            if block.start == 50:
+                flag.request(signal.SIGINT)
+            return block_fn(block, state)
+
+        return real_run_pass(source, fn, combine, **k)
+
+    def refine(*a, **k):
+        refines[0] += 1
+        if where == "refine" and refines[0] == 3:
+            flag.request(signal.SIGINT)
+        return real_refine(*a, **k)
+
+    monkeypatch.setattr(G, "run_pass", run_pass)
+    monkeypatch.setattr(S, "refine", refine)
+    run = root / f"stopped-{where}"
+    part = train(str(root / "s.zarr"), out=run, stop=flag, loss="softmax", lam_frac=0.05,
+                 tol=1e-6, seed=3, block_rows=50, dense_gradient=False, checkpoint_passes=1)
+    monkeypatch.undo()
+    assert part.status == "interrupted"
+    logged = _history_lines(run)
+    refined = [h["pass"] for h in ref.history if "refine_iterations" in h]
+    assert logged == (4 if where == "block" else refined[2] - 1)
+    assert _checkpointed_history(run) == logged
+    # the checkpointed state is the one after the last logged pass
+    ck = run / "checkpoints" / (run / "checkpoints" / "LATEST").read_text().strip()
+    meta = json.loads((ck / "meta.json").read_text())
+    assert meta["meta"]["solver"]["passes"] == ref.history[logged - 1]["pass"]
+    res = resume(run)
+    assert res.status == "converged"
     _assert_same_model(run, ref)
 
 
