@@ -20,9 +20,10 @@ the raw row weights; divide by ``weight_sum`` once all blocks are in)::
     gw         += sum_j s_j (X u_j)^T R v_j               (<G, W>)
     G          += X^T R            (optional dense gradient, d x k)
 
-The sparse sweeps are the numba kernels of :mod:`kernels.sparse` and
-:mod:`kernels.losses`; the dense n_b x k products use numpy's BLAS. No Python
-loop runs over rows.
+The sparse sweeps are the numba kernels of :mod:`kernels.sparse` (CSR) or
+:mod:`kernels.csc` (the block transposed once, faster on large blocks; same
+results) and :mod:`kernels.losses`; the dense n_b x k products use numpy's
+BLAS. No Python loop runs over rows.
 """
 
 from __future__ import annotations
@@ -34,6 +35,7 @@ import numpy as np
 from stream.errors import ConfigError, InputError
 
 from . import losses as _losses
+from .csc import BlockCSC, csc_matmul_dense, csc_t_matmul_accumulate
 from .sparse import csr_matmul_dense, csr_t_matmul_accumulate
 
 LOSSES = ("softmax", "squared", "multilabel")
@@ -257,6 +259,7 @@ def block_products(
     *,
     out_XQ: np.ndarray | None = None,
     scratch: np.ndarray | None = None,
+    csc: BlockCSC | None = None,
     row_offset: int = 0,
     where: str = "block",
 ) -> np.ndarray:
@@ -281,6 +284,10 @@ def block_products(
         Reused memory for the block's scores/residual. When given, it holds
         the block's residual ``R`` (unnormalized, ``w_i * dloss/dz_i``) on
         return: ``scratch[:n_b * k].reshape(n_b, k)``.
+    csc : BlockCSC, optional
+        The block transposed by :func:`kernels.csc.block_csc`; when given,
+        the sparse products walk it instead of the CSR arrays (same results,
+        faster on large blocks).
     row_offset : int
         Absolute row index of the block's first row (error messages).
     where : str
@@ -301,7 +308,12 @@ def block_products(
     k, r, q = ops.k, ops.r, ops.Q.shape[1]
     if out_XQ is None:
         out_XQ = np.empty((n, q))
-    csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where)
+    if csc is not None:
+        if csc.shape != (n, d):
+            raise ConfigError(f"{where}: transposed block {csc.shape} is not the block {(n, d)}")
+        csc_matmul_dense(csc, ops.Q, out_XQ, where=where)
+    else:
+        csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where)
     if scratch is None:
         S = np.empty((n, k))
     elif (
@@ -341,7 +353,7 @@ def block_products(
 
     if ops.VO.shape[1]:
         RVO = R @ ops.VO
-        csr_t_matmul_accumulate(X.indptr, X.indices, X.data, RVO, bufs.G_VO, where=where)
+        _xt(X, csc, RVO, bufs.G_VO, where)
     if q:
         T = R.T @ out_XQ  # (k, q) = [R^T X U, R^T X Psi]
         bufs.Gt_U += T[:, :r]
@@ -349,5 +361,12 @@ def block_products(
         if r:
             bufs.gw[0] += float(ops.s @ np.einsum("kj,kj->j", T[:, :r], ops.V))
     if bufs.G is not None:
-        csr_t_matmul_accumulate(X.indptr, X.indices, X.data, R, bufs.G, where=where)
+        _xt(X, csc, R, bufs.G, where)
     return out_XQ
+
+
+def _xt(X, csc: BlockCSC | None, D: np.ndarray, out: np.ndarray, where: str) -> None:
+    if csc is not None:
+        csc_t_matmul_accumulate(csc, D, out, where=where)
+    else:
+        csr_t_matmul_accumulate(X.indptr, X.indices, X.data, D, out, where=where)

@@ -268,10 +268,14 @@ def _state(req: PassRequest, where: str) -> _State:
 
 
 def _xt_accumulate(X: Any, D: np.ndarray, out: np.ndarray) -> None:
-    """``out += X^T D`` with the deterministic CSR kernel."""
+    """``out += X^T D`` with the deterministic kernels (CSR block or its transpose)."""
+    from kernels.csc import BlockCSC, csc_t_matmul_accumulate
     from kernels.sparse import csr_t_matmul_accumulate
 
-    csr_t_matmul_accumulate(X.indptr, X.indices, X.data, D, out)
+    if isinstance(X, BlockCSC):
+        csc_t_matmul_accumulate(X, D, out)
+    else:
+        csr_t_matmul_accumulate(X.indptr, X.indices, X.data, D, out)
 
 
 def block_products_kernels(block: Any, st: _State) -> _Partial:
@@ -283,12 +287,18 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
     forms ``R [V, Omega]``; ``X^T (R [V, Omega])`` (and ``X^T R``) is left
     as a pending term for the combine.
     """
+    from kernels.csc import block_csc, worth_transposing
     from kernels.products import ProductBuffers, block_products
 
     n = int(block.stop - block.start)
     k = st.VO.shape[0]
     scratch = np.empty(n * k)
     bufs = ProductBuffers.zeros(st.ops)
+    X = block.X
+    csc = None
+    if worth_transposing(X.nnz, X.shape[1]):
+        with phase("transpose"):
+            csc = block_csc(X.indptr, X.indices, X.data, X.shape[1], where=st.where)
     with phase("block_products"):
         XQ = block_products(
             block.X,
@@ -297,6 +307,7 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
             st.ops,
             bufs,
             scratch=scratch,
+            csc=csc,
             row_offset=int(block.start),
             where=st.where,
         )
@@ -314,7 +325,7 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
                 weights=block.weights,
             )
         ]
-    term = (block.X, D, R if st.dense_gradient else None)
+    term = (block.X if csc is None else csc, D, R if st.dense_gradient else None)
     return _Partial(
         rows=n,
         weight=float(bufs.weight_sum[0]),
@@ -365,6 +376,37 @@ def combine_partials(parts: list[_Partial]) -> _Partial:
         if acc.projections is not None:
             acc.projections.extend(p.projections)
     return acc
+
+
+def _split_remote(p: _Partial) -> tuple[_Partial, _Partial]:
+    """A block's own small figures (and projections), and the rest to fold remotely.
+
+    Used by backends that fold ranges of blocks on workers (stream.cluster):
+    the client folds the light partials in block order, so every figure but
+    the d-row accumulators is summed exactly as on the serial backend.
+    """
+    light = _Partial(
+        rows=p.rows,
+        weight=p.weight,
+        loss=p.loss,
+        grad_b=p.grad_b.copy(),  # the worker's fold accumulates into p's arrays
+        Gt_Psi=p.Gt_Psi.copy(),
+        Gt_U=p.Gt_U.copy(),
+        projections=p.projections,
+    )
+    p.projections = None  # they travel once, with the light partial
+    return light, p
+
+
+def _join_remote(light: _Partial, rest: _Partial) -> _Partial:
+    """Attach a range's folded d-row accumulators to the light partial of its first block."""
+    light.G_VO = rest.G_VO
+    light.G = rest.G
+    return light
+
+
+combine_partials.split_remote = _split_remote  # type: ignore[attr-defined]
+combine_partials.join_remote = _join_remote  # type: ignore[attr-defined]
 
 
 def _finalize(acc: _Partial, st: _State, profile: PassProfile | None, where: str) -> PassResult:

@@ -227,10 +227,26 @@ def plan_blocks(
     proj_fit = (fixed + proj_bytes + inflight * per_row * min_rows) <= B
     cache = keep_projections and proj_fit
     room = B - fixed - (proj_bytes if cache else 0)
-    rows = int(room // (inflight * per_row)) if per_row > 0 else n
-    rows = min(rows, int(max_block_bytes // csr_row) if csr_row > 0 else n, max(n, 1))
-    rows = max(rows, 1)
-    blocks = inflight * int(math.ceil(rows * per_row))
+
+    def _rows(per_row: float, room: float) -> int:
+        rows = int(room // (inflight * per_row)) if per_row > 0 else n
+        rows = min(rows, int(max_block_bytes // csr_row) if csr_row > 0 else n, max(n, 1))
+        return max(rows, 1)
+
+    from kernels.csc import worth_transposing
+
+    rows = _rows(per_row, room)
+    transposed = 0
+    if worth_transposing(int(rows * nnz_row), d):
+        # the block's column-major copy (kernels.csc): int32 rows and float32 values
+        # per entry, and (2 P + 1) d offsets with P the kernel threads
+        transposed = inflight * f8 * (2 * threads + 1) * d
+        if transposed < room:
+            per_row += nnz_row * 8
+            rows = _rows(per_row, room - transposed)
+        else:
+            transposed = 0
+    blocks = inflight * int(math.ceil(rows * per_row)) + transposed
     breakdown = {"model": model, "accumulators": accum, "blocks": blocks,
                  "partials": inflight * partial,
                  "dense_gradient": dense_total, "projections": proj_bytes if cache else 0}

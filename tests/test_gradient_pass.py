@@ -157,6 +157,30 @@ def test_serial_and_threads_agree_to_1e12():
     assert abs(a.loss - t.loss) <= 1e-12 * abs(a.loss)
 
 
+@pytest.mark.parametrize("loss", LOSSES)
+def test_transposed_and_csr_blocks_give_identical_passes(loss, monkeypatch):
+    """The column-major block kernels sum in the CSR kernels' order: bit-identical."""
+    import kernels.csc as C
+
+    X, y, w = _problem(loss, n=400, d=50, k=7, seed=12)
+    U, s, V, b, Om, Psi = _model(50, 7, r=3)
+    req = PassRequest(loss, U, s, V, b, Omega=Om, Psi=Psi, keep_projections=True,
+                      dense_gradient=True)
+    src = MemorySource(X, y, weights=w, n_outputs=7)
+    out = {}
+    for mode, threshold in (("csc", 0.0), ("csr", np.inf)):
+        monkeypatch.setattr(C, "MIN_ENTRIES_PER_COLUMN", threshold)
+        prof = PassProfile()
+        out[mode] = gradient_pass(src, req, block_rows=64, profile=prof)
+        assert ("phase:transpose" in prof.totals()) == (mode == "csc")
+    a, c = out["csc"], out["csr"]
+    for name in ("grad_b", "G_VO", "Gt_Psi", "Gt_U", "G"):
+        assert np.array_equal(getattr(a, name), getattr(c, name)), name
+    assert a.loss == c.loss and a.inner == c.inner
+    for pa, pc in zip(a.projections, c.projections, strict=True):
+        assert np.array_equal(pa.XQ, pc.XQ)
+
+
 def test_softmax_class_weights():
     X, y, w = _problem("softmax", seed=5)
     U, s, V, b, _, _ = _model(30, 6)

@@ -1,6 +1,6 @@
-"""CSR kernels, fused block products and threading set-up.
+"""CSR and transposed-block kernels, fused block products and threading set-up.
 
-References: scipy.sparse products (``X @ B``, ``X.T @ D``) for the CSR kernels;
+References: scipy.sparse products (``X @ B``, ``X.T @ D``) for the sparse kernels;
 dense numpy arithmetic (``scipy.special.logsumexp``/``expit`` for the losses)
 for the fused products; numba's own ``threading_layer()`` for the threading
 report.
@@ -17,6 +17,7 @@ import scipy.sparse as sp
 from scipy.special import expit, logsumexp
 
 from kernels import threads
+from kernels.csc import block_csc, csc_matmul_dense, csc_t_matmul_accumulate, worth_transposing
 from kernels.products import ProductBuffers, block_products, prepare_operands
 from kernels.sparse import csr_matmul_dense, csr_t_matmul_accumulate
 from stream.errors import ConfigError, InputError
@@ -39,6 +40,8 @@ def _block(n, d, *, density=0.05, seed=0, used_cols=None, empty_every=5,
 
 
 # --------------------------------------------------------------------------- sparse
+# The transposed-block kernels (kernels.csc) are checked beside each CSR kernel:
+# against scipy.sparse, and bit for bit against the CSR kernel on sorted blocks.
 
 
 @pytest.mark.parametrize("itype,dtype", DTYPES)
@@ -62,6 +65,68 @@ def test_csr_t_matmul_accumulate_matches_scipy(itype, dtype):
     csr_t_matmul_accumulate(ip, ix, da, D, out)
     ref = out0 + X.T.astype(np.float64) @ D  # reference: scipy.sparse transpose product
     np.testing.assert_allclose(out, ref, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("itype,dtype", DTYPES)
+@pytest.mark.parametrize("parts", [1, 2, 5])
+def test_transposed_block_products_match_scipy_and_csr(itype, dtype, parts):
+    ip, ix, da, X = _block(130, 2600, used_cols=85, itype=itype, dtype=dtype, seed=11)
+    rng = np.random.default_rng(12)
+    T = block_csc(ip, ix, da, 2600, n_parts=parts)
+    assert T.nnz == X.nnz and T.vals.dtype == dtype
+    B = rng.standard_normal((2600, 6))
+    out = np.full((130, 6), np.nan)
+    csc_matmul_dense(T, B, out)
+    np.testing.assert_allclose(out, X.astype(np.float64) @ B, rtol=1e-12, atol=1e-12)  # scipy
+    ref = np.empty((130, 6))
+    csr_matmul_dense(ip, ix, da, B, ref)
+    assert np.array_equal(out, ref)  # the same sums in the same order
+    D = rng.standard_normal((130, 4))
+    acc0 = rng.standard_normal((2600, 4))
+    acc, acc_csr = acc0.copy(), acc0.copy()
+    csc_t_matmul_accumulate(T, D, acc)
+    np.testing.assert_allclose(acc, acc0 + X.T.astype(np.float64) @ D, rtol=1e-12,
+                               atol=1e-12)  # scipy.sparse transpose product
+    csr_t_matmul_accumulate(ip, ix, da, D, acc_csr)
+    assert np.array_equal(acc, acc_csr)
+
+
+def test_transposed_block_edge_cases():
+    # one column; absolute (unrebased) pointers; empty block; unsorted ids; bad ids
+    ip, ix, da, X = _block(40, 1, density=0.6, seed=13)
+    T = block_csc(ip, ix, da, 1, n_parts=3)
+    out = np.zeros((40, 1))
+    csc_matmul_dense(T, np.array([[2.5]]), out)
+    np.testing.assert_allclose(out, X.astype(np.float64).toarray() * 2.5, rtol=1e-12)  # scipy
+    ip, ix, da, X = _block(60, 200, seed=14)
+    T = block_csc(ip[10:31], ix, da, 200, n_parts=2)
+    B = np.random.default_rng(15).standard_normal((200, 3))
+    sub = np.zeros((20, 3))
+    csc_matmul_dense(T, B, sub)
+    np.testing.assert_allclose(sub, X[10:30].astype(np.float64) @ B, rtol=1e-12)  # scipy
+    E = block_csc(ip[:1], ix, da, 200)
+    assert E.shape == (0, 200) and E.nnz == 0
+    acc = np.ones((200, 3))
+    csc_t_matmul_accumulate(E, np.zeros((0, 3)), acc)
+    assert np.all(acc == 1.0)
+    Xu = X.copy()
+    for i in range(Xu.shape[0]):  # reverse the column ids within each row
+        a, b = Xu.indptr[i], Xu.indptr[i + 1]
+        Xu.indices[a:b] = Xu.indices[a:b][::-1].copy()
+        Xu.data[a:b] = Xu.data[a:b][::-1].copy()
+    assert not Xu.has_sorted_indices
+    Tu = block_csc(Xu.indptr, Xu.indices, Xu.data, 200)
+    o = np.zeros((60, 3))
+    csc_matmul_dense(Tu, B, o)
+    np.testing.assert_allclose(o, X.astype(np.float64) @ B, rtol=1e-12, atol=1e-12)  # scipy
+    bad = ix.copy()
+    bad[7] = 200
+    with pytest.raises(InputError, match="entry 7 .* column id 200 outside 0..199"):
+        block_csc(ip, bad, da, 200)
+    with pytest.raises(InputError, match="pointers"):
+        block_csc(np.array([0, 5, 3], dtype=np.int32), ix, da, 200)
+    assert worth_transposing(100, 200) and not worth_transposing(99, 200)
+    assert not worth_transposing(0, 0)
 
 
 def test_one_column_and_one_output():
