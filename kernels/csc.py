@@ -19,8 +19,11 @@ the CSR kernels of :mod:`kernels.sparse` (``X^T D`` in row order; ``X Q`` in
 column order, which is the CSR order when column ids are sorted within rows),
 so both paths give bit-identical results on sorted blocks.
 
-The column walk costs ``O(d)`` per part on top of ``O(nnz)``: it pays off
-when a block holds at least about ``d / 2`` entries (:func:`worth_transposing`).
+The column walk costs ``O(d)`` per part on top of ``O(nnz)``, so a block needs
+at least about ``d / 2`` entries (:func:`worth_transposing`); and when a few
+frequent columns take most entries, the CSR kernels find their operand rows in
+cache and stay faster. The gradient pass therefore measures both paths on its
+first blocks and keeps the faster (:mod:`stream.sparse_path`).
 """
 
 from __future__ import annotations

@@ -19,6 +19,7 @@ advance. ``R`` never exists beyond one block.
 from __future__ import annotations
 
 import os
+import time
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -208,7 +209,8 @@ class _Partial:
     """Raw-weighted sums of one or more consecutive blocks.
 
     The d-row products ``X^T (R [V, Omega])`` and ``X^T R`` of a block are
-    kept as pending terms ``(X_b, R_b [V, Omega], R_b or None)`` and added
+    kept as pending terms ``(X_b or its transpose, R_b [V, Omega], R_b or None,
+    timing)`` and added
     into the d-row accumulators by the combine, so no block ever allocates
     a d x (r + p) (or d x k) array of its own.
     """
@@ -287,16 +289,21 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
     forms ``R [V, Omega]``; ``X^T (R [V, Omega])`` (and ``X^T R``) is left
     as a pending term for the combine.
     """
-    from kernels.csc import block_csc, worth_transposing
+    from kernels.csc import block_csc
     from kernels.products import ProductBuffers, block_products
 
+    from .sparse_path import CHOOSER
+
+    t0 = time.perf_counter()
     n = int(block.stop - block.start)
     k = st.VO.shape[0]
     scratch = np.empty(n * k)
     bufs = ProductBuffers.zeros(st.ops)
     X = block.X
+    key = (X.shape[1], st.ops.Q.shape[1], st.VO.shape[1], st.dense_gradient)
+    path = CHOOSER.pick(key, X.nnz, X.shape[1], sorted_ids=bool(X.has_sorted_indices))
     csc = None
-    if worth_transposing(X.nnz, X.shape[1]):
+    if path == "csc":
         with phase("transpose"):
             csc = block_csc(X.indptr, X.indices, X.data, X.shape[1], where=st.where)
     with phase("block_products"):
@@ -325,7 +332,9 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
                 weights=block.weights,
             )
         ]
-    term = (block.X if csc is None else csc, D, R if st.dense_gradient else None)
+    # the combine adds X^T D and records the block's time with the path chooser
+    timing = (key, path, time.perf_counter() - t0, int(X.nnz))
+    term = (block.X if csc is None else csc, D, R if st.dense_gradient else None, timing)
     return _Partial(
         rows=n,
         weight=float(bufs.weight_sum[0]),
@@ -340,7 +349,10 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
 
 def _materialize(acc: _Partial) -> None:
     """Add the pending terms of ``acc`` into its d-row accumulators."""
-    for X, D, R in acc.terms:
+    from .sparse_path import CHOOSER
+
+    for X, D, R, (key, path, block_s, nnz) in acc.terms:
+        t0 = time.perf_counter()
         if acc.G_VO is None:
             acc.G_VO = np.zeros((X.shape[1], D.shape[1]))
         with phase("xt_products"):
@@ -349,6 +361,7 @@ def _materialize(acc: _Partial) -> None:
                 if acc.G is None:
                     acc.G = np.zeros((X.shape[1], R.shape[1]))
                 _xt_accumulate(X, R, acc.G)
+        CHOOSER.record(key, path, block_s + time.perf_counter() - t0, nnz)
     acc.terms = []
 
 

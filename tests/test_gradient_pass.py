@@ -158,9 +158,9 @@ def test_serial_and_threads_agree_to_1e12():
 
 
 @pytest.mark.parametrize("loss", LOSSES)
-def test_transposed_and_csr_blocks_give_identical_passes(loss, monkeypatch):
+def test_transposed_and_csr_blocks_give_identical_passes(loss):
     """The column-major block kernels sum in the CSR kernels' order: bit-identical."""
-    import kernels.csc as C
+    from stream.sparse_path import CHOOSER
 
     X, y, w = _problem(loss, n=400, d=50, k=7, seed=12)
     U, s, V, b, Om, Psi = _model(50, 7, r=3)
@@ -168,10 +168,10 @@ def test_transposed_and_csr_blocks_give_identical_passes(loss, monkeypatch):
                       dense_gradient=True)
     src = MemorySource(X, y, weights=w, n_outputs=7)
     out = {}
-    for mode, threshold in (("csc", 0.0), ("csr", np.inf)):
-        monkeypatch.setattr(C, "MIN_ENTRIES_PER_COLUMN", threshold)
+    for mode in ("csc", "csr"):
         prof = PassProfile()
-        out[mode] = gradient_pass(src, req, block_rows=64, profile=prof)
+        with CHOOSER.forced(mode):
+            out[mode] = gradient_pass(src, req, block_rows=64, profile=prof)
         assert ("phase:transpose" in prof.totals()) == (mode == "csc")
     a, c = out["csc"], out["csr"]
     for name in ("grad_b", "G_VO", "Gt_Psi", "Gt_U", "G"):
@@ -179,6 +179,27 @@ def test_transposed_and_csr_blocks_give_identical_passes(loss, monkeypatch):
     assert a.loss == c.loss and a.inner == c.inner
     for pa, pc in zip(a.projections, c.projections, strict=True):
         assert np.array_equal(pa.XQ, pc.XQ)
+
+
+def test_path_chooser_probes_both_paths_then_keeps_the_faster():
+    from stream.sparse_path import PathChooser
+
+    ch = PathChooser()
+    key = ("d", 24)
+    seen = []
+    for _ in range(4):  # alternates until each path has two timings
+        path = ch.pick(key, 1000, 100, sorted_ids=True)
+        seen.append(path)
+        ch.record(key, path, 1.0 if path == "csr" else 0.5, 1000)
+    assert sorted(seen) == ["csc", "csc", "csr", "csr"]
+    assert ch.pick(key, 1000, 100, sorted_ids=True) == "csc"
+    assert ch.pick(key, 1000, 100, sorted_ids=False) == "csr"  # unsorted ids: always CSR
+    assert ch.pick(key, 10, 100, sorted_ids=True) == "csr"  # too few entries per column
+    ch.record(("other",), "csr", 0.1, 1000)
+    ch.record(("other",), "csr", 0.1, 1000)
+    ch.record(("other",), "csc", 0.9, 1000)
+    ch.record(("other",), "csc", 0.8, 1000)
+    assert ch.pick(("other",), 1000, 100, sorted_ids=True) == "csr"
 
 
 def test_softmax_class_weights():

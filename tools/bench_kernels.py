@@ -12,8 +12,12 @@ sorted by frequency). Times, over all blocks of a set:
 each with numba's full thread count and with one thread. The baseline of the
 same run is scipy (``speedup = scipy seconds / ours``). The row ``X^T @ D*``
 is the alternative design (thread-private d x m buffers summed in a fixed
-order), timed for comparison with the shipped column-partition kernel. Compilation is done
-before timing; each figure is the best of ``--repeat`` runs.
+order), timed for comparison with the shipped column-partition kernel. The rows
+``csc X @ B``, ``csc X^T @ D`` and ``csc both`` are the transposed-block path
+(:mod:`kernels.csc`) that the gradient pass takes on large blocks: each op
+includes one transposition per block, ``csc both`` is the pass's pair of
+products on one transposition. Compilation is done before timing; each figure is
+the best of ``--repeat`` runs.
 
     .venv/bin/python tools/bench_kernels.py --out bench-out
 """
@@ -33,6 +37,7 @@ from numba import njit, prange
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
+from kernels.csc import block_csc, csc_matmul_dense, csc_t_matmul_accumulate  # noqa: E402
 from kernels.sparse import csr_matmul_dense, csr_t_matmul_accumulate  # noqa: E402
 from stream.atomic import atomic_write_json  # noqa: E402
 
@@ -131,6 +136,29 @@ def bench_set(blocks, *, m: int, repeat: int, threads: int, seed: int) -> list[d
         for X, D in zip(blocks, Ds, strict=True):
             acc.__iadd__(X.T @ D)
 
+    def _csc(X):
+        return block_csc(X.indptr, X.indices, X.data, d)
+
+    def csc_mm():
+        for X, o in zip(blocks, outs, strict=True):
+            csc_matmul_dense(_csc(X), B, o)
+
+    def csc_tm():
+        acc[...] = 0.0
+        for X, D in zip(blocks, Ds, strict=True):
+            csc_t_matmul_accumulate(_csc(X), D, acc)
+
+    def csc_both():
+        acc[...] = 0.0
+        for X, D, o in zip(blocks, Ds, outs, strict=True):
+            T = _csc(X)
+            csc_matmul_dense(T, B, o)
+            csc_t_matmul_accumulate(T, D, acc)
+
+    def scipy_both():
+        scipy_mm()
+        scipy_tm()
+
     X0 = blocks[0]  # compile (and check) before timing
     o0 = np.empty((X0.shape[0], m))
     csr_matmul_dense(X0.indptr, X0.indices, X0.data, B, o0)
@@ -142,16 +170,25 @@ def bench_set(blocks, *, m: int, repeat: int, threads: int, seed: int) -> list[d
         raise SystemExit("bench_kernels: csr_t_matmul_accumulate disagrees with scipy")
 
     _t_matmul_private_buffers(X0.indptr, X0.indices, X0.data, Ds[0], bufs, np.zeros((d, m)))
+    T0 = _csc(X0)
+    c0, ca = np.empty_like(o0), np.zeros((d, m))
+    csc_matmul_dense(T0, B, c0)
+    csc_t_matmul_accumulate(T0, Ds[0], ca)
+    if not (np.array_equal(c0, o0) and np.array_equal(ca, a0)):
+        raise SystemExit("bench_kernels: the transposed-block kernels disagree with the CSR ones")
     rows = []
     t_sc_mm = _best(scipy_mm, repeat)
     t_sc_tm = _best(scipy_tm, repeat)
+    t_sc_both = _best(scipy_both, repeat)
     for nt in sorted({1, threads}):
         numba.set_num_threads(nt)
         t_mm = _best(ours_mm, repeat)
         t_tm = _best(ours_tm, repeat)
         t_pb = _best(private_tm, repeat) if nt == threads else np.nan
+        t_cm, t_ct, t_cb = _best(csc_mm, repeat), _best(csc_tm, repeat), _best(csc_both, repeat)
         for op, ours, base in (("X @ B", t_mm, t_sc_mm), ("X^T @ D", t_tm, t_sc_tm),
-                               ("X^T @ D*", t_pb, t_sc_tm)):
+                               ("X^T @ D*", t_pb, t_sc_tm), ("csc X @ B", t_cm, t_sc_mm),
+                               ("csc X^T @ D", t_ct, t_sc_tm), ("csc both", t_cb, t_sc_both)):
             if not np.isfinite(ours):
                 continue
             rows.append({"op": op, "m": m, "threads": nt, "nnz": nnz, "blocks": len(blocks),
@@ -183,12 +220,12 @@ def main(argv: list[str] | None = None) -> int:
                 row["columns"] = kind
                 results.append(row)
         del blocks
-    head = f"{'columns':<8} {'op':<9} {'m':>3} {'thr':>3} {'nnz':>10} " \
+    head = f"{'columns':<8} {'op':<11} {'m':>3} {'thr':>3} {'nnz':>10} " \
            f"{'ours s':>8} {'scipy s':>8} {'speedup':>8} {'Mnnz/s':>8}"
     print(head)
     print("-" * len(head))
     for r in results:
-        print(f"{r['columns']:<8} {r['op']:<9} {r['m']:>3} {r['threads']:>3} {r['nnz']:>10} "
+        print(f"{r['columns']:<8} {r['op']:<11} {r['m']:>3} {r['threads']:>3} {r['nnz']:>10} "
               f"{r['ours_s']:>8.3f} {r['scipy_s']:>8.3f} {r['speedup']:>8.2f} "
               f"{r['ours_mnnz_per_s']:>8.1f}")
     if args.out:
