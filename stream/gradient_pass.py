@@ -73,6 +73,11 @@ class PassRequest:
         See :mod:`stream.losses`.
     keep_projections : bool
         Keep ``X [U, Psi]`` of every block (with its targets and weights).
+    projections_dir : str, optional
+        With ``keep_projections``: write each block's projections to a
+        scratch ``.npz`` file in this directory (see
+        :class:`stream.refine_stream.ScratchProjections`) instead of keeping
+        them in memory; the result's projections then name the files.
     dense_gradient : bool
         Also accumulate the dense ``G`` (d x k).
 
@@ -89,6 +94,7 @@ class PassRequest:
     class_weights: np.ndarray | None = None
     keep_projections: bool = False
     dense_gradient: bool = False
+    projections_dir: str | None = None
 
     def __post_init__(self) -> None:
         get_loss(self.loss)
@@ -145,14 +151,17 @@ class Projection:
     """Cached projections of one block: ``XQ = X[start:stop] @ [U, Psi]``.
 
     ``XQ`` is float64 ``(stop - start, r + p')``; ``targets`` and ``weights``
-    are the block's own (raw weights, float32 or None).
+    are the block's own (raw weights, float32 or None). When the pass wrote
+    them to a scratch file, ``XQ``, ``targets`` and ``weights`` are None and
+    ``path`` names the file.
     """
 
     start: int
     stop: int
-    XQ: np.ndarray
+    XQ: np.ndarray | None
     targets: Any
     weights: np.ndarray | None
+    path: str | None = None
 
 
 @dataclass(frozen=True)
@@ -238,6 +247,7 @@ class _State:
     keep_projections: bool
     dense_gradient: bool
     where: str
+    projections_dir: str | None = None
 
 
 def _state(req: PassRequest, where: str) -> _State:
@@ -264,6 +274,7 @@ def _state(req: PassRequest, where: str) -> _State:
         s=req.s,
         V=req.V,
         keep_projections=req.keep_projections,
+        projections_dir=req.projections_dir,
         dense_gradient=req.dense_gradient,
         where=where,
     )
@@ -322,7 +333,14 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
     with phase("residual_VO"):
         D = R @ st.VO
     proj = None
-    if st.keep_projections:
+    if st.keep_projections and st.projections_dir is not None:
+        from .refine_stream import write_projection_block
+
+        file = write_projection_block(st.projections_dir, int(block.start), XQ, block.targets,
+                                      block.weights)
+        proj = [Projection(start=int(block.start), stop=int(block.stop), XQ=None, targets=None,
+                           weights=None, path=str(file))]
+    elif st.keep_projections:
         proj = [
             Projection(
                 start=int(block.start),

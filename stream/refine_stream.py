@@ -33,7 +33,8 @@ from .losses import get_loss
 from .refine import _CURVATURE, RefineResult, _certificate, svt
 from .signals import StopRequested
 
-__all__ = ["refine_streamed", "ScratchProjections", "MemoryProjections"]
+__all__ = ["refine_streamed", "ScratchProjections", "MemoryProjections",
+           "write_projection_block"]
 
 _SHRINK = 1.25  # L shrinks by this factor before each step (then backtracking doubles it)
 
@@ -68,29 +69,20 @@ class ScratchProjections:
         self.dir = Path(directory)
         self.k = int(k)
         self.files: list[Path] = []
-        self._q: int | None = None
+
+    @classmethod
+    def from_files(cls, paths: Sequence[str | os.PathLike], k: int) -> ScratchProjections:
+        """The blocks that :func:`write_projection_block` wrote, in row order."""
+        if not paths:
+            raise ConfigError("refine: no scratch projection files; the pass wrote none")
+        obj = cls(Path(paths[0]).parent, k)
+        obj.files = [Path(p) for p in paths]
+        return obj
 
     def add(self, start: int, XQ: np.ndarray, targets: Any, weights: np.ndarray | None) -> None:
         """Write one block (blocks must be added in row order)."""
-        arrays: dict[str, np.ndarray] = {"XQ": np.ascontiguousarray(XQ, dtype=np.float64)}
-        if sp.issparse(targets):
-            T = sp.csr_matrix(targets)
-            arrays["tag_indptr"] = T.indptr.astype(np.int64)
-            arrays["tag_indices"] = T.indices.astype(np.int64)
-        else:
-            t = np.asarray(targets)
-            arrays["y" if t.ndim == 1 else "Y"] = t
-        if weights is not None:
-            arrays["w"] = np.asarray(weights)
-        path = self.dir / f"xq-{int(start):012d}.npz"
-        self.dir.mkdir(parents=True, exist_ok=True)
-        try:
-            np.savez(path, **arrays)
-        except OSError as exc:
-            raise StoreError(f"{path}: cannot write the refinement's scratch file ({exc}); "
-                             "free disk space or point the scratch directory elsewhere") from exc
-        self.files.append(path)
-        self._q = arrays["XQ"].shape[1]
+        self.files.append(write_projection_block(self.dir, start, XQ, targets, weights))
+        self._q = int(XQ.shape[1])
 
     def __iter__(self) -> Iterator[tuple[np.ndarray, Any, np.ndarray | None]]:
         for path in self.files:
@@ -107,12 +99,6 @@ class ScratchProjections:
                 w = z["w"] if "w" in z else None
             yield XQ, targets, w
 
-    @property
-    def q(self) -> int:
-        if self._q is None:
-            raise ConfigError("refine: the scratch projections are empty")
-        return self._q
-
     def nbytes(self) -> int:
         return int(sum(p.stat().st_size for p in self.files))
 
@@ -125,6 +111,45 @@ class ScratchProjections:
             self.dir.rmdir()
         except OSError:
             pass
+
+
+def write_projection_block(directory: str | os.PathLike, start: int, XQ: np.ndarray,
+                           targets: Any, weights: np.ndarray | None) -> Path:
+    """Write one block's projections, targets and weights to ``DIR/xq-START.npz``.
+
+    Parameters
+    ----------
+    directory : path
+        The scratch directory (created if missing).
+    start : int
+        The block's first row (names the file, so files sort in row order).
+    XQ : (n_b, q) array
+    targets : (n_b,) class ids, (n_b, k) values, or (n_b, k) sparse tags
+    weights : (n_b,) raw row weights or None
+
+    Returns
+    -------
+    Path
+    """
+    arrays: dict[str, np.ndarray] = {"XQ": np.ascontiguousarray(XQ, dtype=np.float64)}
+    if sp.issparse(targets):
+        T = sp.csr_matrix(targets)
+        arrays["tag_indptr"] = T.indptr.astype(np.int64)
+        arrays["tag_indices"] = T.indices.astype(np.int64)
+    else:
+        t = np.asarray(targets)
+        arrays["y" if t.ndim == 1 else "Y"] = t
+    if weights is not None:
+        arrays["w"] = np.asarray(weights)
+    d = Path(directory)
+    path = d / f"xq-{int(start):012d}.npz"
+    try:
+        d.mkdir(parents=True, exist_ok=True)
+        np.savez(path, **arrays)
+    except OSError as exc:
+        raise StoreError(f"{path}: cannot write the refinement's scratch file ({exc}); "
+                         "free disk space or point the scratch directory elsewhere") from exc
+    return path
 
 
 # ---------------------------------------------------------------- streamed evaluations

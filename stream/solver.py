@@ -27,7 +27,10 @@ SVD instead (same optimum, fewer passes).
 
 from __future__ import annotations
 
+import contextlib
 import math
+import os
+import shutil
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field, fields
@@ -421,6 +424,10 @@ class GreedySolver:
     pass_fn : callable, optional
         ``pass_fn(source, request, **kw) -> PassResult``; default
         :func:`stream.gradient_pass.gradient_pass`.
+    scratch_dir : path, optional
+        Where passes write the cached projections when the memory budget
+        cannot hold them (see :meth:`_refine_mode`); default a temporary
+        directory.
     stop : callable, optional
         ``stop() -> bool``, checked after every block of a pass and every
         refinement step (e.g. a :class:`stream.signals.StopFlag`). When it
@@ -437,7 +444,8 @@ class GreedySolver:
 
     def __init__(self, source: Any, config: SolverConfig, *, state: SolverState | None = None,
                  progress: bool = False, pass_fn: Callable | None = None,
-                 stop: Callable[[], bool] | None = None) -> None:
+                 stop: Callable[[], bool] | None = None,
+                 scratch_dir: str | os.PathLike | None = None) -> None:
         from .memsource import as_source
 
         self.config = config
@@ -446,6 +454,11 @@ class GreedySolver:
         self.k = int(self.source.n_outputs)
         self.progress = progress
         self.stop = stop
+        # where the pass writes projections that the budget cannot hold (a fresh
+        # temporary directory by default, removed by close())
+        self.scratch_root = None if scratch_dir is None else os.fspath(scratch_dir)
+        self._own_scratch: str | None = None
+        self._pass_scratch: str | None = None  # this iteration's files, removed after it
         if pass_fn is None:
             from .gradient_pass import gradient_pass as pass_fn
         self._pass_fn = pass_fn
@@ -487,13 +500,35 @@ class GreedySolver:
         self.dense = bool(plan.dense_gradient)
         self._budget = int(plan.budget)
 
-    def _check_projections_fit(self, q: int) -> None:
-        need = 8 * self.n * (q + 5 * self.k)
-        if need > self._budget:
-            raise ConfigError(
-                f"memory budget {self._budget} bytes: the refinement needs about {need} bytes "
-                f"(n x q cached projections and n x k scores, n={self.n}, q={q}, k={self.k}); "
-                "raise --memory (streaming them from a scratch store is not implemented yet)")
+    def _refine_mode(self, q: int) -> str:
+        """Where the refinement works, from the memory budget.
+
+        ``"memory"``: projections and the n x k scores of its iterates fit
+        (the fastest); ``"blocks"``: the n x q projections fit but not the
+        scores, so the refinement streams over the projection blocks in
+        memory; ``"scratch"``: the pass writes the projections to scratch files
+        and the refinement streams them from disk
+        (:mod:`stream.refine_stream`). The choice depends only on the data's
+        shape and the budget, so a resumed run makes the same one.
+        """
+        n, k, B = self.n, self.k, self._budget
+        rows = max(1, min(n, int(self.plan.block_rows)))
+        if 8 * n * (q + 5 * k) <= B:
+            return "memory"
+        if 8 * (n * q + 3 * rows * (k + q)) <= B:
+            return "blocks"
+        return "scratch"
+
+    def _scratch_for_pass(self) -> str:
+        import tempfile
+
+        if self.scratch_root is None:
+            self._own_scratch = tempfile.mkdtemp(prefix="ranktide-scratch-")
+            self.scratch_root = self._own_scratch
+        path = os.path.join(self.scratch_root, f"pass-{self.state.passes + 1:06d}")
+        shutil.rmtree(path, ignore_errors=True)  # a pass abandoned before a resume
+        self._pass_scratch = path
+        return path
 
     # ------------------------------------------------------------ lam handling
     def set_lam(self, lam: float, *, path_index: int | None = None) -> None:
@@ -530,10 +565,11 @@ class GreedySolver:
         st.Omega = _fill(st.Omega, st.V, cfg.power_size, self._rng)
         # keep the generator's position in the state, so a checkpoint resumes the same draws
         st.rng_state = self._rng.bit_generator.state
-        self._check_projections_fit(st.rank + st.Psi.shape[1])
+        mode = self._refine_mode(st.rank + st.Psi.shape[1])
         req = PassRequest(loss=cfg.loss, U=st.U, s=st.s, V=st.V, b=st.b, Omega=st.Omega,
                           Psi=st.Psi, class_weights=cfg.class_weights, keep_projections=True,
-                          dense_gradient=self.dense)
+                          dense_gradient=self.dense,
+                          projections_dir=self._scratch_for_pass() if mode == "scratch" else None)
         prof = PassProfile()
         rows = cfg.block_rows
         if rows is None and cfg.block_bytes is None:
@@ -615,15 +651,19 @@ class GreedySolver:
         r_old = req.U.shape[1]
         q = Q.shape[1]
         proj = res.projections
-        A = np.concatenate([p.XQ for p in proj], axis=0)
-        targets = [p.targets for p in proj]
-        weights = [p.weights for p in proj]
         N0 = np.zeros((q, self.k))
         N0[:r_old] = req.s[:, None] * req.V.T
         t0 = time.perf_counter()
-        out = refine(A, targets, weights, cfg.loss, st.lam, N0, req.b,
-                     tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
-                     class_weights=cfg.class_weights, should_stop=self.stop)
+        mode = self._refine_mode(q)
+        if mode == "memory":
+            A = np.concatenate([p.XQ for p in proj], axis=0)
+            targets = [p.targets for p in proj]
+            weights = [p.weights for p in proj]
+            out = refine(A, targets, weights, cfg.loss, st.lam, N0, req.b,
+                         tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
+                         class_weights=cfg.class_weights, should_stop=self.stop)
+        else:
+            out = self._refine_streamed(proj, mode, N0, req.b, rel_gap)
         secs = time.perf_counter() - t0
         U_new = Q @ out.A
         # re-orthonormalize against rounding of the product Q A
@@ -638,11 +678,28 @@ class GreedySolver:
         st.objective = out.objective
         st.outer_iterations += 1
         new = np.sum(out.A[r_old:] ** 2, axis=0) > 0.5 if out.A.shape[1] else np.zeros(0, bool)
-        return {"refine_iterations": out.iterations, "refine_seconds": secs,
+        return {"refine_iterations": out.iterations, "refine_seconds": secs, "refine_mode": mode,
                 "refine_converged": out.converged, "refine_gap": out.gap_estimate,
                 "atoms_added": int(np.sum(new)),
                 "atoms_sv": [float(x) for x in out.s[new]],
                 "objective_after": out.objective}
+
+    def _refine_streamed(self, proj, mode: str, N0: np.ndarray, b0: np.ndarray,
+                         rel_gap: float):
+        from .refine_stream import MemoryProjections, ScratchProjections, refine_streamed
+
+        cfg = self.config
+        if mode == "blocks":
+            blocks: Any = MemoryProjections([(p.XQ, p.targets, p.weights) for p in proj])
+        else:
+            blocks = ScratchProjections.from_files([p.path for p in proj], self.k)
+        try:
+            return refine_streamed(blocks, cfg.loss, self.state.lam, N0, b0,
+                                   tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
+                                   class_weights=cfg.class_weights, should_stop=self.stop)
+        finally:
+            if mode == "scratch":
+                blocks.remove()
 
     # ------------------------------------------------------------ one iteration
     def step(self) -> dict:
@@ -666,6 +723,10 @@ class GreedySolver:
             st.seconds += time.perf_counter() - t0  # spent; the work is redone on resume
             self._rng = _generator(st.rng_state)
             raise
+        finally:
+            if self._pass_scratch is not None:
+                shutil.rmtree(self._pass_scratch, ignore_errors=True)
+                self._pass_scratch = None
 
     def _step(self) -> dict:
         cfg, st = self.config, self.state
@@ -832,7 +893,18 @@ class GreedySolver:
             status=status, message=messages.get(status, status), passes=st.passes,
             seconds=st.seconds, history=list(self._history))
 
+    def remove_scratch(self) -> None:
+        """Delete the temporary scratch directory this solver made (if any)."""
+        if self._own_scratch is not None:
+            shutil.rmtree(self._own_scratch, ignore_errors=True)
+            self._own_scratch = None
+            self.scratch_root = None
+        elif self.scratch_root is not None:
+            with contextlib.suppress(OSError):
+                os.rmdir(self.scratch_root)  # the caller's directory, if left empty
+
     def close(self) -> None:
         closer = getattr(self.source, "close", None)
         if closer is not None:
             closer()
+        self.remove_scratch()

@@ -403,6 +403,7 @@ def train(
 
     opened = isinstance(source, (str, os.PathLike))
     src = as_source(source, targets=targets, weights=weights)
+    solver = None
     try:
         check_loss_source(loss, src)
         cw = resolve_class_weights(class_weight, src, backend=backend, block_rows=block_rows)
@@ -413,9 +414,14 @@ def train(
                            expand_size=expand_size)
         if resume_point is not None:
             cfg = resume_point.solver_config(cfg)
+        scratch = None
+        if out is not None:
+            scratch = Path(out) / "scratch"
+        elif resume_point is not None:
+            scratch = Path(resume_point.run.path) / "scratch"
         solver = GreedySolver(src, cfg, progress=progress,
                               state=None if resume_point is None else resume_point.state,
-                              stop=stop)
+                              stop=stop, scratch_dir=scratch)
         fingerprint = _fingerprint(src)
         run = None if resume_point is None else resume_point.run
         if out is not None and run is None:
@@ -455,6 +461,8 @@ def train(
             result = _with(result, run_dir=str(run.path))
         return result
     finally:
+        if solver is not None:
+            solver.remove_scratch()
         if opened:
             src.close()
 

@@ -85,3 +85,32 @@ def test_streamed_refinement_class_weights_stop_and_errors():
                         max_iter=10)
     with pytest.raises(ConfigError, match="no projection blocks"):
         MemoryProjections([])
+
+
+@pytest.mark.parametrize("loss", ["softmax", "multilabel"])
+def test_training_under_a_small_budget_streams_the_refinement(loss, tmp_path):
+    """Budgets that cannot hold the refinement's scores (or even the projections) still
+    reach the optimum; the scratch files are removed afterwards."""
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from test_solver_internals import _problem
+
+    from stream.train import train
+
+    X, y = _problem(loss, n=300, d=20, k=4, seed=8)
+    kw = {"loss": loss, "lam_frac": 0.15, "tol": 1e-7, "seed": 1, "dense_gradient": False}
+    runs = {}
+    for mem in ("1GB", "40KB", "18KB"):  # memory; projections in memory; scratch files
+        out = tmp_path / f"run-{mem}"
+        runs[mem] = train((X, y), memory=mem, out=out, **kw)
+        assert runs[mem].status == "converged"
+        assert not (out / "scratch").exists()  # every pass removed its scratch files
+    modes = {m: {h.get("refine_mode") for h in r.history} - {None} for m, r in runs.items()}
+    assert modes["1GB"] == {"memory"} and "blocks" in modes["40KB"]
+    assert "scratch" in modes["18KB"]
+    # Reference: CVXPY + Clarabel optimum of the same problem (tests/conic.py).
+    con = solve_conic(X, y, loss=loss, lam=runs["1GB"].lam, n_outputs=4)
+    for r in runs.values():
+        assert r.objective == pytest.approx(con.objective, rel=1e-6)
