@@ -17,6 +17,7 @@ from scipy.special import expit, logsumexp, softmax
 from sklearn.metrics import log_loss
 
 from kernels.losses import (
+    exp_nonpositive_kernel,
     fold_class_weights,
     multilabel_loss_only,
     multilabel_residual,
@@ -84,6 +85,21 @@ def test_softmax_extreme_logits_are_finite():
     ref = logsumexp(Z, axis=1) - Z[np.arange(3), y]  # reference: scipy.special.logsumexp
     np.testing.assert_allclose(L[0], ref.sum(), rtol=1e-12)
     np.testing.assert_allclose(R[1], [-1.0, 0.5, 0.5], atol=1e-15)
+
+
+def test_exp_helper_matches_numpy():
+    rng = np.random.default_rng(21)
+    x = np.concatenate([-rng.exponential(3.0, 200_000), -rng.uniform(0.0, 708.0, 200_000),
+                        [0.0, -0.0, -1e-300, -np.log(2.0) / 2, -708.0, -1.0 / 3.0]])
+    out = np.empty_like(x)
+    exp_nonpositive_kernel(x, out)
+    ref = np.exp(x)  # reference: numpy.exp
+    np.testing.assert_allclose(out, ref, rtol=1e-15, atol=0.0)
+    # below -708 (subnormal results) the helper returns 0; NaN passes through
+    tail = np.array([-708.5, -745.0, -1e4, -np.inf, np.nan])
+    out = np.empty_like(tail)
+    exp_nonpositive_kernel(tail, out)
+    assert np.array_equal(out[:4], np.zeros(4)) and np.isnan(out[4])
 
 
 def test_softmax_loss_only_leaves_scores_and_matches():
