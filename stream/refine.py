@@ -233,6 +233,17 @@ class _NumpyLoss:
         f, R = loss_and_residual(Z, self.Y, self.w, self.loss)
         return f, R, R.sum(axis=0)
 
+    @staticmethod
+    def extrapolate(X: np.ndarray, P: np.ndarray, beta: float, out: np.ndarray) -> None:
+        """``out = X + beta (X - P)`` (``out`` is neither ``X`` nor ``P``)."""
+        np.subtract(X, P, out=out)
+        out *= beta
+        out += X
+
+    @staticmethod
+    def add_row(Z: np.ndarray, c: np.ndarray) -> None:
+        Z += c
+
 
 class _KernelLoss:
     """Loss value and residual of dense scores through the fused kernels of ``kernels.losses``.
@@ -268,6 +279,19 @@ class _KernelLoss:
         gb = np.zeros(self.k)
         R = self._resid(Z, out, gb)
         return float(out[0]), R, gb
+
+    @staticmethod
+    def extrapolate(X: np.ndarray, P: np.ndarray, beta: float, out: np.ndarray) -> None:
+        """``out = X + beta (X - P)`` in one fused pass."""
+        from kernels.dense import extrapolate
+
+        extrapolate(X, P, beta, out)
+
+    @staticmethod
+    def add_row(Z: np.ndarray, c: np.ndarray) -> None:
+        from kernels.dense import add_row
+
+        add_row(Z, c)
 
 
 def _certificate(GN: np.ndarray, N: np.ndarray, nuc: float, F: float, lam: float) -> float:
@@ -480,8 +504,12 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
     Ux, sx, Bx = svt(N0, 0.0)
     N_x = N0.copy()
     c_x = b0 + N0.T @ abar
-    Z_x = Ac @ N_x
-    Z_x += c_x
+    # four n x k buffers, reused: scores of x, of the previous x, of the trial point, and
+    # the residual (the extrapolated scores are formed in it and overwritten)
+    bufs = [np.empty((n, k)) for _ in range(3)]
+    R_buf = np.empty((n, k))
+    Z_x = np.matmul(Ac, N_x, out=bufs[0])
+    ev.add_row(Z_x, c_x)
     f_x = ev.value(Z_x)
     F_x = f_x + lam * float(sx.sum())
     N_p, c_p, Z_p = N_x, c_x, Z_x
@@ -498,9 +526,11 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
         if beta > 0:
             N_y = N_x + beta * (N_x - N_p)
             c_y = c_x + beta * (c_x - c_p)
-            Z_y = Z_x + beta * (Z_x - Z_p)
+            ev.extrapolate(Z_x, Z_p, beta, R_buf)
         else:
-            N_y, c_y, Z_y = N_x, c_x, Z_x.copy()
+            N_y, c_y = N_x, c_x
+            np.copyto(R_buf, Z_x)
+        Z_y = R_buf
         f_y, R, g_c = ev.residual(Z_y)  # Z_y becomes the residual
         G_N = Ac.T @ R
         evals += 1
@@ -510,8 +540,8 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
             Un, sn, Bn = svt(N_y - G_N / L, lam / L)
             N_n = (Un * sn) @ Bn.T
             c_n = c_y - g_c / Lc
-            Z_n = Ac @ N_n
-            Z_n += c_n
+            Z_n = np.matmul(Ac, N_n, out=next(b for b in bufs if b is not Z_x and b is not Z_p))
+            ev.add_row(Z_n, c_n)
             evals += 1
             f_n = ev.value(Z_n)
             dN, dc = N_n - N_y, c_n - c_y
@@ -531,7 +561,8 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
         Ux, sx, Bx = Un, sn, Bn
         t = t_next
         if it % check_every == 0 or it >= max_iter:
-            _, R_x, gb_x = ev.residual(Z_x.copy())
+            np.copyto(R_buf, Z_x)
+            _, R_x, gb_x = ev.residual(R_buf)
             evals += 1
             gap_rel = _certificate(Ac.T @ R_x, N_x, float(sx.sum()), F_x, lam)
             gb = float(np.abs(gb_x).max())
