@@ -68,7 +68,8 @@ class RefineResult:
     iterations : int
         Proximal steps taken (accepted or rejected by restart).
     converged : bool
-        Whether the inner certificate reached ``tol``.
+        Whether a stopping test passed (the inner certificate reached ``tol``,
+        or the decrease stalled, see :func:`refine`) before ``max_iter``.
     gap_estimate : float
         Relative inner gap estimate at the last check (conditional-gradient bound).
     grad_b_norm : float
@@ -352,6 +353,7 @@ def refine(
     class_weights: np.ndarray | None = None,
     check_every: int = 5,
     should_stop: Callable[[], bool] | None = None,
+    stall: float = 0.0,
 ) -> RefineResult:
     """Solve the refinement ``min f(XQ N + b) + lam ||N||_*`` on cached projections.
 
@@ -383,6 +385,11 @@ def refine(
     should_stop : callable, optional
         Checked before every step; when it returns True the refinement is
         abandoned with :class:`stream.signals.StopRequested`.
+    stall : float
+        Also stop when the decrease of F over the last ``check_every`` steps is
+        at most this fraction of the decrease since the start (0: never; the
+        solver passes 0.5, see ``stream.solver._INNER_STALL``). Softmax and
+        multilabel only.
 
     Returns
     -------
@@ -421,10 +428,18 @@ def refine(
     ``1 / lambda_max(C)`` on the statistics ``C = A^T W A - abar abar^T`` and
     ``D = A^T W Y - abar ybar^T``: no ``n x k`` work per step.
 
-    Stopping: every ``check_every`` steps the subproblem's own gap bound
-    ``<G_N, N> + lam ||N||_* + (F / lam) max(0, ||G_N||_2 - lam)`` (relative to
-    F) must be <= ``tol`` and ``||grad_b||_inf <= tol`` (common practice, no
-    source, for the unpenalized intercept).
+    Stopping: every ``check_every`` steps, either the subproblem's own gap
+    bound ``<G_N, N> + lam ||N||_* + (F / lam) max(0, ||G_N||_2 - lam)``
+    (relative to F) is <= ``tol`` and ``||grad_b||_inf <= tol`` (common
+    practice, no source, for the unpenalized intercept), or the refinement has
+    stalled: the decrease of F over the last check interval is at most half of
+    its decrease since the start (``stall``; off by default). The bound is loose (its last
+    term dominates; measured: a bound of 1.9e-3 with the objective 2e-7 above
+    the subproblem's optimum), and the outer loop gains nothing from a
+    subproblem solved beyond its subspace's worth: with the stall test the
+    solver benchmark reached its accuracy in fewer passes and less time. The
+    outer certificate is computed in the pass independently of this test, so
+    the optimum the solver converges to is unchanged.
 
     References
     ----------
@@ -456,7 +471,7 @@ def refine(
             return _refine_squared(A, Y, w, lam, N0, b0, tol, int(max_iter), check_every,
                                    should_stop)
         return _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, int(max_iter), check_every,
-                              should_stop)
+                              should_stop, float(stall))
 
 
 def _lipschitz_bound(A: np.ndarray, w: np.ndarray, curvature: float) -> float:
@@ -483,7 +498,7 @@ def _centered(A: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
-                   should_stop=None) -> RefineResult:
+                   should_stop=None, stall=0.0) -> RefineResult:
     # Work with centered projections: A N + 1 b^T = Ac N + 1 c^T with c = b + N^T abar.
     # The trace norm is untouched (same N) and the curvature bound becomes block diagonal,
     # c * diag(Ac^T W Ac, 1) (sum_i w_i ac_i = 0), so N and the intercept get steps of their
@@ -512,6 +527,7 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
     ev.add_row(Z_x, c_x)
     f_x = ev.value(Z_x)
     F_x = f_x + lam * float(sx.sum())
+    F_start = F_check = F_x
     N_p, c_p, Z_p = N_x, c_x, Z_x
     t = 1.0
     evals = 1
@@ -569,6 +585,10 @@ def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
             if gap_rel <= tol and gb <= tol:
                 converged = True
                 break
+            if stall > 0 and F_check - F_x <= stall * (F_start - F_x):
+                converged = True
+                break
+            F_check = F_x
     return RefineResult(
         N=N_x, b=c_x - N_x.T @ abar, A=Ux, s=sx, B=Bx, objective=float(F_x), loss=float(f_x),
         iterations=it, converged=converged, gap_estimate=float(gap_rel),
