@@ -12,9 +12,11 @@ by the gradient pass, see :class:`ScratchProjections`), forms one block's
 scores ``A_b N + b``, its loss and residual ``R_b``, and adds ``A_b^T R_b``.
 The scheme is accelerated proximal gradient with backtracking and singular
 value thresholding (Beck & Teboulle 2009; Cai, Candès & Shen 2010) with a
-function-value restart (O'Donoghue & Candès 2015), started from ``L`` =
-curvature bound x largest eigenvalue of ``[A, 1]^T W [A, 1]``, which one
-stream over the blocks gives. Peak memory: one block's scores.
+function-value restart (O'Donoghue & Candès 2015) on the centered problem
+(as :func:`stream.refine.refine`: separate steps for N and the intercept),
+started from ``L`` = curvature bound x largest eigenvalue of the weighted
+covariance of ``A``, which one stream over the blocks gives. Peak memory:
+one block's scores.
 """
 
 from __future__ import annotations
@@ -171,6 +173,7 @@ class _Streamer:
         self.cw = class_weights
         self.evaluations = 0
         self.total = 0.0
+        self.abar = np.zeros(0)  # weighted column means of A (set below)
         gram = None
         for XQ, targets, w in blocks:  # total weight and the Lipschitz Gram in one stream
             ww = self._weights(XQ.shape[0], targets, w)
@@ -181,12 +184,23 @@ class _Streamer:
         if not self.total > 0:
             raise ConfigError("refine: the row weights sum to zero; give some rows positive weight")
         self.gram = gram / self.total
+        q = self.gram.shape[0] - 1
+        self.abar = self.gram[:q, q].copy()
+        # weighted covariance of A: the curvature of the centered problem in N
+        self.cov = self.gram[:q, :q] - np.outer(self.abar, self.abar)
 
     def _weights(self, n: int, targets: Any, w: np.ndarray | None) -> np.ndarray:
         ww = np.ones(n) if w is None else np.asarray(w, dtype=np.float64)
         if self.cw is not None:
             ww = ww * np.asarray(self.cw, dtype=np.float64)[np.asarray(targets, dtype=np.int64)]
         return ww
+
+    def centered(self, N: np.ndarray, c: np.ndarray, *, grad: bool) -> _Eval:
+        """Loss (and gradients) of the centered problem ``(A - 1 abar^T) N + 1 c^T``."""
+        e = self(N, c - N.T @ self.abar, grad=grad)
+        if grad:
+            e.G -= np.outer(self.abar, e.gb)
+        return e
 
     def __call__(self, N: np.ndarray, b: np.ndarray, *, grad: bool) -> _Eval:
         self.evaluations += 1
@@ -221,6 +235,7 @@ def refine_streamed(
     class_weights: np.ndarray | None = None,
     check_every: int = 5,
     should_stop: Callable[[], bool] | None = None,
+    stall: float = 0.0,
 ) -> RefineResult:
     """Solve the refinement subproblem streaming over projection blocks.
 
@@ -246,6 +261,10 @@ def refine_streamed(
         Steps between two certificate checks (each costs one extra stream).
     should_stop : callable, optional
         Checked before every step (:class:`stream.signals.StopRequested`).
+    stall : float
+        As in :func:`stream.refine.refine`: also stop once the decrease over the
+        last ``check_every`` steps is at most this fraction of the whole
+        decrease so far (0 turns it off).
 
     Returns
     -------
@@ -260,14 +279,20 @@ def refine_streamed(
     b0 = np.array(b0, dtype=np.float64).reshape(-1)
     k = N0.shape[1]
     ev = _Streamer(blocks, loss, k, class_weights)
-    L_max = _CURVATURE[loss] * float(np.linalg.eigvalsh(ev.gram)[-1]) * (1.0 + 1e-12)
-    L_max = max(L_max, 1e-300)
-    L = L_max
+    # centered, as in stream.refine: A N + 1 b^T = (A - 1 abar^T) N + 1 c^T with
+    # c = b + N^T abar, so N and the intercept get step sizes of their own
+    curv = _CURVATURE[loss]
+    lmax = float(np.linalg.eigvalsh(ev.cov)[-1]) if ev.cov.size else 0.0
+    Lc_max = curv * (1.0 + 1e-12)
+    LN_max = max(curv * lmax * (1.0 + 1e-12), 1e-12 * Lc_max)
+    ratio = Lc_max / LN_max
+    L = LN_max
     Ux, sx, Bx = svt(N0, 0.0)
-    N_x, b_x = N0.copy(), b0.copy()
-    f_x = ev(N_x, b_x, grad=False).f
+    N_x, c_x = N0.copy(), b0 + N0.T @ ev.abar
+    f_x = ev.centered(N_x, c_x, grad=False).f
     F_x = f_x + lam * float(sx.sum())
-    N_p, b_p = N_x, b_x
+    F_start = F_check = F_x
+    N_p, c_p = N_x, c_x
     t, it = 1.0, 0
     gap_rel, gb_norm, converged = np.inf, np.inf, False
     while it < int(max_iter):
@@ -277,36 +302,42 @@ def refine_streamed(
         t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
         beta = (t - 1.0) / t_next
         N_y = N_x + beta * (N_x - N_p) if beta > 0 else N_x
-        b_y = b_x + beta * (b_x - b_p) if beta > 0 else b_x
-        e_y = ev(N_y, b_y, grad=True)
-        L = max(L / _SHRINK, 1e-12 * L_max)
+        c_y = c_x + beta * (c_x - c_p) if beta > 0 else c_x
+        e_y = ev.centered(N_y, c_y, grad=True)
+        L = max(L / _SHRINK, 1e-12 * LN_max)
         while True:
+            Lc = ratio * L
             Un, sn, Bn = svt(N_y - e_y.G / L, lam / L)
             N_n = (Un * sn) @ Bn.T
-            b_n = b_y - e_y.gb / L
-            f_n = ev(N_n, b_n, grad=False).f
-            dN, db = N_n - N_y, b_n - b_y
-            model = (e_y.f + float(np.sum(e_y.G * dN)) + float(e_y.gb @ db)
-                     + 0.5 * L * (float(np.sum(dN * dN)) + float(db @ db)))
-            if f_n <= model or L >= L_max:
+            c_n = c_y - e_y.gb / Lc
+            f_n = ev.centered(N_n, c_n, grad=False).f
+            dN, dc = N_n - N_y, c_n - c_y
+            model = (e_y.f + float(np.sum(e_y.G * dN)) + float(e_y.gb @ dc)
+                     + 0.5 * (L * float(np.sum(dN * dN)) + Lc * float(dc @ dc)))
+            if f_n <= model or L >= LN_max:
                 break
-            L = min(2.0 * L, L_max)
+            L = min(2.0 * L, LN_max)
         F_n = f_n + lam * float(sn.sum())
         if F_n > F_x and beta > 0:  # function-value restart: retry from x without momentum
             t = 1.0
-            N_p, b_p = N_x, b_x
+            N_p, c_p = N_x, c_x
             continue
-        N_p, b_p = N_x, b_x
-        N_x, b_x, f_x, F_x = N_n, b_n, f_n, F_n
+        N_p, c_p = N_x, c_x
+        N_x, c_x, f_x, F_x = N_n, c_n, f_n, F_n
         Ux, sx, Bx = Un, sn, Bn
         t = t_next
         if it % check_every == 0 or it >= int(max_iter):
-            e_x = ev(N_x, b_x, grad=True)
+            e_x = ev.centered(N_x, c_x, grad=True)
             gap_rel = _certificate(e_x.G, N_x, float(sx.sum()), F_x, lam)
             gb_norm = float(np.abs(e_x.gb).max())
             if gap_rel <= tol and gb_norm <= tol:
                 converged = True
                 break
+            if stall > 0 and F_check - F_x <= stall * (F_start - F_x):
+                converged = True
+                break
+            F_check = F_x
+    b_x = c_x - N_x.T @ ev.abar
     return RefineResult(
         N=N_x, b=b_x, A=Ux, s=sx, B=Bx, objective=float(F_x), loss=float(f_x),
         iterations=it, converged=converged, gap_estimate=float(gap_rel),

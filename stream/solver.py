@@ -708,7 +708,8 @@ class GreedySolver:
         try:
             return refine_streamed(blocks, cfg.loss, self.state.lam, N0, b0,
                                    tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
-                                   class_weights=cfg.class_weights, should_stop=self.stop)
+                                   class_weights=cfg.class_weights, should_stop=self.stop,
+                                   stall=_INNER_STALL)
         finally:
             if mode == "scratch":
                 blocks.remove()
