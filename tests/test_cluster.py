@@ -257,18 +257,22 @@ def test_trained_model_on_cluster_equals_serial(tmp_path, client):
     from stream.train import train
 
     path, _ = _problem(tmp_path, n=800, d=60, k=5)
-    kw = dict(loss="softmax", lam_frac=0.3, seed=3, block_rows=200, tol=1e-9, max_passes=60)
-    serial = train(path, backend="serial", **kw)
-    dist = train(path, backend="dask", **kw)
     # Every small figure of a pass folds exactly as on the serial backend, but the d-row
     # accumulator G [V, Omega] is summed per worker range and then across ranges, which
-    # rounds differently from the serial backend's one running sum; the solver amplifies
-    # that 1e-16 to its own tolerance, so the stopping test may fire one pass apart.
-    assert dist.rank == serial.rank and abs(dist.passes - serial.passes) <= 1
-    # Measured: objective equal to ~1.4e-16 relative, spectrum to ~1.4e-8, W to ~2.7e-7
-    # of its largest entry. Not 1e-9: that needs an order-independent sum of the d-row
-    # accumulators on every backend (a compensated sum of per-block sums made the two
-    # models identical in a trial, at three times the accumulator memory).
+    # rounds differently from the serial backend's one running sum (1e-16 relative). The
+    # solver carries that to the accuracy it stops at, so the runs are compared near the
+    # optimum (tol 1e-11), where the stopping test may fire several passes apart.
+    # Measured at tol 1e-11: objective equal, spectrum to ~7e-9, W to ~5e-8 of its largest
+    # entry (at tol 1e-9 the spectrum differed by ~8e-7, W by ~3e-5, with either the
+    # range-sum or the per-block fold of the small figures). Not 1e-9 on the model: that
+    # needs an order-independent sum of the d-row accumulators on every backend (a
+    # compensated sum of per-block sums made the two models identical in a trial, at three
+    # times the accumulator memory).
+    kw = dict(loss="softmax", lam_frac=0.3, seed=3, block_rows=200, tol=1e-11, max_passes=150)
+    serial = train(path, backend="serial", **kw)
+    dist = train(path, backend="dask", **kw)
+    assert serial.status == dist.status == "converged"
+    assert dist.rank == serial.rank
     np.testing.assert_allclose(dist.objective, serial.objective, rtol=1e-9)
     np.testing.assert_allclose(dist.model.s, serial.model.s, rtol=1e-6)
     W_s = serial.model.U @ np.diag(serial.model.s) @ serial.model.V.T
