@@ -66,9 +66,18 @@ if kind == "refine":
         return real_refine(*a, **k)
 
     S.refine = refine
-if kind == "slow":  # blocks 2.. of the at-th pass take a second each (a signal lands there)
+if kind in ("pass", "slow"):
+    # "pass": pause (until killed) in block 2 of the at-th pass; "slow": blocks 2.. of
+    # the at-th pass take a second each, so a signal lands inside one of them
     import stream.gradient_pass as G
     real_run_pass, calls = G.run_pass, [0]
+
+    def on_block(seen):
+        if kind == "pass" and seen == 2:
+            pause("pass")
+        elif kind == "slow" and seen >= 2:
+            Path(os.environ["RT_PAUSE_FILE"]).write_text(str(seen))
+            time.sleep(1.0)
 
     def run_pass(source, block_fn, combine, **kw):
         calls[0] += 1
@@ -78,28 +87,7 @@ if kind == "slow":  # blocks 2.. of the at-th pass take a second each (a signal 
 
         def fn(block, state):
             seen[0] += 1
-            if seen[0] >= 2:
-                Path(os.environ["RT_PAUSE_FILE"]).write_text(str(seen[0]))
-                time.sleep(1.0)
-            return block_fn(block, state)
-
-        return real_run_pass(source, fn, combine, **kw)
-
-    G.run_pass = run_pass
-if kind == "pass":
-    import stream.gradient_pass as G
-    real_run_pass, calls = G.run_pass, [0]
-
-    def run_pass(source, block_fn, combine, **kw):
-        calls[0] += 1
-        if calls[0] != at:
-            return real_run_pass(source, block_fn, combine, **kw)
-        seen = [0]
-
-        def fn(block, state):
-            seen[0] += 1
-            if seen[0] == 2:
-                pause("pass")
+            on_block(seen[0])
             return block_fn(block, state)
 
         return real_run_pass(source, fn, combine, **kw)
