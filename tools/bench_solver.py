@@ -121,6 +121,8 @@ def child_greedy(args) -> dict:
     kw = {}
     if args.streaming:
         kw["dense_gradient"] = False
+    if args.greedy_memory:
+        kw["memory"] = args.greedy_memory
     t0 = time.perf_counter()
 
     def show(rec):
@@ -237,6 +239,8 @@ def summarize(results: dict, f_star: float) -> tuple[list[dict], dict]:
             row[f"seconds_to_{eps:g}"] = None if hit is None else hit[1]
         rows.append(row)
     ratios = {}
+    if not rows or rows[-1]["solver"] != "reference":
+        return rows, ratios
     r = rows[-1]  # the reference
     for g in rows[:-1]:
         tag = g["solver"]
@@ -307,6 +311,14 @@ def parse(argv):
     ap.add_argument("--small", action="store_true", help="smoke run: n=5000 d=2000 k=50")
     ap.add_argument("--no-streaming", action="store_true",
                     help="skip the run that forbids the dense-gradient path")
+    ap.add_argument("--solvers", default="greedy,greedy-streaming,reference",
+                    help="comma-separated runs to make (of greedy, greedy-streaming, "
+                    "reference); with --merge the others come from the saved runs")
+    ap.add_argument("--merge", action="store_true",
+                    help="keep the runs saved under --out that this invocation does not make "
+                    "(same problem: the data is regenerated from --seed)")
+    ap.add_argument("--greedy-memory", default=None,
+                    help="memory budget of the greedy runs (e.g. 128MB; default: the planner's)")
     # child mode (internal)
     ap.add_argument("--child", choices=sorted(CHILDREN), help=argparse.SUPPRESS)
     ap.add_argument("--data", help=argparse.SUPPRESS)
@@ -342,16 +354,24 @@ def _run_all(args) -> tuple[dict, float, float, list[int]]:
         greedy = [*common, "--tol", repr(args.tol), "--max-passes", str(args.max_passes)]
         if args.greedy_cap is not None:
             greedy += ["--greedy-cap", repr(args.greedy_cap)]
+        if args.greedy_memory:
+            greedy += ["--greedy-memory", args.greedy_memory]
+        wanted = [name.strip() for name in args.solvers.split(",") if name.strip()]
+        if args.no_streaming and "greedy-streaming" in wanted:
+            wanted.remove("greedy-streaming")
         results = {}
-        results["greedy"] = run_child("greedy", data, runs, greedy)
-        print(f"greedy: {results['greedy']['message']}", flush=True)
-        if not args.no_streaming:
-            results["greedy-streaming"] = run_child("greedy", data, runs, [*greedy, "--streaming"])
-            print(f"greedy-streaming: {results['greedy-streaming']['message']}", flush=True)
-        results["reference"] = run_child(
-            "reference", data, runs, [*common, "--cap", repr(args.cap),
-                                      "--max-iter", str(args.max_iter)])
-        print(f"reference: {results['reference']['message']}", flush=True)
+        for name in wanted:
+            if name == "greedy":
+                results[name] = run_child("greedy", data, runs, greedy)
+            elif name == "greedy-streaming":
+                results[name] = run_child("greedy", data, runs, [*greedy, "--streaming"])
+            elif name == "reference":
+                results[name] = run_child(
+                    "reference", data, runs, [*common, "--cap", repr(args.cap),
+                                              "--max-iter", str(args.max_iter)])
+            else:
+                raise SystemExit(f"bench_solver: unknown solver {name!r} in --solvers")
+            print(f"{name}: {results[name]['message']}", flush=True)
     return results, lam, lam_max, shape
 
 
@@ -371,6 +391,14 @@ def main(argv=None) -> int:
         results, lam, lam_max, shape = doc["results"], doc["lam"], doc["lam_max"], doc["shape"]
     else:
         results, lam, lam_max, shape = _run_all(args)
+        if args.merge and saved.exists():
+            old = json.loads(saved.read_text())
+            if old["shape"] != shape or not np.isclose(old["lam"], lam, rtol=1e-12):
+                raise SystemExit(f"bench_solver: {saved} holds another problem; drop --merge")
+            results = {**{k: v for k, v in old["results"].items() if k not in results},
+                       **results}
+        # the reference goes last: summarize() compares every other run with it
+        results = {k: results[k] for k in sorted(results, key=lambda k: k == "reference")}
         from stream.atomic import atomic_write_json
 
         atomic_write_json(saved, {"results": results, "lam": lam, "lam_max": lam_max,
@@ -378,7 +406,7 @@ def main(argv=None) -> int:
     # F*: the best objective seen; the long greedy run's gap certifies how close it is.
     best = min(results, key=lambda name: results[name]["objective"])
     f_star = results[best]["objective"]
-    g = results["greedy"]
+    g = results.get("greedy", results[best])
     f_lower = g["objective"] - g["gap"] if np.isfinite(g["gap"]) else float("nan")
     rows, ratios = summarize(results, f_star)
     meta = {"n": shape[0], "d": shape[1], "k": shape[2], "nnz": shape[3],
