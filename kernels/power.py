@@ -36,6 +36,8 @@ import numpy as np
 
 from stream.errors import ConfigError
 
+from .svd import svd
+
 BlockOp = Callable[[np.ndarray], np.ndarray]
 
 
@@ -67,7 +69,7 @@ def orth_rank_revealing(A: np.ndarray, tol: float = 1e-10, *, atol: float = 0.0)
     if not np.all(np.isfinite(A)):
         raise ConfigError("orth_rank_revealing: A has a non-finite entry")
     Q, R = np.linalg.qr(A)
-    Ur, S, _ = np.linalg.svd(R, full_matrices=False)
+    Ur, S, _ = svd(R)
     if S[0] <= 0.0:
         return np.zeros((m, 0))
     keep = S > max(tol * S[0], atol)
@@ -287,7 +289,7 @@ def top_singular_pairs(
             return PowerResult(np.zeros((m, 0)), empty, np.zeros((n, 0)), empty, empty,
                                n_iter, True, V)
         Z = _product(rmv, Q, n, "rmatvec")  # G^T Q = B^T
-        Ub, S, Vbt = np.linalg.svd(Z.T, full_matrices=False)
+        Ub, S, Vbt = svd(Z.T)
         c = min(t, S.shape[0])
         U_r = Q @ Ub[:, :c]
         V_r = Vbt[:c].T

@@ -26,6 +26,8 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
+from kernels.svd import svd
+
 from .atomic import atomic_dir, atomic_write_json, load_npz, save_npz
 from .errors import ConfigError, InputError, ModelError
 
@@ -117,7 +119,7 @@ class Model:
     ) -> Model:
         """Factor a dense W (d, k) by SVD, dropping singular values <= rtol * s_1."""
         W = np.asarray(W, dtype=np.float64)
-        U, s, Vt = np.linalg.svd(W, full_matrices=False)
+        U, s, Vt = svd(W)
         keep = s > (rtol * s[0] if s.size else 0.0)
         keep &= s > 0
         return cls(U=U[:, keep], s=s[keep], V=Vt[keep].T, b=np.asarray(b, dtype=np.float64),

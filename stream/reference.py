@@ -38,6 +38,8 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.special import expit, log_expit, logsumexp
 
+from kernels.svd import singular_values, svd
+
 from .errors import ConfigError, InputError
 
 __all__ = [
@@ -109,7 +111,7 @@ class ReferenceResult:
     @property
     def singular_values(self) -> np.ndarray:
         """Singular values of ``W`` (descending), shape (min(d, k),)."""
-        return np.linalg.svd(self.W, compute_uv=False)
+        return singular_values(self.W)
 
     def rank(self, *, rtol: float = 1e-8) -> int:
         """Number of singular values above ``rtol`` times the largest."""
@@ -330,7 +332,7 @@ def svt(A: np.ndarray, tau: float) -> tuple[np.ndarray, np.ndarray]:
     ----------
     Cai, Candès and Shen (2010), Theorem 2.1.
     """
-    U, s, Vt = np.linalg.svd(A, full_matrices=False)
+    U, s, Vt = svd(A)
     keep = s > tau
     st = s[keep] - tau
     W = (U[:, keep] * st) @ Vt[keep]
@@ -381,7 +383,7 @@ def dense_objective(
         n_outputs=n_out, max_dense_entries=MAX_DENSE_ENTRIES, max_nnz=MAX_NNZ,
     )
     f, _, _ = _smooth(P, W, np.asarray(b, dtype=np.float64), need_grad=False)
-    return f + lam * float(np.linalg.svd(W, compute_uv=False).sum())
+    return f + lam * float(singular_values(W).sum())
 
 
 def dense_gradient(
@@ -537,7 +539,7 @@ def _fista(P, W, b, *, lam, tol, max_iter, max_seconds, L, callback) -> Referenc
     passes = 0
     Wy, by = W.copy(), b.copy()
     t = 1.0
-    F = _smooth(P, W, b, need_grad=False)[0] + lam * float(np.linalg.svd(W, compute_uv=False).sum())
+    F = _smooth(P, W, b, need_grad=False)[0] + lam * float(singular_values(W).sum())
     passes += 1
     history: list[dict[str, Any]] = []
     status, message, res = "max_iter", f"iteration budget of {max_iter} reached", np.inf

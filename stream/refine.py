@@ -26,6 +26,8 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from kernels.svd import svd
+
 from .errors import ConfigError
 from .signals import StopRequested
 
@@ -114,7 +116,7 @@ def svt(M: np.ndarray, thresh: float) -> tuple[np.ndarray, np.ndarray, np.ndarra
     """
     if M.size == 0:
         return np.zeros((M.shape[0], 0)), np.zeros(0), np.zeros((M.shape[1], 0))
-    u, sig, vt = np.linalg.svd(M, full_matrices=False)
+    u, sig, vt = svd(M)
     shrunk = sig - thresh
     keep = shrunk > 0.0
     return u[:, keep], shrunk[keep], vt[keep].T

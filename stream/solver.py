@@ -38,6 +38,8 @@ from typing import Any
 
 import numpy as np
 
+from kernels.svd import svd
+
 from .errors import CheckpointError, ConfigError
 from .power import orth_against
 from .refine import _blas_one_thread, refine
@@ -47,7 +49,9 @@ __all__ = ["SolverConfig", "SolverState", "GreedySolver", "SolverResult",
            "sigma1_lower_bound", "gap_estimate"]
 
 PHASES = ("lam_max", "fit", "certify", "done")
-STATE_VERSION = 1
+STATE_VERSION = 2
+#: Versions :meth:`SolverState.from_checkpoint` reads (1 has no ``U_prev``: no momentum yet).
+_READABLE_VERSIONS = (1, 2)
 
 
 # ---------------------------------------------------------------- configuration
@@ -100,6 +104,14 @@ class SolverConfig:
         The final ``sigma_1`` has settled below this relative change (1e-4).
     inner_max_iter : int
         Most proximal steps of one refinement (default 400).
+    momentum : bool
+        Add the momentum directions to ``Psi``: the part of the previous left
+        factor outside ``[U, Psi]`` (default True). The refinement then also
+        searches along the direction the subspace last moved in, as a
+        three-term (locally optimal) block iteration does. Measured on the
+        planted softmax problem (n = 5000, d = 2000, k = 50, 0.1 lam_max, rank
+        41): 1e-4 relative suboptimality in 25 passes instead of 36, 1e-6 in 42
+        instead of 64; gap estimate after 80 passes 1.6e-6 instead of 1.3e-4.
     rotation_size : int, optional
         Most rotation directions ``(I - U U^T) G V`` in ``Psi`` (default None: all
         ``r``). Measured on a planted softmax problem (n = 1500, d = 500, k = 30,
@@ -128,6 +140,7 @@ class SolverConfig:
     certificate_passes: int = 5
     certificate_rtol: float = 1e-4
     inner_max_iter: int = 400
+    momentum: bool = True
     rotation_size: int | None = None
 
     def __post_init__(self) -> None:
@@ -187,7 +200,7 @@ def _jsonable(x: Any) -> Any:
 # inner steps did as well as 0.5 and a cap of 5 stalled the outer loop.
 _INNER_STALL = 0.5
 
-_ARRAYS = ("U", "s", "V", "b", "Omega", "Psi")
+_ARRAYS = ("U", "s", "V", "b", "Omega", "Psi", "U_prev")
 _SCALARS = ("lam", "lam_max", "phase", "passes", "step_passes", "outer_iterations",
             "seconds", "sigma1", "sigma1_prev", "path_index", "intercept_ready",
             "lam_max_settle", "cert_passes", "last_rel_gap", "objective", "status")
@@ -207,6 +220,9 @@ class SolverState:
         Power block (orthogonal to ``V`` before each pass).
     Psi : ndarray (d, p')
         Expansion block (orthogonalized against ``U`` before each pass).
+    U_prev : ndarray (d, r_prev)
+        The left factor before the last refinement (the momentum directions
+        come from it; ``d x 0`` before the first refinement).
     rng_state : dict
         ``numpy.random.Generator.bit_generator.state`` of the solver's generator.
     lam, lam_max : float or None
@@ -244,6 +260,7 @@ class SolverState:
     Omega: np.ndarray
     Psi: np.ndarray
     rng_state: dict
+    U_prev: np.ndarray | None = None
     lam: float | None = None
     lam_max: float | None = None
     phase: str = "lam_max"
@@ -260,6 +277,10 @@ class SolverState:
     last_rel_gap: float | None = None
     objective: float | None = None
     status: str = "running"
+
+    def __post_init__(self) -> None:
+        if self.U_prev is None:
+            self.U_prev = np.zeros((self.U.shape[0], 0))
 
     @property
     def rank(self) -> int:
@@ -278,18 +299,19 @@ class SolverState:
     @classmethod
     def from_checkpoint(cls, arrays: dict[str, np.ndarray], meta: dict) -> SolverState:
         """Rebuild a state written by :meth:`to_checkpoint`."""
-        missing = [n for n in _ARRAYS if n not in arrays]
+        version = meta.get("state_version")
+        missing = [n for n in _ARRAYS if n not in arrays and not (n == "U_prev" and version == 1)]
         if missing:
             raise CheckpointError(f"solver checkpoint: arrays {', '.join(missing)} missing; "
                                   "the checkpoint is damaged, resume from an older one")
-        if meta.get("state_version") != STATE_VERSION:
+        if version not in _READABLE_VERSIONS:
             raise CheckpointError(f"solver checkpoint: state version {meta.get('state_version')!r}"
                                   f" is not {STATE_VERSION}; resume it with the ranktide that "
                                   "wrote it")
         if meta.get("phase") not in PHASES or not isinstance(meta.get("rng_state"), dict):
             raise CheckpointError("solver checkpoint: phase or rng_state unreadable; the "
                                   "checkpoint is damaged, resume from an older one")
-        kw = {n: np.array(arrays[n], dtype=np.float64) for n in _ARRAYS}
+        kw = {n: np.array(arrays[n], dtype=np.float64) for n in _ARRAYS if n in arrays}
         kw.update({n: meta.get(n) for n in _SCALARS if n in meta})
         kw["rng_state"] = meta["rng_state"]
         return cls(**kw)
@@ -364,11 +386,30 @@ def _top_left(M: np.ndarray, count: int, *, rtol: float = 1e-8) -> np.ndarray:
     if M.shape[1] == 0 or count <= 0:
         return np.zeros((M.shape[0], 0))
     Q, R = np.linalg.qr(M)
-    u, sv, _ = np.linalg.svd(R)
+    u, sv, _ = svd(R)
     if sv[0] <= 0:
         return np.zeros((M.shape[0], 0))
     keep = int(np.sum(sv > rtol * sv[0]))
     return Q @ u[:, : min(count, keep)]
+
+
+def _momentum(U_prev: np.ndarray, Q: np.ndarray, *, atol: float = 1e-9) -> np.ndarray:
+    """Orthonormal directions of ``(I - Q Q^T) U_prev``: where the subspace last moved.
+
+    ``U_prev`` (d x r') and ``Q`` (d x q) have orthonormal columns, so the
+    singular values of the residual are the sines of the angles between
+    ``U_prev`` and ``span(Q)``; directions below ``atol`` (no motion) are dropped.
+    Returns (d, m) with ``m <= r'``, orthogonal to ``Q``.
+    """
+    if U_prev.shape[1] == 0:
+        return np.zeros((Q.shape[0], 0))
+    Rm = U_prev - Q @ (Q.T @ U_prev)
+    Qr, Rr = np.linalg.qr(Rm)
+    u, sv, _ = svd(Rr)
+    keep = int(np.sum(sv > atol))
+    M = Qr @ u[:, :keep]
+    # one more projection against Q: the residual's rounding is relative to U_prev, not to M
+    return orth_against(M, Q)
 
 
 def _dense_top(G: np.ndarray, count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -376,7 +417,7 @@ def _dense_top(G: np.ndarray, count: int) -> tuple[np.ndarray, np.ndarray, np.nd
     d, k = G.shape
     count = max(1, min(count, min(d, k)))
     if min(d, k) <= 400 or count >= min(d, k) - 1:
-        u, sv, vt = np.linalg.svd(G, full_matrices=False)
+        u, sv, vt = svd(G)
         return u[:, :count], sv[:count], vt[:count].T
     from scipy.sparse.linalg import svds
 
@@ -554,6 +595,7 @@ class GreedySolver:
         st.cert_passes = 0
         st.last_rel_gap = None
         st.status = "running"
+        st.U_prev = np.zeros((self.d, 0))  # momentum belongs to one lam
         if path_index is not None:
             st.path_index = int(path_index)
 
@@ -574,6 +616,8 @@ class GreedySolver:
         rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
         st.Psi = _fill(st.Psi, st.U, cfg.expand_size, self._rng, cap=rot + cfg.expand_size)
         st.Omega = _fill(st.Omega, st.V, cfg.power_size, self._rng)
+        if cfg.momentum:
+            st.Psi = np.hstack([st.Psi, _momentum(st.U_prev, np.hstack([st.U, st.Psi]))])
         # keep the generator's position in the state, so a checkpoint resumes the same draws
         st.rng_state = self._rng.bit_generator.state
         mode = self._refine_mode(st.rank + st.Psi.shape[1])
@@ -677,10 +721,11 @@ class GreedySolver:
         else:
             out = self._refine_streamed(proj, mode, N0, req.b, rel_gap)
         secs = time.perf_counter() - t0
+        st.U_prev = req.U
         U_new = Q @ out.A
         # re-orthonormalize against rounding of the product Q A
         Uq, Ur = np.linalg.qr(U_new)
-        uu, ss, vvt = np.linalg.svd(Ur * out.s)
+        uu, ss, vvt = svd(Ur * out.s)
         st.U = Uq @ uu
         st.s = ss
         st.V = out.B @ vvt.T

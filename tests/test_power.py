@@ -228,3 +228,22 @@ def test_more_error_messages():
     for call, msg in cases:
         with pytest.raises(ConfigError, match=msg):
             call()
+
+
+def test_svd_falls_back_to_gesvd_when_gesdd_fails(monkeypatch):
+    """kernels.svd: when numpy's gesdd raises, scipy's gesvd answers (scipy.linalg reference)."""
+    import scipy.linalg
+
+    from kernels import svd as svd_mod
+
+    A = np.random.default_rng(0).standard_normal((30, 7))
+    want = scipy.linalg.svd(A, full_matrices=False, lapack_driver="gesvd")
+
+    def refuse(*args, **kwargs):
+        raise np.linalg.LinAlgError("SVD did not converge")
+
+    monkeypatch.setattr(svd_mod.np.linalg, "svd", refuse)
+    U, s, Vt = svd_mod.svd(A)
+    np.testing.assert_allclose(s, want[1], rtol=1e-14)
+    np.testing.assert_allclose((U * s) @ Vt, A, atol=1e-12)
+    np.testing.assert_allclose(svd_mod.singular_values(A), want[1], rtol=1e-14)

@@ -28,6 +28,7 @@ from stream.solver import (
     SolverConfig,
     SolverState,
     _fill,
+    _momentum,
     gap_estimate,
     sigma1_lower_bound,
 )
@@ -202,9 +203,63 @@ def test_state_checkpoint_round_trip_gives_identical_next_pass(tmp_path):
         ra, rb = a.step(), b.step()
         for key in ("objective", "gap_estimate", "sigma1", "rank", "atoms_added"):
             assert ra[key] == rb[key], key
-    for name in ("U", "s", "V", "b", "Omega", "Psi"):
+    for name in ("U", "s", "V", "b", "Omega", "Psi", "U_prev"):
         assert np.array_equal(getattr(a.state, name), getattr(b.state, name)), name
     assert a.state.rng_state == b.state.rng_state
+    assert a.state.U_prev.shape[1] > 0  # the momentum directions' source was saved
+
+
+def test_version_1_checkpoint_reads_without_momentum_source():
+    X, y = _problem("softmax", seed=6)
+    cfg = SolverConfig(loss="softmax", lam_frac=0.2, dense_gradient=False)
+    a = GreedySolver((X, y), cfg)
+    for _ in range(3):
+        a.step()
+    arrays, meta = a.state.to_checkpoint()
+    del arrays["U_prev"]
+    meta["state_version"] = 1
+    old = SolverState.from_checkpoint(arrays, meta)
+    assert old.U_prev.shape == (X.shape[1], 0)
+    meta["state_version"] = 2  # the current version must carry it
+    with pytest.raises(Exception, match="U_prev missing"):
+        SolverState.from_checkpoint(arrays, meta)
+
+
+def test_momentum_directions_span_the_motion_outside_q():
+    rng = np.random.default_rng(3)
+    d = 40
+    Q = np.linalg.qr(rng.standard_normal((d, 6)))[0]
+    # U_prev: two columns inside span(Q), two with a component outside it
+    out = np.linalg.qr(rng.standard_normal((d, 2)) - Q @ (Q.T @ rng.standard_normal((d, 2))))[0]
+    out -= Q @ (Q.T @ out)
+    out = np.linalg.qr(out)[0]
+    U_prev = np.linalg.qr(np.hstack([Q[:, :2], Q[:, 2:4] + 0.3 * out]))[0]
+    M = _momentum(U_prev, Q)
+    assert M.shape == (d, 2)
+    np.testing.assert_allclose(M.T @ M, np.eye(2), atol=1e-12)
+    np.testing.assert_allclose(Q.T @ M, 0.0, atol=1e-12)
+    # the residual (I - Q Q^T) U_prev lies in span(M): projecting onto M leaves nothing
+    Rm = U_prev - Q @ (Q.T @ U_prev)
+    np.testing.assert_allclose(Rm - M @ (M.T @ Rm), 0.0, atol=1e-12)
+    # no motion: U_prev inside span(Q) gives no direction
+    assert _momentum(Q[:, :3], Q).shape == (d, 0)
+    assert _momentum(np.zeros((d, 0)), Q).shape == (d, 0)
+
+
+def test_momentum_on_and_off_reach_the_same_conic_optimum():
+    X, y = _problem("softmax", n=250, d=30, k=6, seed=12)
+    out = {}
+    for mom in (True, False):
+        cfg = SolverConfig(loss="softmax", lam_frac=0.1, dense_gradient=False, tol=1e-8,
+                           momentum=mom, max_passes=200)
+        out[mom] = GreedySolver((X, y), cfg).run()
+        assert out[mom].status == "converged"
+    # Reference: CVXPY + Clarabel optimum of the same problem (tests/conic.py).
+    con = solve_conic(X, y, loss="softmax", lam=out[True].lam, n_outputs=6)
+    for r in out.values():
+        assert r.objective == pytest.approx(con.objective, rel=1e-6)
+    np.testing.assert_allclose(np.sort(out[True].s)[::-1], np.sort(out[False].s)[::-1],
+                               rtol=1e-4, atol=1e-8)
 
 
 def test_same_seed_same_model_and_callback_stop():
