@@ -313,12 +313,15 @@ def parse(argv):
                     help="skip the run that forbids the dense-gradient path")
     ap.add_argument("--solvers", default="greedy,greedy-streaming,reference",
                     help="comma-separated runs to make (of greedy, greedy-streaming, "
-                    "reference); with --merge the others come from the saved runs")
+                    "greedy-budget, reference); with --merge the others come from the saved runs")
     ap.add_argument("--merge", action="store_true",
                     help="keep the runs saved under --out that this invocation does not make "
                     "(same problem: the data is regenerated from --seed)")
     ap.add_argument("--greedy-memory", default=None,
-                    help="memory budget of the greedy runs (e.g. 128MB; default: the planner's)")
+                    help="memory budget of the greedy-budget run (default 160MB)")
+    ap.add_argument("--merge-runs", type=Path, nargs="*", default=[],
+                    help="with --from-runs: also take the runs saved in these "
+                    "bench_solver_runs.json files (same problem)")
     # child mode (internal)
     ap.add_argument("--child", choices=sorted(CHILDREN), help=argparse.SUPPRESS)
     ap.add_argument("--data", help=argparse.SUPPRESS)
@@ -354,8 +357,6 @@ def _run_all(args) -> tuple[dict, float, float, list[int]]:
         greedy = [*common, "--tol", repr(args.tol), "--max-passes", str(args.max_passes)]
         if args.greedy_cap is not None:
             greedy += ["--greedy-cap", repr(args.greedy_cap)]
-        if args.greedy_memory:
-            greedy += ["--greedy-memory", args.greedy_memory]
         wanted = [name.strip() for name in args.solvers.split(",") if name.strip()]
         if args.no_streaming and "greedy-streaming" in wanted:
             wanted.remove("greedy-streaming")
@@ -365,6 +366,10 @@ def _run_all(args) -> tuple[dict, float, float, list[int]]:
                 results[name] = run_child("greedy", data, runs, greedy)
             elif name == "greedy-streaming":
                 results[name] = run_child("greedy", data, runs, [*greedy, "--streaming"])
+            elif name == "greedy-budget":
+                results[name] = run_child("greedy", data, runs,
+                                          [*greedy, "--greedy-memory",
+                                                         args.greedy_memory or "160MB"])
             elif name == "reference":
                 results[name] = run_child(
                     "reference", data, runs, [*common, "--cap", repr(args.cap),
@@ -389,6 +394,12 @@ def main(argv=None) -> int:
     if args.from_runs:
         doc = json.loads(saved.read_text())
         results, lam, lam_max, shape = doc["results"], doc["lam"], doc["lam_max"], doc["shape"]
+        for other in args.merge_runs:
+            more = json.loads(other.read_text())
+            if more["shape"] != shape or not np.isclose(more["lam"], lam, rtol=1e-12):
+                raise SystemExit(f"bench_solver: {other} holds another problem")
+            results = {**results, **more["results"]}
+        results = {k: results[k] for k in sorted(results, key=lambda k: k == "reference")}
     else:
         results, lam, lam_max, shape = _run_all(args)
         if args.merge and saved.exists():
