@@ -3,10 +3,14 @@
 Workers open the store by path or URL (once per worker process, cached here
 so the opener is importable by the workers); each task reduces one contiguous
 range of blocks (ranges balanced by rows) and the client folds the results in
-block order, so a pass gives the serial backend's result to rounding: every
+block order, so a pass gives the serial backend's result bit for bit (but for
+the vanishing chance stated in :mod:`kernels.compensated`): every
 small figure (loss, weights, ``grad_b``, ``G^T U``, ``G^T Psi``) folds
-exactly as on the serial backend, only the d-row accumulators are summed per
-range first.
+exactly as on the serial backend, and the d-row accumulators, summed per
+range first, are compensated sums (:mod:`kernels.compensated`) whose value
+does not depend on the grouping. A range result carries each accumulator's
+sum and compensation (two d-row arrays); the CSR path's block-term buffer
+stays on the worker.
 
 The model state is sent once per pass with ``client.scatter(...,
 broadcast=True)``; the tasks receive a future of it, never a copy each.
@@ -187,7 +191,9 @@ def _flatten(obj: Any, big: list[np.ndarray], small: list[np.ndarray]) -> Any:
         big.append(obj)
         return ("a", len(big) - 1)
     if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
-        fields = tuple((f.name, _flatten(getattr(obj, f.name), big, small))
+        # a field marked metadata={"wire": False} (a reusable scratch buffer) travels as None
+        fields = tuple((f.name, _flatten(getattr(obj, f.name), big, small)
+                        if f.metadata.get("wire", True) else ("v", None))
                        for f in dataclasses.fields(obj))
         return ("d", type(obj), fields)
     if sp.issparse(obj) and obj.format == "csr":
@@ -413,8 +419,9 @@ def dask_backend(job: Any) -> None:
     takes a block's own small figures out before the worker folds ``rest``;
     ``combine.join_remote(light, rest) -> partial`` attaches a range's folded
     rest to its first block. The client then folds every block's light
-    partial in block order, exactly as the serial backend does, and only the
-    big accumulators (summed per range on the workers) round differently.
+    partial in block order, exactly as the serial backend does; the big
+    accumulators, summed per range on the workers, are compensated sums that
+    the client combines (``combine`` does both), with the serial result.
 
     A task lost with a dying worker is recomputed by the scheduler on another
     worker from the same inputs, so the pass result does not change. When

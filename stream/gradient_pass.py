@@ -14,6 +14,13 @@ weighted residual and ``G = X^T R`` the gradient of ``f``:
 Blocks work with raw weights; the combine only sums, and the division by the
 total weight comes after the last block, so nothing needs the total in
 advance. ``R`` never exists beyond one block.
+
+The d-row sums (``G [V, Omega]`` and the dense ``G``) are compensated sums
+(:mod:`kernels.compensated`): every block's term is formed on its own, from
+zero, and added with an error-free two-sum, so their value does not depend on
+how the blocks are grouped into partials — the serial running sum, the
+threads backend and the per-worker ranges of the dask backend give the same
+bits, and a solver run on a cluster takes the serial run's steps.
 """
 
 from __future__ import annotations
@@ -219,9 +226,16 @@ class _Partial:
 
     The d-row products ``X^T (R [V, Omega])`` and ``X^T R`` of a block are
     kept as pending terms ``(X_b or its transpose, R_b [V, Omega], R_b or None,
-    timing)`` and added
-    into the d-row accumulators by the combine, so no block ever allocates
-    a d x (r + p) (or d x k) array of its own.
+    timing)`` and added into the d-row accumulators by the combine, so no
+    block ever allocates a d x (r + p) (or d x k) array of its own.
+
+    Each d-row accumulator is a compensated sum (:mod:`kernels.compensated`):
+    ``G_VO`` (resp. ``G``) holds the running sum ``S`` and ``G_VO_err`` (resp.
+    ``G_err``) its compensation ``C``; the value is ``S + C``, the same bits
+    however the blocks were grouped into partials (serial running sum,
+    threads, worker ranges on dask). ``scratch`` holds the zeroed block-term
+    buffers of the CSR path, reused across blocks; it never travels
+    (``wire=False``: :func:`stream.cluster.to_wire` sends None).
     """
 
     rows: int
@@ -234,6 +248,9 @@ class _Partial:
     G: np.ndarray | None = None
     terms: list = field(default_factory=list)
     projections: list[Projection] | None = None
+    G_VO_err: np.ndarray | None = None
+    G_err: np.ndarray | None = None
+    scratch: dict | None = field(default=None, repr=False, metadata={"wire": False})
 
 
 @dataclass(frozen=True)
@@ -266,7 +283,7 @@ def _state(req: PassRequest, where: str) -> _State:
     )
     VO = ops.VO
     # block_products then skips X^T (R [V, Omega]): the pass adds that term in
-    # the combine, straight into the one d x (r + p) accumulator
+    # the combine, into the one compensated d x (r + p) accumulator
     ops = replace(ops, VO=np.zeros((ops.k, 0)))
     return _State(
         ops=ops,
@@ -365,29 +382,77 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
     )
 
 
+def _add_term(acc: _Partial, name: str, X: Any, D: np.ndarray) -> None:
+    """Add the block term ``X^T D`` into the compensated accumulator ``name`` of ``acc``.
+
+    The first term goes straight into the zero sum (two-sum of 0 and ``x`` is
+    ``(x, 0)``, so this is the compensated add's own result). Later terms: on a
+    transposed block the fused kernel forms each column's term and adds it;
+    on a CSR block the term is scattered into a zeroed ``d x m`` buffer
+    (reused across blocks, zeroed again by the add).
+    """
+    from kernels.compensated import compensated_add, csc_t_matmul_compensated
+    from kernels.csc import BlockCSC
+
+    S = getattr(acc, name)
+    if S is None:
+        S = np.zeros((X.shape[1], D.shape[1]))
+        _xt_accumulate(X, D, S)
+        setattr(acc, name, S)
+        setattr(acc, name + "_err", np.zeros_like(S))
+        return
+    C = getattr(acc, name + "_err")
+    if isinstance(X, BlockCSC):
+        csc_t_matmul_compensated(X, D, S, C)
+        return
+    if acc.scratch is None:
+        acc.scratch = {}
+    buf = acc.scratch.get(name)
+    if buf is None:
+        buf = acc.scratch[name] = np.zeros_like(S)
+    _xt_accumulate(X, D, buf)
+    compensated_add(buf, S, C)
+
+
 def _materialize(acc: _Partial) -> None:
     """Add the pending terms of ``acc`` into its d-row accumulators."""
     from .sparse_path import CHOOSER
 
     for X, D, R, (key, path, block_s, nnz) in acc.terms:
         t0 = time.perf_counter()
-        if acc.G_VO is None:
-            acc.G_VO = np.zeros((X.shape[1], D.shape[1]))
         with phase("xt_products"):
-            _xt_accumulate(X, D, acc.G_VO)
+            _add_term(acc, "G_VO", X, D)
             if R is not None:
-                if acc.G is None:
-                    acc.G = np.zeros((X.shape[1], R.shape[1]))
-                _xt_accumulate(X, R, acc.G)
+                _add_term(acc, "G", X, R)
         CHOOSER.record(key, path, block_s + time.perf_counter() - t0, nnz)
     acc.terms = []
+
+
+def _combine_sums(acc: _Partial, p: _Partial) -> None:
+    """``acc += p`` for the d-row accumulators of an already reduced partial ``p``."""
+    from kernels.compensated import compensated_combine
+
+    for name in ("G_VO", "G"):
+        S2 = getattr(p, name)
+        if S2 is None:
+            continue
+        C2 = getattr(p, name + "_err")
+        if getattr(acc, name) is None:  # nothing here yet: take p's pair as it is
+            setattr(acc, name, S2)
+            setattr(acc, name + "_err", C2)
+            continue
+        compensated_combine(getattr(acc, name), getattr(acc, name + "_err"), S2, C2)
 
 
 def combine_partials(parts: list[_Partial]) -> _Partial:
     """Sum partials in block order, accumulating into the first.
 
     The pass engine owns the partials it hands over, so the first one's
-    buffers are reused: one d x (r + p) accumulator per pass.
+    buffers are reused: one compensated d x (r + p) accumulator (and one
+    block-term buffer) per pass. The d-row sums are compensated, so the
+    grouping of blocks into partials does not change them (see
+    :mod:`kernels.compensated`); the small figures are plain sums, folded in
+    block order by every backend.
     """
     acc = parts[0]
     _materialize(acc)
@@ -398,10 +463,7 @@ def combine_partials(parts: list[_Partial]) -> _Partial:
         acc.grad_b += p.grad_b
         acc.Gt_Psi += p.Gt_Psi
         acc.Gt_U += p.Gt_U
-        if p.G_VO is not None:  # an already reduced partial (tree reduction)
-            acc.G_VO += p.G_VO
-            if p.G is not None:
-                acc.G += p.G
+        _combine_sums(acc, p)  # an already reduced partial (tree reduction, worker range)
         acc.terms = p.terms
         _materialize(acc)
         if acc.projections is not None:
@@ -413,8 +475,9 @@ def _split_remote(p: _Partial) -> tuple[_Partial, _Partial]:
     """A block's own small figures (and projections), and the rest to fold remotely.
 
     Used by backends that fold ranges of blocks on workers (stream.cluster):
-    the client folds the light partials in block order, so every figure but
-    the d-row accumulators is summed exactly as on the serial backend.
+    the client folds the light partials in block order, so every figure is
+    summed exactly as on the serial backend (the d-row accumulators by their
+    compensated sums, the rest by the same fold).
     """
     light = _Partial(
         rows=p.rows,
@@ -430,9 +493,9 @@ def _split_remote(p: _Partial) -> tuple[_Partial, _Partial]:
 
 
 def _join_remote(light: _Partial, rest: _Partial) -> _Partial:
-    """Attach a range's folded d-row accumulators to the light partial of its first block."""
-    light.G_VO = rest.G_VO
-    light.G = rest.G
+    """Attach a range's folded d-row accumulators (sums and compensations) to its first block."""
+    light.G_VO, light.G_VO_err = rest.G_VO, rest.G_VO_err
+    light.G, light.G_err = rest.G, rest.G_err
     return light
 
 
@@ -446,9 +509,14 @@ def _finalize(acc: _Partial, st: _State, profile: PassProfile | None, where: str
     inv = 1.0 / acc.weight
     Gt_U = acc.Gt_U * inv
     inner = float(np.einsum("j,kj,kj->", st.s, st.V, Gt_U))
-    acc.G_VO *= inv  # in place: the accumulators belong to this pass
-    if acc.G is not None:
-        acc.G *= inv
+    # the compensated sums' values S + C, scaled in place (the accumulators belong
+    # to this pass); the compensations and block-term buffers are dropped
+    for S, C in ((acc.G_VO, acc.G_VO_err), (acc.G, acc.G_err)):
+        if S is not None:
+            if C is not None:
+                S += C
+            S *= inv
+    acc.G_VO_err = acc.G_err = acc.scratch = None
     return PassResult(
         n_rows=acc.rows,
         weight_total=acc.weight,

@@ -1,7 +1,9 @@
 """The memory planner: block sizes from a budget, and what fits in memory.
 
 A pass holds, at its peak, the model (``U``, ``V``, ``Omega``, ``Psi``, ``b``
-and their concatenations), the accumulated partial sums, a few partials and
+and their concatenations), the accumulated partial sums (each d-row sum
+compensated: sum, compensation and a block-term buffer, three d-row arrays; see
+:mod:`kernels.compensated`), a few partials and
 blocks in flight (each block's decoded CSR, its read buffers and its dense
 per-row temporaries: projections, scores, residual), the kernels' per-thread
 accumulators and, when asked, the dense gradient and the cached projections.
@@ -107,7 +109,8 @@ class Plan:
         ``model``, ``accumulators``, ``blocks``,
         ``partials``, ``dense_gradient``, ``projections`` (bytes).
     dense_gradient_fits : bool
-        ``d x k`` float64 is at most a third of the budget.
+        The dense gradient's arrays (``d x k`` float64: its compensated sum,
+        compensation and block-term buffer) are at most a third of the budget.
     dense_gradient : bool
         Whether the plan accumulates the dense gradient.
     projections_bytes : int
@@ -139,6 +142,15 @@ class Plan:
                  ("dense gradient fits", "yes" if self.dense_gradient_fits else "no"),
                  ("projections fit", "yes" if self.projections_fit else "no")]
         return rows
+
+
+def _accumulator_copies(backend: str, n_threads: int) -> int:
+    """d-row arrays per accumulator: sum, compensation and the CSR block-term buffer.
+
+    On dask the client holds its running pair and, at worst, the pairs of all
+    other ranges (one per worker, ``n_threads`` standing for the workers).
+    """
+    return 3 if backend in ("serial", "threads") else max(3, 2 * n_threads)
 
 
 def _in_flight(backend: str, n_threads: int) -> int:
@@ -175,7 +187,8 @@ def plan_blocks(
         The caller wants ``X [U, Psi]`` (n x (r + p')) cached.
     dense_gradient : bool, optional
         Accumulate the dense ``d x k`` gradient: True forces it (an error if
-        it does not fit), False refuses it, None takes it when it fits.
+        it does not fit), False refuses it, None takes it when it fits (its
+        three ``d x k`` arrays within a third of the budget).
     backend, n_threads
         The pass backend, which sets the blocks in flight.
     max_block_bytes : int
@@ -198,19 +211,24 @@ def plan_blocks(
     idx = 4 if d < 2**31 else 8
 
     model = f8 * (2 * d * q + 2 * k * (r + p) + k)
-    # G [V, Omega] is accumulated in place (the kernels need no per-thread copies)
-    accum = f8 * (d * (r + p) + k * (pp + r) + k)
+    # each d-row accumulator (G [V, Omega], the dense G) is a compensated sum: its sum,
+    # its compensation and the CSR path's block-term buffer (kernels.compensated; the
+    # kernels need no per-thread copies); on dask the client also holds the range
+    # sums that arrived before their predecessors
+    copies = _accumulator_copies(backend, threads)
+    accum = f8 * (copies * d * (r + p) + k * (pp + r) + k)
     dense_bytes = f8 * d * k
-    dense_fits = dense_bytes <= B / 3
+    dense_fits = copies * dense_bytes <= B / 3
     if dense_gradient is True and not dense_fits:
-        raise ConfigError(f"dense gradient: {format_bytes(dense_bytes)} (d x k float64) is over "
-                          f"a third of the budget {format_bytes(B)}; raise --memory or drop it")
+        raise ConfigError(f"dense gradient: {copies} x {format_bytes(dense_bytes)} (d x k "
+                          f"float64: sum, compensation, block buffer) is over a third of the "
+                          f"budget {format_bytes(B)}; raise --memory or drop it")
     use_dense = dense_fits if dense_gradient is None else bool(dense_gradient)
     inflight = _in_flight(backend, threads)
     # a block's partial: its small sums; its d-row terms stay factored as
     # (X_b, R_b [V, Omega], R_b), counted with the block's per-row bytes
     partial = f8 * k * (pp + r + 1)
-    dense_total = dense_bytes if use_dense else 0  # one accumulator, scaled in place
+    dense_total = copies * dense_bytes if use_dense else 0  # scaled in place at the end
     proj_bytes = f8 * n * q
     fixed = model + accum + dense_total + inflight * partial
     if fixed >= B:

@@ -324,11 +324,20 @@ def test_plan_dense_gradient_and_projections_rules():
     X, y, w = _data(n=1000, d=600, k=50)
     src = MemorySource(X, y, weights=w)
     dense = 600 * 50 * 8
-    # the stated rule: d x k float64 fits when it is at most a third of the budget
-    assert plan_blocks(src, budget=3 * dense + 3, rank=2).dense_gradient_fits
-    assert not plan_blocks(src, budget=3 * dense - 3, rank=2).dense_gradient_fits
-    with pytest.raises(ConfigError, match="dense gradient"):
-        plan_blocks(src, budget=2 * dense, rank=2, dense_gradient=True)
+    # the stated rule: the dense gradient fits when its arrays are at most a third of
+    # the budget; they are three d x k float64 (compensated sum, compensation, the CSR
+    # path's block-term buffer), and on dask the client's range sums too
+    assert plan_blocks(src, budget=9 * dense + 9, rank=2).dense_gradient_fits
+    assert not plan_blocks(src, budget=9 * dense - 9, rank=2).dense_gradient_fits
+    assert not plan_blocks(src, budget=9 * dense + 9, rank=2, backend="dask",
+                           n_threads=2).dense_gradient_fits
+    assert plan_blocks(src, budget=12 * dense + 12, rank=2, backend="dask",
+                       n_threads=2).dense_gradient_fits
+    with pytest.raises(ConfigError, match="dense gradient: 3 x"):
+        plan_blocks(src, budget=8 * dense, rank=2, dense_gradient=True)
+    plan = plan_blocks(src, budget=2**30, rank=2, dense_gradient=True)
+    assert plan.breakdown["dense_gradient"] == 3 * dense
+    assert plan.breakdown["accumulators"] >= 3 * 600 * 2 * 8
     big = plan_blocks(src, budget=2**30, rank=4, psi_cols=4, keep_projections=True)
     assert big.projections_fit and big.projections_bytes == 1000 * 8 * 8
     assert big.breakdown["projections"] == big.projections_bytes
