@@ -95,7 +95,10 @@ class SolverConfig:
         None (default): use the dense-gradient path when ``d x k`` float64 fits a
         third of the budget; True forces it, False forbids it.
     lam_max_passes : int
-        Most passes at ``W = 0`` spent settling ``sigma_1`` (default 8).
+        Most passes at ``W = 0`` spent settling ``sigma_1`` (default 8). With an
+        explicit ``lam`` the fit starts as soon as the ``sigma_1`` lower bound
+        exceeds ``lam`` (the matrix-free path then saves up to 7 passes; the
+        reported ``lam_max`` is that lower bound, ``lam_max_settled`` False).
     lam_max_rtol : float
         ``sigma_1`` has settled when its relative change is below this (1e-6).
     certificate_passes : int
@@ -203,7 +206,8 @@ _INNER_STALL = 0.5
 _ARRAYS = ("U", "s", "V", "b", "Omega", "Psi", "U_prev")
 _SCALARS = ("lam", "lam_max", "phase", "passes", "step_passes", "outer_iterations",
             "seconds", "sigma1", "sigma1_prev", "path_index", "intercept_ready",
-            "lam_max_settle", "cert_passes", "last_rel_gap", "objective", "status")
+            "lam_max_settle", "lam_max_settled", "cert_passes", "last_rel_gap", "objective",
+            "status")
 
 
 @dataclass
@@ -243,6 +247,10 @@ class SolverState:
         ``b`` already is the best intercept alone (set after the first pass).
     lam_max_settle : int
         Passes at ``b0`` in the lam_max phase.
+    lam_max_settled : bool
+        ``lam_max`` is the settled ``sigma_1`` at ``W = 0``; False when an
+        explicit ``lam`` let fitting start as soon as the lower bound passed it
+        (``lam_max`` is then that lower bound).
     cert_passes : int
         Extra certificate passes spent on the current model.
     last_rel_gap : float or None
@@ -273,6 +281,7 @@ class SolverState:
     path_index: int = 0
     intercept_ready: bool = False
     lam_max_settle: int = 0
+    lam_max_settled: bool = True
     cert_passes: int = 0
     last_rel_gap: float | None = None
     objective: float | None = None
@@ -439,6 +448,7 @@ class SolverResult:
     b: np.ndarray
     lam: float
     lam_max: float | None
+    lam_max_settled: bool
     objective: float
     gap: float
     rel_gap: float
@@ -851,9 +861,13 @@ class GreedySolver:
         settled = self.dense or (
             prev is not None and abs(sigma1 - prev) <= cfg.lam_max_rtol * max(sigma1, 1e-300))
         rec.update(lam_max_estimate=sigma1)
-        if not settled and st.lam_max_settle < cfg.lam_max_passes:
+        # an explicit lam below the lower bound sigma1 <= lam_max: W = 0 is not optimal
+        # (DESIGN section 2), so fitting may start without settling lam_max exactly
+        early = not settled and cfg.lam is not None and sigma1 > cfg.lam
+        if not settled and not early and st.lam_max_settle < cfg.lam_max_passes:
             return False
         st.lam_max = sigma1
+        st.lam_max_settled = not early
         lam = self._lam_after_settle()
         if lam is None:  # caller sets lam (regularization path) after lam_max is known
             st.phase = "fit"
@@ -946,6 +960,7 @@ class GreedySolver:
         }
         return SolverResult(
             U=st.U, s=st.s, V=st.V, b=st.b, lam=lam, lam_max=st.lam_max,
+            lam_max_settled=bool(st.lam_max_settled),
             objective=float(st.objective) if st.objective is not None else math.nan,
             gap=gap, rel_gap=rel, sigma1=float(st.sigma1) if st.sigma1 is not None else math.nan,
             status=status, message=messages.get(status, status), passes=st.passes,

@@ -246,7 +246,8 @@ def _model(src: Any, loss: str, fit: SolverResult, meta: dict) -> Any:
 
 def _fit_meta(fit: SolverResult, fingerprint: str, grad_b: float) -> dict:
     return _jsonable({
-        "lam": fit.lam, "lam_max": fit.lam_max, "store_fingerprint": fingerprint,
+        "lam": fit.lam, "lam_max": fit.lam_max, "lam_max_settled": fit.lam_max_settled,
+        "store_fingerprint": fingerprint,
         "objective": fit.objective, "gap": fit.gap, "gap_is_estimate": True,
         "rel_gap": fit.rel_gap, "sigma_ratio": fit.sigma_ratio, "grad_b_norm": grad_b,
         "passes": fit.passes, "seconds": fit.seconds, "status": fit.status,

@@ -181,6 +181,29 @@ def test_lam_max_is_sigma1_of_gradient_at_best_intercept(dense):
     assert res.lam_max == pytest.approx(np.linalg.norm(G, 2), rel=1e-6)
     # lam = 2 lam_max > lam_max: W = 0 is optimal
     assert res.status == "converged" and res.rank == 0
+    assert res.lam_max_settled
+
+
+def test_explicit_lam_starts_fitting_before_lam_max_settles():
+    X, y = _problem("softmax", n=200, d=30, k=6, seed=5)
+    n, k = X.shape[0], 6
+    # Reference: numpy. lam_max = ||X^T (softmax(b0) - E_y) / n||_2 with b0 = log frequencies
+    freq = np.bincount(y, minlength=k) / n
+    lam_max = np.linalg.norm(np.asarray(X.T @ (freq[None, :] - np.eye(k)[y])) / n, 2)
+    lam = 0.2 * lam_max
+    base = dict(loss="softmax", dense_gradient=False, tol=1e-8, max_passes=200)
+    early = GreedySolver((X, y), SolverConfig(lam=lam, **base)).run()
+    settled = GreedySolver((X, y), SolverConfig(lam_frac=0.2, lam_max_passes=30, **base))
+    settled = settled.run()
+    assert not early.lam_max_settled and settled.lam_max_settled
+    # the lower bound: lam < reported lam_max <= the true lam_max
+    assert lam < early.lam_max <= lam_max * (1 + 1e-12)
+    first_fit = [h["pass"] for h in early.history if h.get("phase") == "fit"][0]
+    assert first_fit <= 3  # pass 1 sets b0, pass 2 already has sigma_1 > lam
+    # Reference: CVXPY + Clarabel optimum (tests/conic.py); both runs reach it
+    con = solve_conic(X, y, loss="softmax", lam=lam, n_outputs=k)
+    assert early.objective == pytest.approx(con.objective, rel=1e-6)
+    assert settled.lam == pytest.approx(lam, rel=1e-5)
 
 
 # ---------------------------------------------------------------- state, determinism
