@@ -20,8 +20,9 @@ intercept ``b``. Each outer iteration (DESIGN section 7):
    started across passes).
 
 ``lam_max = sigma_1(G(0, b0))`` comes from the first passes at ``W = 0``. When
-the dense ``d x k`` gradient fits a third of the memory budget, the pass also
-accumulates ``G`` and every sigma_1 and new direction comes from an in-memory
+the dense ``d x k`` gradient's three arrays (compensated sum, compensation,
+block buffer; :mod:`kernels.compensated`) fit a third of the memory budget, the
+pass also accumulates ``G`` and every sigma_1 and new direction comes from an in-memory
 SVD instead (same optimum, fewer passes).
 """
 
@@ -92,8 +93,8 @@ class SolverConfig:
     class_weights : ndarray (k,), optional
         Softmax class weights (row weight ``w_i c_{y_i}``).
     dense_gradient : bool, optional
-        None (default): use the dense-gradient path when ``d x k`` float64 fits a
-        third of the budget; True forces it, False forbids it.
+        None (default): use the dense-gradient path when its three ``d x k``
+        float64 arrays fit a third of the budget; True forces it, False forbids it.
     lam_max_passes : int
         Most passes at ``W = 0`` spent settling ``sigma_1`` (default 8). With an
         explicit ``lam`` the fit starts as soon as the ``sigma_1`` lower bound
