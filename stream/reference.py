@@ -35,10 +35,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import scipy.linalg
 import scipy.sparse as sp
 from scipy.special import expit, log_expit, logsumexp
-
-from kernels.svd import singular_values, svd
 
 from .errors import ConfigError, InputError
 
@@ -111,7 +110,7 @@ class ReferenceResult:
     @property
     def singular_values(self) -> np.ndarray:
         """Singular values of ``W`` (descending), shape (min(d, k),)."""
-        return singular_values(self.W)
+        return _svd(self.W, compute_uv=False)
 
     def rank(self, *, rtol: float = 1e-8) -> int:
         """Number of singular values above ``rtol`` times the largest."""
@@ -312,6 +311,19 @@ def _smooth(P: _Problem, W: np.ndarray, b: np.ndarray, *, need_grad: bool):
     return f, GW, Gb
 
 
+def _svd(A: np.ndarray, *, compute_uv: bool):
+    """numpy's thin SVD (LAPACK gesdd), or gesvd when gesdd does not converge.
+
+    The reference keeps to numpy/scipy (no project kernels), so it has its own
+    two-line fallback rather than :mod:`kernels.svd`.
+    """
+    try:
+        return np.linalg.svd(A, full_matrices=False, compute_uv=compute_uv)
+    except np.linalg.LinAlgError:
+        return scipy.linalg.svd(A, full_matrices=False, compute_uv=compute_uv,
+                                lapack_driver="gesvd")
+
+
 def svt(A: np.ndarray, tau: float) -> tuple[np.ndarray, np.ndarray]:
     """Singular value thresholding: the prox of ``tau * ||.||_*`` at ``A``.
 
@@ -332,7 +344,7 @@ def svt(A: np.ndarray, tau: float) -> tuple[np.ndarray, np.ndarray]:
     ----------
     Cai, Candès and Shen (2010), Theorem 2.1.
     """
-    U, s, Vt = svd(A)
+    U, s, Vt = _svd(A, compute_uv=True)
     keep = s > tau
     st = s[keep] - tau
     W = (U[:, keep] * st) @ Vt[keep]
@@ -383,7 +395,7 @@ def dense_objective(
         n_outputs=n_out, max_dense_entries=MAX_DENSE_ENTRIES, max_nnz=MAX_NNZ,
     )
     f, _, _ = _smooth(P, W, np.asarray(b, dtype=np.float64), need_grad=False)
-    return f + lam * float(singular_values(W).sum())
+    return f + lam * float(_svd(W, compute_uv=False).sum())
 
 
 def dense_gradient(
@@ -539,7 +551,7 @@ def _fista(P, W, b, *, lam, tol, max_iter, max_seconds, L, callback) -> Referenc
     passes = 0
     Wy, by = W.copy(), b.copy()
     t = 1.0
-    F = _smooth(P, W, b, need_grad=False)[0] + lam * float(singular_values(W).sum())
+    F = _smooth(P, W, b, need_grad=False)[0] + lam * float(_svd(W, compute_uv=False).sum())
     passes += 1
     history: list[dict[str, Any]] = []
     status, message, res = "max_iter", f"iteration budget of {max_iter} reached", np.inf
