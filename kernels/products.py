@@ -70,6 +70,9 @@ class BlockOperands:
         ``"softmax"``, ``"squared"`` or ``"multilabel"``.
     class_weights : (k,) float64 or None
         Softmax only: folded into the row weights (``w_i * cw[y_i]``).
+    dual_scale : float
+        ``c`` in [0, 1]: also sum the losses' conjugates at ``c`` times the
+        residual (:mod:`kernels.conjugates`, for the duality gap); 0 skips it.
     """
 
     Q: np.ndarray
@@ -80,6 +83,7 @@ class BlockOperands:
     b: np.ndarray
     loss: str
     class_weights: np.ndarray | None = None
+    dual_scale: float = 0.0
 
     @property
     def d(self) -> int:
@@ -188,6 +192,7 @@ class ProductBuffers:
     Gt_U : (k, r) float64         R^T X U
     gw : (1,) float64             sum_j s_j (X u_j)^T R v_j
     G : (d, k) float64 or None    X^T R (only when asked for)
+    conj : (1,) float64           sum_i w_i loss*(c a_i) (``ops.dual_scale`` = c > 0)
     """
 
     loss_sum: np.ndarray
@@ -199,6 +204,7 @@ class ProductBuffers:
     Gt_U: np.ndarray
     gw: np.ndarray
     G: np.ndarray | None = field(default=None)
+    conj: np.ndarray = field(default_factory=lambda: np.zeros(1))
 
     @classmethod
     def zeros(cls, ops: BlockOperands, *, dense_G: bool = False) -> ProductBuffers:
@@ -218,7 +224,8 @@ class ProductBuffers:
 
     def add(self, other: ProductBuffers) -> ProductBuffers:
         """In place ``self += other`` (combine partials in block order)."""
-        for name in ("loss_sum", "weight_sum", "n_rows", "grad_b", "G_VO", "Gt_Psi", "Gt_U", "gw"):
+        for name in ("loss_sum", "weight_sum", "n_rows", "grad_b", "G_VO", "Gt_Psi", "Gt_U", "gw",
+                     "conj"):
             getattr(self, name)[...] += getattr(other, name)
         if self.G is not None and other.G is not None:
             self.G += other.G
@@ -346,6 +353,11 @@ def block_products(
         tp, ti = _tags_arrays(targets)
         _losses.multilabel_residual(S, tp, ti, w, bufs.loss_sum, bufs.grad_b, **kw)
     R = S
+    if ops.dual_scale > 0.0 and n:
+        from .conjugates import conjugate_sum
+
+        tgt = (tp, ti) if ops.loss == "multilabel" else targets
+        bufs.conj[0] += conjugate_sum(R, tgt, w, ops.loss, ops.dual_scale, where=where)
     bufs.weight_sum[0] += float(n) if w is None else float(np.sum(w, dtype=np.float64))
     bufs.n_rows[0] += n
     if n == 0:

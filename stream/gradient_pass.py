@@ -87,6 +87,10 @@ class PassRequest:
         them in memory; the result's projections then name the files.
     dense_gradient : bool
         Also accumulate the dense ``G`` (d x k).
+    dual_scale : float
+        ``c`` in [0, 1]: also sum the losses' convex conjugates at ``c`` times
+        the residual (the dual point of the duality gap, see
+        :mod:`kernels.conjugates`); 0 (default) skips it.
 
     All arrays are stored as C-contiguous float64.
     """
@@ -102,9 +106,12 @@ class PassRequest:
     keep_projections: bool = False
     dense_gradient: bool = False
     projections_dir: str | None = None
+    dual_scale: float = 0.0
 
     def __post_init__(self) -> None:
         get_loss(self.loss)
+        if not 0.0 <= float(self.dual_scale) <= 1.0:
+            raise ConfigError(f"gradient pass: dual_scale {self.dual_scale!r} must lie in [0, 1]")
         U, s, V, b = (
             _mat("U", self.U, 2),
             _mat("s", self.s, 1),
@@ -189,6 +196,9 @@ class PassResult:
     Gt_U : (k, r) array
     inner : float
         ``<G, W>``.
+    conjugate : float
+        ``(1 / sum w) sum_i w_i loss*(c a_i)`` at the request's ``dual_scale``
+        ``c`` (0 when it is 0).
     G : (d, k) array or None
     projections : list of Projection or None
     profile : PassProfile or None
@@ -205,6 +215,7 @@ class PassResult:
     G: np.ndarray | None = None
     projections: list[Projection] | None = None
     profile: PassProfile | None = field(default=None, repr=False)
+    conjugate: float = 0.0
 
     @property
     def GV(self) -> np.ndarray:
@@ -251,6 +262,7 @@ class _Partial:
     G_VO_err: np.ndarray | None = None
     G_err: np.ndarray | None = None
     scratch: dict | None = field(default=None, repr=False, metadata={"wire": False})
+    conj: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -284,7 +296,7 @@ def _state(req: PassRequest, where: str) -> _State:
     VO = ops.VO
     # block_products then skips X^T (R [V, Omega]): the pass adds that term in
     # the combine, into the one compensated d x (r + p) accumulator
-    ops = replace(ops, VO=np.zeros((ops.k, 0)))
+    ops = replace(ops, VO=np.zeros((ops.k, 0)), dual_scale=float(req.dual_scale))
     return _State(
         ops=ops,
         VO=VO,
@@ -379,6 +391,7 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
         Gt_U=bufs.Gt_U,
         terms=[term],
         projections=proj,
+        conj=float(bufs.conj[0]),
     )
 
 
@@ -463,6 +476,7 @@ def combine_partials(parts: list[_Partial]) -> _Partial:
         acc.grad_b += p.grad_b
         acc.Gt_Psi += p.Gt_Psi
         acc.Gt_U += p.Gt_U
+        acc.conj += p.conj
         _combine_sums(acc, p)  # an already reduced partial (tree reduction, worker range)
         acc.terms = p.terms
         _materialize(acc)
@@ -487,6 +501,7 @@ def _split_remote(p: _Partial) -> tuple[_Partial, _Partial]:
         Gt_Psi=p.Gt_Psi.copy(),
         Gt_U=p.Gt_U.copy(),
         projections=p.projections,
+        conj=p.conj,
     )
     p.projections = None  # they travel once, with the light partial
     return light, p
@@ -529,6 +544,7 @@ def _finalize(acc: _Partial, st: _State, profile: PassProfile | None, where: str
         G=acc.G,
         projections=acc.projections,
         profile=profile,
+        conjugate=acc.conj * inv,
     )
 
 

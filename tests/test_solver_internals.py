@@ -332,7 +332,9 @@ def test_train_smoke(loss, tmp_path):
     res = train(X, targets=y, loss=loss, lam_frac=0.2, tol=1e-4, out=tmp_path / "run",
                 on_pass=records.append)
     assert res.status == "converged", res.message
-    assert res.rank >= 1 and res.sigma_ratio <= 1 + 1e-4
+    # converged: the relative gap (the tighter of the two bounds) is within tol; sigma_1
+    # is then close to lam, though not necessarily within lam (1 + tol) (duality gap)
+    assert res.rank >= 1 and res.gap <= 1e-4 * res.objective and res.sigma_ratio <= 1 + 1e-3
     F = _objective_numpy(X, y, res.model.U, res.model.s, res.model.V, res.model.b, loss, res.lam)
     assert res.objective == pytest.approx(F, rel=1e-9)  # scipy.special recomputation
     lines = (tmp_path / "run" / "history.jsonl").read_text().splitlines()

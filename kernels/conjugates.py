@@ -1,0 +1,171 @@
+"""Per-block sums of the losses' convex conjugates at a scaled residual (duality gap).
+
+For ``f(Z) = sum_i omega_i loss(z_i; y_i)`` and a dual point ``Theta = c R``,
+where ``R`` holds the residual rows ``w_i * a_i`` with ``a_i = dloss/dz(z_i)``,
+the Fenchel dual needs ``sum_i w_i loss*(c a_i)``. With ``v = c a_i``:
+
+| loss       | loss*(v) (finite where shown)                         |
+|------------|-------------------------------------------------------|
+| softmax    | sum_j q_j log q_j,  q = v + e_y in the simplex        |
+| squared    | 0.5 ||v||^2 + v^T y                                   |
+| multilabel | sum_j h(v_j + y_j),  h(t) = t log t + (1 - t) log(1 - t), t in [0, 1] |
+
+(standard conjugate pairs: negative entropy for log-sum-exp, Boyd &
+Vandenberghe, Convex Optimization, 2004, example 3.25; the quadratic; the
+binary entropy for the softplus). For ``0 <= c <= 1`` the points stay in the
+domains: ``c (p - e_y) + e_y = c p + (1 - c) e_y`` is a probability vector and
+``c (sigma - y) + y`` lies in [0, 1].
+
+Each kernel takes the residual as the residual kernels of
+:mod:`kernels.losses` leave it (unnormalized, ``w_i a_i``), so ``a_i`` is
+recovered as ``R_i / w_i``; rows of weight 0 contribute nothing. Rounding can
+push a ``q`` a few ulps outside [0, 1]; it is clipped. Rows are summed in a
+fixed number of chunks added in order, so the sum does not depend on threads.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit, prange
+
+from stream.errors import InputError
+
+from .losses import _check_classes, _check_tags, _check_weights, _kernel_weights
+from .threads import kernel_guard
+
+__all__ = ["conjugate_sum"]
+
+_N_CHUNKS = 64
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _xlogx(t):  # pragma: no cover - compiled
+    return t * math.log(t) if t > 0.0 else 0.0
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _clip01(t):  # pragma: no cover - compiled
+    return min(1.0, max(0.0, t))
+
+
+@njit(nogil=True, cache=True, parallel=True)
+def softmax_conjugate_kernel(R, y, w, c):  # pragma: no cover - compiled
+    """``sum_i w_i sum_j q_ij log q_ij`` with ``q_i = c R_i / w_i + e_{y_i}``."""
+    n, k = R.shape
+    has_w = w.shape[0] > 0
+    nch = min(n, _N_CHUNKS)
+    part = np.zeros(nch)
+    for ch in prange(nch):
+        for i in range(n * ch // nch, n * (ch + 1) // nch):
+            wi = w[i] if has_w else 1.0
+            if wi <= 0.0:
+                continue
+            scale = c / wi
+            yi = y[i]
+            acc = 0.0
+            for j in range(k):
+                q = scale * R[i, j] + (1.0 if j == yi else 0.0)
+                acc += _xlogx(_clip01(q))
+            part[ch] += wi * acc
+    total = 0.0
+    for ch in range(nch):
+        total += part[ch]
+    return total
+
+
+@njit(nogil=True, cache=True, parallel=True)
+def squared_conjugate_kernel(R, Y, w, c):  # pragma: no cover - compiled
+    """``sum_i w_i (0.5 ||v_i||^2 + v_i^T y_i)`` with ``v_i = c R_i / w_i``."""
+    n, k = R.shape
+    has_w = w.shape[0] > 0
+    nch = min(n, _N_CHUNKS)
+    part = np.zeros(nch)
+    for ch in prange(nch):
+        for i in range(n * ch // nch, n * (ch + 1) // nch):
+            wi = w[i] if has_w else 1.0
+            if wi <= 0.0:
+                continue
+            scale = c / wi
+            acc = 0.0
+            for j in range(k):
+                v = scale * R[i, j]
+                acc += 0.5 * v * v + v * Y[i, j]
+            part[ch] += wi * acc
+    total = 0.0
+    for ch in range(nch):
+        total += part[ch]
+    return total
+
+
+@njit(nogil=True, cache=True, parallel=True)
+def multilabel_conjugate_kernel(R, tag_indptr, tag_indices, w, c):  # pragma: no cover - compiled
+    """``sum_i w_i sum_j h(c R_ij / w_i + y_ij)``, tags of row i in CSR form."""
+    n, k = R.shape
+    has_w = w.shape[0] > 0
+    nch = min(n, _N_CHUNKS)
+    part = np.zeros(nch)
+    for ch in prange(nch):
+        tagged = np.zeros(k, dtype=np.bool_)
+        for i in range(n * ch // nch, n * (ch + 1) // nch):
+            wi = w[i] if has_w else 1.0
+            if wi <= 0.0:
+                continue
+            for q in range(tag_indptr[i], tag_indptr[i + 1]):
+                tagged[tag_indices[q]] = True
+            scale = c / wi
+            acc = 0.0
+            for j in range(k):
+                t = _clip01(scale * R[i, j] + (1.0 if tagged[j] else 0.0))
+                acc += _xlogx(t) + _xlogx(1.0 - t)
+            for q in range(tag_indptr[i], tag_indptr[i + 1]):
+                tagged[tag_indices[q]] = False
+            part[ch] += wi * acc
+    total = 0.0
+    for ch in range(nch):
+        total += part[ch]
+    return total
+
+
+def conjugate_sum(R: np.ndarray, targets, w: np.ndarray | None, loss: str, c: float, *,
+                  where: str = "block") -> float:
+    """``sum_i w_i loss*(c R_i / w_i; y_i)`` over one block (see the module docstring).
+
+    Parameters
+    ----------
+    R : (n_b, k) float64
+        The unnormalized residual ``w_i * dloss/dz_i`` (as the residual kernels leave it).
+    targets
+        softmax: (n_b,) int class ids; squared: (n_b, k) float values;
+        multilabel: an ``(indptr, indices)`` pair of the tag CSR arrays.
+    w : (n_b,) float or None
+        The row weights the residual was formed with (class weights folded in).
+    loss : {"softmax", "squared", "multilabel"}
+    c : float
+        Dual scale in [0, 1].
+
+    Returns
+    -------
+    float
+    """
+    if not (isinstance(R, np.ndarray) and R.ndim == 2 and R.dtype == np.float64):
+        raise InputError(f"{where}: the residual must be a 2-D float64 array")
+    if not 0.0 <= c <= 1.0:
+        raise InputError(f"{where}: dual scale {c!r} must lie in [0, 1]")
+    n, k = R.shape
+    if n == 0:
+        return 0.0
+    w = _kernel_weights(_check_weights(w, n, where))
+    with kernel_guard():
+        if loss == "softmax":
+            return float(softmax_conjugate_kernel(R, _check_classes(targets, n, where), w, c))
+        if loss == "squared":
+            Y = np.asarray(targets, dtype=np.float64)
+            if Y.shape != (n, k):
+                raise InputError(f"{where}: target values must have shape {(n, k)}")
+            return float(squared_conjugate_kernel(R, Y, w, c))
+        if loss == "multilabel":
+            tp, ti = _check_tags(targets[0], targets[1], n, where)
+            return float(multilabel_conjugate_kernel(R, tp, ti, w, c))
+    raise InputError(f"{where}: unknown loss {loss!r}")
