@@ -108,20 +108,15 @@ class SolverConfig:
         The final ``sigma_1`` has settled below this relative change (1e-4).
     inner_max_iter : int
         Most proximal steps of one refinement (default 400).
-    momentum : bool
-        Add the momentum directions to ``Psi``: the part of the previous left
-        factor outside ``[U, Psi]`` (default True). The refinement then also
-        searches along the direction the subspace last moved in, as a
-        three-term (locally optimal) block iteration does. Measured on the
-        planted softmax problem (n = 5000, d = 2000, k = 50, 0.1 lam_max, rank
-        41): 1e-4 relative suboptimality in 25 passes instead of 36, 1e-6 in 42
-        instead of 64; gap estimate after 80 passes 1.6e-6 instead of 1.3e-4.
-    rotation_size : int, optional
-        Most rotation directions ``(I - U U^T) G V`` in ``Psi`` (default None: all
-        ``r``). Measured on a planted softmax problem (n = 1500, d = 500, k = 30,
-        rank 19 at 0.1 lam_max): all rotations reached a relative gap of 1e-3 in 39
-        passes and 1e-4 in 51, a cap of ``p'`` = 6 needed 51 passes for 1e-3 and had
-        not reached 1e-4 after 67; with many atoms a cap starves their rotations.
+    momentum : int
+        How many previous left factors give momentum directions to ``Psi``
+        (default 3; 0 turns them off): for each, the part outside ``[U, Psi]``
+        (and the directions already added). The refinement then also searches
+        along the directions the subspace moved in over the last passes, as a
+        block Krylov or locally optimal iteration keeps its recent directions.
+        Measured on the planted softmax problem (n = 5000, d = 2000, k = 50,
+        0.1 lam_max, rank 41), passes to 1e-4 / 1e-6 relative suboptimality:
+        none 36 / 64, one factor 25 / 42, two 21 / 33, three 18 / 28, four 18 / 26.
     """
 
     loss: str
@@ -144,7 +139,7 @@ class SolverConfig:
     certificate_passes: int = 5
     certificate_rtol: float = 1e-4
     inner_max_iter: int = 400
-    momentum: bool = True
+    momentum: int = 3
     rotation_size: int | None = None
 
     def __post_init__(self) -> None:
@@ -207,8 +202,8 @@ _INNER_STALL = 0.5
 _ARRAYS = ("U", "s", "V", "b", "Omega", "Psi", "U_prev")
 _SCALARS = ("lam", "lam_max", "phase", "passes", "step_passes", "outer_iterations",
             "seconds", "sigma1", "sigma1_prev", "path_index", "intercept_ready",
-            "lam_max_settle", "lam_max_settled", "cert_passes", "last_rel_gap", "objective",
-            "status")
+            "lam_max_settle", "lam_max_settled", "U_prev_cols", "cert_passes", "last_rel_gap",
+            "objective", "status")
 
 
 @dataclass
@@ -225,9 +220,10 @@ class SolverState:
         Power block (orthogonal to ``V`` before each pass).
     Psi : ndarray (d, p')
         Expansion block (orthogonalized against ``U`` before each pass).
-    U_prev : ndarray (d, r_prev)
-        The left factor before the last refinement (the momentum directions
-        come from it; ``d x 0`` before the first refinement).
+    U_prev : ndarray (d, sum(U_prev_cols))
+        The left factors before the last refinements, newest first, side by
+        side (the momentum directions come from them; ``d x 0`` before the
+        first refinement).
     rng_state : dict
         ``numpy.random.Generator.bit_generator.state`` of the solver's generator.
     lam, lam_max : float or None
@@ -248,6 +244,8 @@ class SolverState:
         ``b`` already is the best intercept alone (set after the first pass).
     lam_max_settle : int
         Passes at ``b0`` in the lam_max phase.
+    U_prev_cols : list of int
+        Columns of each factor in ``U_prev``.
     lam_max_settled : bool
         ``lam_max`` is the settled ``sigma_1`` at ``W = 0``; False when an
         explicit ``lam`` let fitting start as soon as the lower bound passed it
@@ -283,6 +281,7 @@ class SolverState:
     intercept_ready: bool = False
     lam_max_settle: int = 0
     lam_max_settled: bool = True
+    U_prev_cols: list | None = None
     cert_passes: int = 0
     last_rel_gap: float | None = None
     objective: float | None = None
@@ -291,6 +290,14 @@ class SolverState:
     def __post_init__(self) -> None:
         if self.U_prev is None:
             self.U_prev = np.zeros((self.U.shape[0], 0))
+        if self.U_prev_cols is None:  # one factor (or none)
+            self.U_prev_cols = [int(self.U_prev.shape[1])] if self.U_prev.shape[1] else []
+        self.U_prev_cols = [int(c) for c in self.U_prev_cols]
+
+    def momentum_factors(self) -> list[np.ndarray]:
+        """The previous left factors in ``U_prev``, newest first."""
+        edges = np.cumsum([0, *self.U_prev_cols])
+        return [self.U_prev[:, a:b] for a, b in zip(edges[:-1], edges[1:], strict=True)]
 
     @property
     def rank(self) -> int:
@@ -631,6 +638,7 @@ class GreedySolver:
         st.last_rel_gap = None
         st.status = "running"
         st.U_prev = np.zeros((self.d, 0))  # momentum belongs to one lam
+        st.U_prev_cols = []
         if path_index is not None:
             st.path_index = int(path_index)
 
@@ -651,8 +659,8 @@ class GreedySolver:
         rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
         st.Psi = _fill(st.Psi, st.U, cfg.expand_size, self._rng, cap=rot + cfg.expand_size)
         st.Omega = _fill(st.Omega, st.V, cfg.power_size, self._rng)
-        if cfg.momentum:
-            st.Psi = np.hstack([st.Psi, _momentum(st.U_prev, np.hstack([st.U, st.Psi]))])
+        for U_old in st.momentum_factors()[: max(0, int(cfg.momentum))]:
+            st.Psi = np.hstack([st.Psi, _momentum(U_old, np.hstack([st.U, st.Psi]))])
         # keep the generator's position in the state, so a checkpoint resumes the same draws
         st.rng_state = self._rng.bit_generator.state
         mode = self._refine_mode(st.rank + st.Psi.shape[1])
@@ -764,7 +772,10 @@ class GreedySolver:
         else:
             out = self._refine_streamed(proj, mode, N0, req.b, rel_gap)
         secs = time.perf_counter() - t0
-        st.U_prev = req.U
+        depth = max(0, int(cfg.momentum))
+        keep = st.momentum_factors()[: depth - 1] if depth > 1 else []
+        st.U_prev = np.hstack([req.U, *keep]) if depth else np.zeros((self.d, 0))
+        st.U_prev_cols = [req.U.shape[1], *(f.shape[1] for f in keep)] if depth else []
         U_new = Q @ out.A
         # re-orthonormalize against rounding of the product Q A
         Uq, Ur = np.linalg.qr(U_new)
