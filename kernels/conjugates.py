@@ -50,58 +50,33 @@ def _clip01(t):  # pragma: no cover - compiled
     return min(1.0, max(0.0, t))
 
 
-@njit(nogil=True, cache=True, parallel=True)
-def softmax_conjugate_kernel(R, y, w, c):  # pragma: no cover - compiled
-    """``sum_i w_i sum_j q_ij log q_ij`` with ``q_i = c R_i / w_i + e_{y_i}``."""
-    n, k = R.shape
-    has_w = w.shape[0] > 0
-    nch = min(n, _N_CHUNKS)
-    part = np.zeros(nch)
-    for ch in prange(nch):
-        for i in range(n * ch // nch, n * (ch + 1) // nch):
-            wi = w[i] if has_w else 1.0
-            if wi <= 0.0:
-                continue
-            scale = c / wi
-            yi = y[i]
-            acc = 0.0
-            for j in range(k):
-                q = scale * R[i, j] + (1.0 if j == yi else 0.0)
-                acc += _xlogx(_clip01(q))
-            part[ch] += wi * acc
-    total = 0.0
-    for ch in range(nch):
-        total += part[ch]
-    return total
+_SOFTMAX, _SQUARED, _MULTILABEL = 0, 1, 2
+_LOSS_CODES = {"softmax": _SOFTMAX, "squared": _SQUARED, "multilabel": _MULTILABEL}
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _row_conjugate(R, i, k, scale, code, y, Y, tagged):  # pragma: no cover
+    """``loss*(scale R_i)`` of row ``i`` (``tagged``: the row's tag flags, multilabel)."""
+    acc = 0.0
+    if code == _SOFTMAX:
+        yi = y[i]
+        for j in range(k):
+            acc += _xlogx(_clip01(scale * R[i, j] + (1.0 if j == yi else 0.0)))
+    elif code == _SQUARED:
+        for j in range(k):
+            v = scale * R[i, j]
+            acc += 0.5 * v * v + v * Y[i, j]
+    else:
+        for j in range(k):
+            t = _clip01(scale * R[i, j] + (1.0 if tagged[j] else 0.0))
+            acc += _xlogx(t) + _xlogx(1.0 - t)
+    return acc
 
 
 @njit(nogil=True, cache=True, parallel=True)
-def squared_conjugate_kernel(R, Y, w, c):  # pragma: no cover - compiled
-    """``sum_i w_i (0.5 ||v_i||^2 + v_i^T y_i)`` with ``v_i = c R_i / w_i``."""
-    n, k = R.shape
-    has_w = w.shape[0] > 0
-    nch = min(n, _N_CHUNKS)
-    part = np.zeros(nch)
-    for ch in prange(nch):
-        for i in range(n * ch // nch, n * (ch + 1) // nch):
-            wi = w[i] if has_w else 1.0
-            if wi <= 0.0:
-                continue
-            scale = c / wi
-            acc = 0.0
-            for j in range(k):
-                v = scale * R[i, j]
-                acc += 0.5 * v * v + v * Y[i, j]
-            part[ch] += wi * acc
-    total = 0.0
-    for ch in range(nch):
-        total += part[ch]
-    return total
-
-
-@njit(nogil=True, cache=True, parallel=True)
-def multilabel_conjugate_kernel(R, tag_indptr, tag_indices, w, c):  # pragma: no cover - compiled
-    """``sum_i w_i sum_j h(c R_ij / w_i + y_ij)``, tags of row i in CSR form."""
+def conjugate_kernel(R, code, y, Y, tag_indptr, tag_indices, w, c):  # pragma: no cover
+    """``sum_i w_i loss*(c R_i / w_i; y_i)``; ``code`` picks the loss, the other
+    loss's target arrays may be empty (see :func:`conjugate_sum`)."""
     n, k = R.shape
     has_w = w.shape[0] > 0
     nch = min(n, _N_CHUNKS)
@@ -112,16 +87,13 @@ def multilabel_conjugate_kernel(R, tag_indptr, tag_indices, w, c):  # pragma: no
             wi = w[i] if has_w else 1.0
             if wi <= 0.0:
                 continue
-            for q in range(tag_indptr[i], tag_indptr[i + 1]):
-                tagged[tag_indices[q]] = True
-            scale = c / wi
-            acc = 0.0
-            for j in range(k):
-                t = _clip01(scale * R[i, j] + (1.0 if tagged[j] else 0.0))
-                acc += _xlogx(t) + _xlogx(1.0 - t)
-            for q in range(tag_indptr[i], tag_indptr[i + 1]):
-                tagged[tag_indices[q]] = False
-            part[ch] += wi * acc
+            if code == _MULTILABEL:
+                for q in range(tag_indptr[i], tag_indptr[i + 1]):
+                    tagged[tag_indices[q]] = True
+            part[ch] += wi * _row_conjugate(R, i, k, c / wi, code, y, Y, tagged)
+            if code == _MULTILABEL:
+                for q in range(tag_indptr[i], tag_indptr[i + 1]):
+                    tagged[tag_indices[q]] = False
     total = 0.0
     for ch in range(nch):
         total += part[ch]
@@ -157,15 +129,17 @@ def conjugate_sum(R: np.ndarray, targets, w: np.ndarray | None, loss: str, c: fl
     if n == 0:
         return 0.0
     w = _kernel_weights(_check_weights(w, n, where))
+    if loss not in _LOSS_CODES:
+        raise InputError(f"{where}: unknown loss {loss!r}")
+    y, Y = np.zeros(0, np.int64), np.zeros((0, 0))
+    tp, ti = np.zeros(1, np.int64), np.zeros(0, np.int64)
+    if loss == "softmax":
+        y = _check_classes(targets, n, where)
+    elif loss == "squared":
+        Y = np.asarray(targets, dtype=np.float64)
+        if Y.shape != (n, k):
+            raise InputError(f"{where}: target values must have shape {(n, k)}")
+    else:
+        tp, ti = _check_tags(targets[0], targets[1], n, where)
     with kernel_guard():
-        if loss == "softmax":
-            return float(softmax_conjugate_kernel(R, _check_classes(targets, n, where), w, c))
-        if loss == "squared":
-            Y = np.asarray(targets, dtype=np.float64)
-            if Y.shape != (n, k):
-                raise InputError(f"{where}: target values must have shape {(n, k)}")
-            return float(squared_conjugate_kernel(R, Y, w, c))
-        if loss == "multilabel":
-            tp, ti = _check_tags(targets[0], targets[1], n, where)
-            return float(multilabel_conjugate_kernel(R, tp, ti, w, c))
-    raise InputError(f"{where}: unknown loss {loss!r}")
+        return float(conjugate_kernel(R, _LOSS_CODES[loss], y, Y, tp, ti, w, c))
