@@ -22,6 +22,21 @@ Usage::
 
     .venv/bin/python tools/bench_solver.py --out bench-out            # full size
     .venv/bin/python tools/bench_solver.py --out /tmp/b --small       # smoke run
+
+The long runs can be made one at a time and summarized together::
+
+    .venv/bin/python tools/bench_solver.py --out R --solvers reference --cap 6600
+    .venv/bin/python tools/bench_solver.py --out G --solvers greedy --tol 1e-8 --max-passes 150
+    .venv/bin/python tools/bench_solver.py --out B --solvers greedy-budget --greedy-memory 96MB \
+        --tol 1e-8 --max-passes 90
+    .venv/bin/python tools/bench_solver.py --out R --from-runs --merge-runs \
+        G/bench_solver_runs.json B/bench_solver_runs.json
+
+Peak memory where the fixed floor no longer dominates (short runs; only the
+peak RSS columns mean anything there)::
+
+    .venv/bin/python tools/bench_solver.py --out M --n 200000 --solvers greedy-budget,reference \
+        --max-passes 32 --max-iter 3 --greedy-memory 96MB
 """
 
 from __future__ import annotations
