@@ -35,6 +35,7 @@ import numpy as np
 from stream.errors import ConfigError, InputError
 
 from . import losses as _losses
+from .conjugates import conjugate_sum
 from .csc import BlockCSC, csc_matmul_dense, csc_t_matmul_accumulate
 from .sparse import csr_matmul_dense, csr_t_matmul_accumulate
 
@@ -354,8 +355,6 @@ def block_products(
         _losses.multilabel_residual(S, tp, ti, w, bufs.loss_sum, bufs.grad_b, **kw)
     R = S
     if ops.dual_scale > 0.0 and n:
-        from .conjugates import conjugate_sum
-
         tgt = (tp, ti) if ops.loss == "multilabel" else targets
         bufs.conj[0] += conjugate_sum(R, tgt, w, ops.loss, ops.dual_scale, where=where)
     bufs.weight_sum[0] += float(n) if w is None else float(np.sum(w, dtype=np.float64))

@@ -118,6 +118,28 @@ def test_softmax_loss_equals_sklearn_log_loss():
     np.testing.assert_allclose(res.loss, ref, rtol=1e-9)
 
 
+@pytest.mark.parametrize("backend", ["serial", "threads"])
+def test_pass_conjugate_is_the_softmax_entropy_sum(backend):
+    # closed form (Boyd & Vandenberghe 2004, ex. 3.25): loss*(c a) = sum_j q_j log q_j with
+    # q = c softmax(z) + (1 - c) e_y; the pass gives its weighted mean (scipy.special)
+    from scipy.special import xlogy
+
+    X, y, w = _problem("softmax", seed=4)
+    U, s, V, b, _, _ = _model(30, 6)
+    c = 0.8
+    res = gradient_pass(MemorySource(X, y, weights=w, n_outputs=6),
+                        PassRequest("softmax", U, s, V, b, dual_scale=c), block_rows=50,
+                        backend=backend)
+    E = np.eye(6)[y]
+    q = c * softmax(X.toarray() @ ((U * s) @ V.T) + b, axis=1) + (1 - c) * E
+    w64 = np.asarray(w, dtype=np.float64)
+    np.testing.assert_allclose(res.conjugate, np.sum(w64 * xlogy(q, q).sum(axis=1)) / w64.sum(),
+                               rtol=1e-10)
+    off = gradient_pass(MemorySource(X, y, weights=w, n_outputs=6),
+                        PassRequest("softmax", U, s, V, b), block_rows=50)
+    assert off.conjugate == 0.0 and off.loss == res.loss
+
+
 @pytest.mark.parametrize("loss", LOSSES)
 def test_gradient_against_finite_differences(loss):
     # tiny problem: W of full rank min(d, k), so W <-> (U, s, V) by an SVD
