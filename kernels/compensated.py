@@ -42,8 +42,7 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-from stream.errors import InputError
-
+from .errors import KernelInputError
 from .threads import kernel_guard
 
 __all__ = ["compensated_add", "compensated_combine", "csc_t_matmul_compensated"]
@@ -146,7 +145,7 @@ def _check_pair(names: tuple[str, ...], arrays: tuple[np.ndarray, ...], where: s
             or not a.flags.c_contiguous
             or not a.flags.writeable
         ):
-            raise InputError(
+            raise KernelInputError(
                 f"{where}: {name} must be a writable C-contiguous float64 array of shape "
                 f"{shape}, got {getattr(a, 'dtype', type(a).__name__)} "
                 f"{getattr(a, 'shape', None)}; allocate it with numpy.zeros"
@@ -189,7 +188,7 @@ def compensated_combine(S: np.ndarray, C: np.ndarray, S2: np.ndarray, C2: np.nda
     _check_pair(("S", "C"), (S, C), where)
     for name, a in (("S2", S2), ("C2", C2)):
         if not isinstance(a, np.ndarray) or a.dtype != np.float64 or a.shape != S.shape:
-            raise InputError(f"{where}: {name} must be a float64 array of shape {S.shape}, "
+            raise KernelInputError(f"{where}: {name} must be a float64 array of shape {S.shape}, "
                              f"got {getattr(a, 'dtype', type(a).__name__)} "
                              f"{getattr(a, 'shape', None)}")
     if S.size == 0:
@@ -223,7 +222,7 @@ def csc_t_matmul_compensated(T, D: np.ndarray, S: np.ndarray, C: np.ndarray, *,
     D = np.ascontiguousarray(D, dtype=np.float64)
     _check_pair(("S", "C"), (S, C), where)
     if S.shape != (d, D.shape[1]):
-        raise InputError(f"{where}: S and C must be {(d, D.shape[1])}, got {S.shape}")
+        raise KernelInputError(f"{where}: S and C must be {(d, D.shape[1])}, got {S.shape}")
     if n == 0 or D.shape[1] == 0 or T.nnz == 0:
         return
     threads = max(1, min(int(numba.get_num_threads()), (d + _GROUP - 1) // _GROUP))

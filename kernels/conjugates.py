@@ -30,8 +30,7 @@ import math
 import numpy as np
 from numba import njit, prange
 
-from stream.errors import InputError
-
+from .errors import KernelInputError
 from .losses import _check_classes, _check_tags, _check_weights, _kernel_weights
 from .threads import kernel_guard
 
@@ -122,15 +121,15 @@ def conjugate_sum(R: np.ndarray, targets, w: np.ndarray | None, loss: str, c: fl
     float
     """
     if not (isinstance(R, np.ndarray) and R.ndim == 2 and R.dtype == np.float64):
-        raise InputError(f"{where}: the residual must be a 2-D float64 array")
+        raise KernelInputError(f"{where}: the residual must be a 2-D float64 array")
     if not 0.0 <= c <= 1.0:
-        raise InputError(f"{where}: dual scale {c!r} must lie in [0, 1]")
+        raise KernelInputError(f"{where}: dual scale {c!r} must lie in [0, 1]")
     n, k = R.shape
     if n == 0:
         return 0.0
     w = _kernel_weights(_check_weights(w, n, where))
     if loss not in _LOSS_CODES:
-        raise InputError(f"{where}: unknown loss {loss!r}")
+        raise KernelInputError(f"{where}: unknown loss {loss!r}")
     y, Y = np.zeros(0, np.int64), np.zeros((0, 0))
     tp, ti = np.zeros(1, np.int64), np.zeros(0, np.int64)
     if loss == "softmax":
@@ -138,7 +137,7 @@ def conjugate_sum(R: np.ndarray, targets, w: np.ndarray | None, loss: str, c: fl
     elif loss == "squared":
         Y = np.asarray(targets, dtype=np.float64)
         if Y.shape != (n, k):
-            raise InputError(f"{where}: target values must have shape {(n, k)}")
+            raise KernelInputError(f"{where}: target values must have shape {(n, k)}")
     else:
         tp, ti = _check_tags(targets[0], targets[1], n, where)
     with kernel_guard():

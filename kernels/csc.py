@@ -23,7 +23,7 @@ The column walk costs ``O(d)`` per part on top of ``O(nnz)``, so a block needs
 at least about ``d / 2`` entries (:func:`worth_transposing`); and when a few
 frequent columns take most entries, the CSR kernels find their operand rows in
 cache and stay faster. The gradient pass therefore measures both paths on its
-first blocks and keeps the faster (:mod:`stream.sparse_path`).
+first blocks and keeps the faster (:mod:`ranktide.passes.kernel_path`).
 """
 
 from __future__ import annotations
@@ -34,8 +34,7 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-from stream.errors import InputError
-
+from .errors import KernelInputError
 from .sparse import _check_csr, _check_dense, _check_out, _raise_bad_entries
 from .threads import kernel_guard
 
@@ -248,13 +247,13 @@ def block_csc(
 
     Raises
     ------
-    InputError
+    KernelInputError
         On bad pointers or column ids (one line naming the first bad entry).
     """
     n = _check_csr(indptr, indices, data, where)
     d = int(n_cols)
     if n >= 2**31:
-        raise InputError(f"{where}: {n} rows in one block; use blocks under 2**31 rows")
+        raise KernelInputError(f"{where}: {n} rows in one block; use blocks under 2**31 rows")
     parts = max(1, int(n_parts) if n_parts is not None else int(numba.get_num_threads()))
     parts = min(parts, max(n, 1))
     cuts = _cuts(indptr, parts)

@@ -35,8 +35,7 @@ from llvmlite import ir
 from numba import njit, prange, types
 from numba.extending import intrinsic
 
-from stream.errors import InputError
-
+from .errors import KernelInputError
 from .threads import kernel_guard
 
 _N_CHUNKS = 64
@@ -382,12 +381,14 @@ def fold_class_weights_kernel(y, class_weights, w, out):  # pragma: no cover - c
 
 def _check_scores(Z: np.ndarray, where: str, *, writable: bool) -> tuple[int, int]:
     if not isinstance(Z, np.ndarray) or Z.ndim != 2 or Z.dtype != np.float64:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: scores must be a 2-D float64 array (n_rows, n_outputs), got "
             f"{getattr(Z, 'dtype', type(Z).__name__)} {getattr(Z, 'shape', None)}"
         )
     if writable and not Z.flags.writeable:
-        raise InputError(f"{where}: scores must be writable (they are overwritten by the residual)")
+        raise KernelInputError(
+            f"{where}: scores must be writable (they are overwritten by the residual)"
+        )
     return Z.shape
 
 
@@ -396,7 +397,7 @@ def _check_weights(w: np.ndarray | None, n: int, where: str) -> np.ndarray | Non
     if w is None:
         return None
     if not isinstance(w, np.ndarray) or w.ndim != 1 or w.dtype.kind != "f" or w.shape[0] != n:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: weights must be a 1-D float array of {n} values (one per row), got "
             f"{getattr(w, 'dtype', type(w).__name__)} {getattr(w, 'shape', None)}"
         )
@@ -412,30 +413,30 @@ def _check_acc(out_loss: np.ndarray, out_gradb: np.ndarray | None, k: int, where
     if not isinstance(out_loss, np.ndarray) or out_loss.dtype != np.float64 or out_loss.shape != (
         1,
     ):
-        raise InputError(f"{where}: out_loss must be a float64 array of shape (1,)")
+        raise KernelInputError(f"{where}: out_loss must be a float64 array of shape (1,)")
     if out_gradb is not None and (
         not isinstance(out_gradb, np.ndarray)
         or out_gradb.dtype != np.float64
         or out_gradb.shape != (k,)
     ):
-        raise InputError(f"{where}: out_gradb must be a float64 array of shape ({k},)")
+        raise KernelInputError(f"{where}: out_gradb must be a float64 array of shape ({k},)")
 
 
 def _check_classes(y: np.ndarray, n: int, where: str) -> np.ndarray:
     """Check the class ids; return them as int64 (one compiled variant)."""
     if not isinstance(y, np.ndarray) or y.ndim != 1 or y.dtype.kind not in "iu" or y.shape[0] != n:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: class ids must be a 1-D integer array of {n} values, got "
             f"{getattr(y, 'dtype', type(y).__name__)} {getattr(y, 'shape', None)}"
         )
     if y.dtype == np.uint64 and y.size and int(y.max()) > np.iinfo(np.int64).max:
-        raise InputError(f"{where}: a class id does not fit in int64")
+        raise KernelInputError(f"{where}: a class id does not fit in int64")
     return np.asarray(y, dtype=np.int64)
 
 
 def _check_values(Y: np.ndarray, shape: tuple[int, int], where: str) -> None:
     if not isinstance(Y, np.ndarray) or Y.dtype.kind != "f" or Y.shape != shape:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: target values must be a float array of shape {shape}, got "
             f"{getattr(Y, 'dtype', type(Y).__name__)} {getattr(Y, 'shape', None)}"
         )
@@ -447,9 +448,9 @@ def _check_tags(
     """Check the tag CSR arrays; return them as int64 (one compiled variant)."""
     for name, arr in (("tag_indptr", tag_indptr), ("tag_indices", tag_indices)):
         if not isinstance(arr, np.ndarray) or arr.ndim != 1 or arr.dtype.kind not in "iu":
-            raise InputError(f"{where}: {name} must be a 1-D integer array")
+            raise KernelInputError(f"{where}: {name} must be a 1-D integer array")
     if tag_indptr.shape[0] != n + 1:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: tag_indptr has {tag_indptr.shape[0]} pointers for {n} rows; "
             "it needs one more pointer than rows"
         )
@@ -458,7 +459,7 @@ def _check_tags(
 
 def _bad_class(y, bad: int, k: int, row_offset: int, where: str) -> None:
     if bad >= 0:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: row {row_offset + bad} has class id {int(y[bad])} outside 0..{k - 1}; "
             "fix the targets or train with the right number of classes"
         )
@@ -466,7 +467,7 @@ def _bad_class(y, bad: int, k: int, row_offset: int, where: str) -> None:
 
 def _bad_tags(bad: int, k: int, row_offset: int, where: str) -> None:
     if bad >= 0:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: row {row_offset + bad} has a tag id outside 0..{k - 1} or broken tag "
             "pointers; fix the tag list or train with the right number of tags"
         )
@@ -683,13 +684,13 @@ def fold_class_weights(
     w = _check_weights(w, n, where)
     cw = np.asarray(class_weights, dtype=np.float64)
     if cw.ndim != 1 or not np.all(np.isfinite(cw)) or np.any(cw < 0):
-        raise InputError(
+        raise KernelInputError(
             f"{where}: class weights must be a 1-D array of finite values >= 0, one per class"
         )
     if out is None:
         out = np.empty(n, dtype=np.float64)
     elif out.dtype != np.float64 or out.shape != (n,):
-        raise InputError(f"{where}: out must be a float64 array of shape ({n},)")
+        raise KernelInputError(f"{where}: out must be a float64 array of shape ({n},)")
     if n:
         with kernel_guard():
             bad = fold_class_weights_kernel(y, cw, _kernel_weights(w), out)

@@ -34,8 +34,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from stream.errors import ConfigError
-
+from .errors import KernelConfigError
 from .svd import svd
 
 BlockOp = Callable[[np.ndarray], np.ndarray]
@@ -62,12 +61,12 @@ def orth_rank_revealing(A: np.ndarray, tol: float = 1e-10, *, atol: float = 0.0)
     """
     A = np.asarray(A, dtype=np.float64)
     if A.ndim != 2:
-        raise ConfigError(f"orth_rank_revealing: A must be 2-D, got shape {A.shape}")
+        raise KernelConfigError(f"orth_rank_revealing: A must be 2-D, got shape {A.shape}")
     m, c = A.shape
     if c == 0 or m == 0:
         return np.zeros((m, 0))
     if not np.all(np.isfinite(A)):
-        raise ConfigError("orth_rank_revealing: A has a non-finite entry")
+        raise KernelConfigError("orth_rank_revealing: A has a non-finite entry")
     Q, R = np.linalg.qr(A)
     Ur, S, _ = svd(R)
     if S[0] <= 0.0:
@@ -96,14 +95,14 @@ def orth_against(A: np.ndarray, U: np.ndarray | None, tol: float = 1e-10) -> np.
     """
     A = np.array(A, dtype=np.float64)
     if A.ndim != 2:
-        raise ConfigError(f"orth_against: A must be 2-D, got shape {A.shape}")
+        raise KernelConfigError(f"orth_against: A must be 2-D, got shape {A.shape}")
     if A.shape[1] == 0:
         return np.zeros((A.shape[0], 0))
     scale = float(np.max(np.linalg.norm(A, axis=0)))
     if U is not None and np.shape(U)[1]:
         U = np.asarray(U, dtype=np.float64)
         if U.shape[0] != A.shape[0]:
-            raise ConfigError(
+            raise KernelConfigError(
                 f"orth_against: U has {U.shape[0]} rows but A has {A.shape[0]}; they must match"
             )
         for _ in range(2):
@@ -161,18 +160,18 @@ class PowerResult:
 def _operator(G, matvec, rmatvec, shape) -> tuple[BlockOp, BlockOp, tuple[int, int]]:
     if G is not None:
         if matvec is not None or rmatvec is not None:
-            raise ConfigError("top_singular_pairs: give either G or matvec/rmatvec, not both")
+            raise KernelConfigError("top_singular_pairs: give either G or matvec/rmatvec, not both")
         if hasattr(G, "toarray") and not isinstance(G, np.ndarray):
             Gs = G.tocsr()  # scipy sparse: products through its own kernels
             return (lambda X: np.asarray(Gs @ X), lambda Y: np.asarray(Gs.T @ Y), Gs.shape)
         Gd = np.asarray(G, dtype=np.float64)
         if Gd.ndim != 2:
-            raise ConfigError(f"top_singular_pairs: G must be 2-D, got shape {Gd.shape}")
+            raise KernelConfigError(f"top_singular_pairs: G must be 2-D, got shape {Gd.shape}")
         if not np.all(np.isfinite(Gd)):
-            raise ConfigError("top_singular_pairs: G has a non-finite entry")
+            raise KernelConfigError("top_singular_pairs: G has a non-finite entry")
         return (lambda X: Gd @ X, lambda Y: Gd.T @ Y, Gd.shape)
     if matvec is None or rmatvec is None or shape is None:
-        raise ConfigError("top_singular_pairs: give G, or matvec, rmatvec and shape=(m, n)")
+        raise KernelConfigError("top_singular_pairs: give G, or matvec, rmatvec and shape=(m, n)")
     m, n = (int(v) for v in shape)
     return matvec, rmatvec, (m, n)
 
@@ -180,11 +179,11 @@ def _operator(G, matvec, rmatvec, shape) -> tuple[BlockOp, BlockOp, tuple[int, i
 def _product(op: BlockOp, X: np.ndarray, rows: int, name: str) -> np.ndarray:
     Y = np.asarray(op(X), dtype=np.float64)
     if Y.shape != (rows, X.shape[1]):
-        raise ConfigError(
+        raise KernelConfigError(
             f"top_singular_pairs: {name} returned shape {Y.shape}, expected {(rows, X.shape[1])}"
         )
     if not np.all(np.isfinite(Y)):
-        raise ConfigError(f"top_singular_pairs: {name} returned a non-finite entry")
+        raise KernelConfigError(f"top_singular_pairs: {name} returned a non-finite entry")
     return Y
 
 
@@ -259,11 +258,11 @@ def top_singular_pairs(
     """
     mv, rmv, (m, n) = _operator(G, matvec, rmatvec, shape)
     if not (1 <= int(n_pairs) <= min(m, n)):
-        raise ConfigError(
+        raise KernelConfigError(
             f"top_singular_pairs: n_pairs={n_pairs} must be between 1 and min(m, n)={min(m, n)}"
         )
     if int(oversample) < 0 or int(max_iter) < 1 or not (tol > 0) or not (drop_tol > 0):
-        raise ConfigError(
+        raise KernelConfigError(
             "top_singular_pairs: need oversample >= 0, max_iter >= 1, tol > 0 and drop_tol > 0"
         )
     t = int(n_pairs)
@@ -272,7 +271,7 @@ def top_singular_pairs(
     if warm_start is not None:
         W0 = np.asarray(warm_start, dtype=np.float64)
         if W0.ndim != 2 or W0.shape[0] != n:
-            raise ConfigError(
+            raise KernelConfigError(
                 f"top_singular_pairs: warm_start must have {n} rows, got shape {W0.shape}"
             )
         V = orth_rank_revealing(W0[:, :l], drop_tol)

@@ -32,11 +32,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from stream.errors import ConfigError, InputError
-
 from . import losses as _losses
 from .conjugates import conjugate_sum
 from .csc import BlockCSC, csc_matmul_dense, csc_t_matmul_accumulate
+from .errors import KernelConfigError, KernelInputError
 from .sparse import csr_matmul_dense, csr_t_matmul_accumulate
 
 LOSSES = ("softmax", "squared", "multilabel")
@@ -48,7 +47,7 @@ def _as_f64_2d(name: str, a: np.ndarray | None, rows: int, cols: int | None = No
     arr = np.asarray(a, dtype=np.float64)
     if arr.ndim != 2 or arr.shape[0] != rows or (cols is not None and arr.shape[1] != cols):
         want = f"({rows}, {'any' if cols is None else cols})"
-        raise ConfigError(f"block operands: {name} must have shape {want}, got {arr.shape}")
+        raise KernelConfigError(f"block operands: {name} must have shape {want}, got {arr.shape}")
     return arr
 
 
@@ -140,32 +139,36 @@ def prepare_operands(
     BlockOperands
     """
     if loss not in LOSSES:
-        raise ConfigError(f"block operands: unknown loss {loss!r}; use one of {', '.join(LOSSES)}")
+        raise KernelConfigError(
+            f"block operands: unknown loss {loss!r}; use one of {', '.join(LOSSES)}"
+        )
     b = np.ascontiguousarray(b, dtype=np.float64)
     if b.ndim != 1 or b.shape[0] < 1:
-        raise ConfigError(f"block operands: b must be a 1-D array of k >= 1 values, got {b.shape}")
+        raise KernelConfigError(
+            f"block operands: b must be a 1-D array of k >= 1 values, got {b.shape}"
+        )
     k = b.shape[0]
     if n_cols is None:
         src = U if U is not None else Psi
         if src is None:
-            raise ConfigError("block operands: give U, Psi or n_cols so that d is known")
+            raise KernelConfigError("block operands: give U, Psi or n_cols so that d is known")
         n_cols = np.shape(src)[0]
     d = int(n_cols)
     U2 = _as_f64_2d("U", U, d)
     r = U2.shape[1]
     s1 = np.zeros(0) if s is None else np.asarray(s, dtype=np.float64).reshape(-1)
     if s1.shape[0] != r:
-        raise ConfigError(f"block operands: s has {s1.shape[0]} values but U has {r} columns")
+        raise KernelConfigError(f"block operands: s has {s1.shape[0]} values but U has {r} columns")
     V2 = _as_f64_2d("V", V, k, r)
     Psi2 = _as_f64_2d("Psi", Psi, d)
     Om2 = _as_f64_2d("Omega", Omega, k)
     cw = None
     if class_weights is not None:
         if loss != "softmax":
-            raise ConfigError("block operands: class weights apply to the softmax loss only")
+            raise KernelConfigError("block operands: class weights apply to the softmax loss only")
         cw = np.asarray(class_weights, dtype=np.float64)
         if cw.shape != (k,):
-            raise ConfigError(f"block operands: class_weights must have {k} values")
+            raise KernelConfigError(f"block operands: class_weights must have {k} values")
     return BlockOperands(
         Q=np.ascontiguousarray(np.hstack([U2, Psi2])),
         SVt=np.ascontiguousarray(s1[:, None] * V2.T),
@@ -238,7 +241,7 @@ def _tags_arrays(targets) -> tuple[np.ndarray, np.ndarray]:
         return targets[0], targets[1]
     if hasattr(targets, "indptr") and hasattr(targets, "indices"):
         return targets.indptr, targets.indices
-    raise InputError(
+    raise KernelInputError(
         "block targets: tags must be a scipy CSR matrix or an (indptr, indices) pair"
     )
 
@@ -252,7 +255,7 @@ def _check_buffers(bufs: ProductBuffers, ops: BlockOperands) -> None:
     }
     for name, shape in want.items():
         if getattr(bufs, name).shape != shape:
-            raise ConfigError(
+            raise KernelConfigError(
                 f"product buffers: {name} has shape {getattr(bufs, name).shape}, the operands "
                 f"need {shape}; build them with ProductBuffers.zeros(ops)"
             )
@@ -309,7 +312,7 @@ def block_products(
     _check_buffers(bufs, ops)
     n, d = X.shape
     if d != ops.d:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: block has {d} columns but the model has {ops.d}; "
             "use the model trained on this store's features"
         )
@@ -318,7 +321,9 @@ def block_products(
         out_XQ = np.empty((n, q))
     if csc is not None:
         if csc.shape != (n, d):
-            raise ConfigError(f"{where}: transposed block {csc.shape} is not the block {(n, d)}")
+            raise KernelConfigError(
+                f"{where}: transposed block {csc.shape} is not the block {(n, d)}"
+            )
         csc_matmul_dense(csc, ops.Q, out_XQ, where=where)
     else:
         csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where)
@@ -332,7 +337,7 @@ def block_products(
     ):
         S = scratch.reshape(-1)[: n * k].reshape(n, k)
     else:
-        raise ConfigError(
+        raise KernelConfigError(
             f"{where}: scratch must be a C-contiguous float64 array of at least {n * k} values"
         )
     if r:

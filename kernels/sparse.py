@@ -5,7 +5,7 @@ The jitted kernels (``*_kernel``) are pure functions over raw CSR arrays
 ``out`` buffer; they accumulate in float64 and never allocate. The public
 functions are a thin Python layer that checks shapes and dtypes, holds the
 threading guard (see :mod:`kernels.threads`) and turns the kernels' bad-entry
-count into a :class:`stream.errors.InputError`.
+count into a :class:`~.errors.KernelInputError`.
 
 Both products are deterministic: the result does not depend on the number of
 threads or on their timing. ``X @ B`` is parallel over rows (each output row
@@ -22,8 +22,7 @@ import numba
 import numpy as np
 from numba import njit, prange
 
-from stream.errors import InputError
-
+from .errors import KernelInputError
 from .threads import kernel_guard
 
 # Columns are dealt to threads in groups of 2**_GROUP_SHIFT consecutive ids:
@@ -120,15 +119,17 @@ def _check_csr(indptr: np.ndarray, indices: np.ndarray, data: np.ndarray, where:
         ("data", data, "f"),
     ):
         if not isinstance(arr, np.ndarray) or arr.ndim != 1 or arr.dtype.kind not in kinds:
-            raise InputError(
+            raise KernelInputError(
                 f"{where}: {name} must be a 1-D {'integer' if kinds == 'iu' else 'float'} "
                 f"array, got {getattr(arr, 'dtype', type(arr).__name__)} with shape "
                 f"{getattr(arr, 'shape', None)}; pass the CSR arrays of a scipy.sparse matrix"
             )
     if indptr.shape[0] < 1:
-        raise InputError(f"{where}: indptr is empty; a CSR block of n rows needs n + 1 pointers")
+        raise KernelInputError(
+            f"{where}: indptr is empty; a CSR block of n rows needs n + 1 pointers"
+        )
     if indices.shape[0] != data.shape[0]:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: indices has {indices.shape[0]} entries but data has {data.shape[0]}; "
             "both must hold one value per stored entry"
         )
@@ -142,7 +143,7 @@ def _check_out(out: np.ndarray, shape: tuple[int, int], where: str) -> None:
         or out.shape != shape
         or not out.flags.writeable
     ):
-        raise InputError(
+        raise KernelInputError(
             f"{where}: out must be a writable float64 array of shape {shape}, got "
             f"{getattr(out, 'dtype', type(out).__name__)} {getattr(out, 'shape', None)}; "
             "allocate it with numpy.zeros(shape)"
@@ -151,12 +152,12 @@ def _check_out(out: np.ndarray, shape: tuple[int, int], where: str) -> None:
 
 def _check_dense(name: str, arr: np.ndarray, rows: int | None, where: str) -> None:
     if not isinstance(arr, np.ndarray) or arr.ndim != 2 or arr.dtype.kind != "f":
-        raise InputError(
+        raise KernelInputError(
             f"{where}: {name} must be a 2-D float32/float64 array, got "
             f"{getattr(arr, 'dtype', type(arr).__name__)} {getattr(arr, 'shape', None)}"
         )
     if rows is not None and arr.shape[0] != rows:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: {name} has {arr.shape[0]} rows but the block has {rows}; "
             "pass one row of the dense operand per block row"
         )
@@ -169,7 +170,7 @@ def _raise_bad_entries(indptr, indices, n_cols: int, where: str) -> None:
     bad_rows = np.flatnonzero((ptr[:-1] < 0) | (ptr[1:] > nnz) | (ptr[:-1] > ptr[1:]))
     if bad_rows.size:
         r = int(bad_rows[0])
-        raise InputError(
+        raise KernelInputError(
             f"{where}: row {r} has pointers indptr[{r}]={int(ptr[r])}, "
             f"indptr[{r + 1}]={int(ptr[r + 1])} outside 0..{nnz} or decreasing; "
             "rebuild the block from a valid CSR matrix"
@@ -177,7 +178,7 @@ def _raise_bad_entries(indptr, indices, n_cols: int, where: str) -> None:
     bad = np.flatnonzero((indices < 0) | (indices >= n_cols))
     q = int(bad[0]) if bad.size else -1
     row = int(np.searchsorted(ptr, q, side="right") - 1) if q >= 0 else -1
-    raise InputError(
+    raise KernelInputError(
         f"{where}: entry {q} (row {row}) has column id "
         f"{int(indices[q]) if q >= 0 else '?'} outside 0..{n_cols - 1}; "
         "the dense operand must have one row per column of the matrix"
@@ -215,7 +216,7 @@ def csr_matmul_dense(
 
     Raises
     ------
-    InputError
+    KernelInputError
         On wrong shapes/dtypes, or pointers/column ids out of range.
     """
     n = _check_csr(indptr, indices, data, where)
@@ -266,7 +267,7 @@ def csr_t_matmul_accumulate(
 
     Raises
     ------
-    InputError
+    KernelInputError
         On wrong shapes/dtypes, or pointers/column ids out of range (``out``
         then holds the contributions of the valid entries only).
     """
@@ -274,7 +275,7 @@ def csr_t_matmul_accumulate(
     _check_dense("D", D, n, where)
     D = np.asarray(D, dtype=np.float64)
     if not isinstance(out, np.ndarray) or out.ndim != 2 or out.shape[1] != D.shape[1]:
-        raise InputError(
+        raise KernelInputError(
             f"{where}: out must be (d, {D.shape[1]}) to accumulate X^T @ D, got "
             f"{getattr(out, 'shape', None)}"
         )

@@ -17,8 +17,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
-from .errors import ModelError, OutputExistsError
+from ranktide.errors import ModelError, OutputExistsError
 
 __all__ = [
     "temp_sibling",

@@ -8,12 +8,19 @@ exits with status 2.
 
 from __future__ import annotations
 
+from ranktide.kernels.errors import KernelConfigError, KernelError, KernelInputError
+
+__all__ = [
+    "CheckpointError", "ConfigError", "InputError", "KernelError", "ModelError",
+    "OutputExistsError", "RanktideError", "StoreError",
+]
+
 
 class RanktideError(ValueError):
     """Base class of every user-facing ranktide error."""
 
 
-class InputError(RanktideError):
+class InputError(RanktideError, KernelInputError):
     """A source file (matrix, targets, weights) is malformed."""
 
 
@@ -21,7 +28,7 @@ class StoreError(RanktideError):
     """A path is not a store, is of a newer format, or is damaged."""
 
 
-class ConfigError(RanktideError):
+class ConfigError(RanktideError, KernelConfigError):
     """An option or setting is invalid or inconsistent."""
 
 

@@ -29,8 +29,7 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-
-from .errors import ConfigError, InputError
+from ranktide.errors import ConfigError, InputError
 
 __all__ = ["Loss", "get_loss", "LOSS_NAMES", "TARGET_KIND", "best_intercept",
            "check_loss_source", "row_weights"]
@@ -98,7 +97,7 @@ class Loss:
         residual : (n, k) float64 array
             ``w_i * dloss/dz_i`` for each row.
         """
-        from kernels import losses as kl
+        from ranktide.kernels import losses as kl
 
         Z = np.asarray(scores, dtype=np.float64)
         if Z.ndim != 2:
@@ -222,7 +221,7 @@ def best_intercept(
     Parameters
     ----------
     source : Store, path, CSR tuple or source
-        The data (see :func:`stream.memsource.as_source`).
+        The data (see :func:`ranktide.store.memory_source.as_source`).
     loss : {"softmax", "squared", "multilabel"}
     class_weights : (k,) array, optional
         Per-class weights (softmax only).
@@ -238,7 +237,7 @@ def best_intercept(
         condition ``grad_b f = 0``); squared: the weighted mean of ``Y``;
         multilabel: ``logit(freq)`` of the weighted tag frequencies.
     """
-    from .memsource import as_source
+    from ranktide.store.memory_source import as_source
 
     opened = isinstance(source, (str, os.PathLike))
     src = as_source(source)
@@ -254,7 +253,7 @@ def best_intercept(
 def _best_intercept(src: Any, *, loss: str, class_weights: Any, backend: str,
                     block_rows: int | None, block_bytes: int | None, clip: float,
                     progress: bool) -> np.ndarray:
-    from .passes import run_pass
+    from ranktide.passes.engine import run_pass
 
     check_loss_source(loss, src)
     k = int(src.n_outputs)

@@ -3,7 +3,7 @@
 A model directory holds
 
 * ``factors.npz``: ``U`` (d, r), ``s`` (r,), ``V`` (k, r), ``b`` (k,), float64,
-  written without pickle (:func:`stream.atomic.save_npz`);
+  written without pickle (:func:`ranktide.atomic.save_npz`);
 * ``model.json``: format name and version, loss, shapes, the output names in
   column order (under ``classes``, ``tags`` or ``outputs`` by loss), and the
   fit's figures (lam, lam_max, store fingerprint, objective, gap estimate,
@@ -25,11 +25,9 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-
-from kernels.svd import svd
-
-from .atomic import atomic_dir, atomic_write_json, load_npz, save_npz
-from .errors import ConfigError, InputError, ModelError
+from ranktide.atomic import atomic_dir, atomic_write_json, load_npz, save_npz
+from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.kernels.svd import svd
 
 __all__ = ["Model", "save_model", "load_model", "MODEL_FORMAT", "MODEL_VERSION", "NAMES_KEY"]
 
@@ -206,7 +204,7 @@ class Model:
         if self.rank == 0 or n == 0:
             return out
         if sp.issparse(X):
-            from kernels.sparse import csr_matmul_dense
+            from ranktide.kernels.sparse import csr_matmul_dense
 
             Xc = sp.csr_matrix(X)
             data = Xc.data
@@ -286,7 +284,7 @@ def _jsonable(value: Any, key: str) -> Any:
 
 
 def _versions() -> dict[str, str | None]:
-    from . import __version__
+    from ranktide import __version__
 
     out: dict[str, str | None] = {}
     for pkg in _VERSIONED:

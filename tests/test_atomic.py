@@ -6,9 +6,8 @@ import json
 
 import numpy as np
 import pytest
-
-from stream.atomic import atomic_dir, atomic_write_json, load_npz, save_npz
-from stream.errors import ModelError, OutputExistsError
+from ranktide.atomic import atomic_dir, atomic_write_json, load_npz, save_npz
+from ranktide.errors import ModelError, OutputExistsError
 
 
 def test_atomic_dir_renames_on_success(tmp_path):

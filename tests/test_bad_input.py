@@ -1,6 +1,6 @@
 """Every malformed input gives one line on stderr, exit status 2, and no output.
 
-The command line is driven in-process through ``stream.cli.main``; each case
+The command line is driven in-process through ``ranktide.cli.main.main``; each case
 checks the status, that stderr is exactly one line, what it says (file name,
 line or entry, problem) and that nothing is left under the output name or as
 a temporary or scratch sibling.
@@ -14,8 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
-from stream.cli import main
+from ranktide.cli.main import main
 
 BANNER = "%%MatrixMarket matrix coordinate real general\n"
 

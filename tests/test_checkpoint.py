@@ -22,12 +22,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
-import stream.checkpoint as ckmod
-from stream.checkpoint import CheckpointManager, CheckpointSchedule, CheckpointWarning
-from stream.errors import CheckpointError, ConfigError, OutputExistsError
-from stream.rundir import RUN_VERSION, RunDir, check_resume_compatible
-from stream.signals import StopFlag, interrupted_message, stop_on_signals
+import ranktide.runs.checkpoint as ckmod
+from ranktide.errors import CheckpointError, ConfigError, OutputExistsError
+from ranktide.runs.checkpoint import CheckpointManager, CheckpointSchedule, CheckpointWarning
+from ranktide.runs.rundir import RUN_VERSION, RunDir, check_resume_compatible
+from ranktide.signals import StopFlag, interrupted_message, stop_on_signals
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -254,7 +253,7 @@ _WRITER = textwrap.dedent(
     """
     import sys
     import numpy as np
-    from stream.checkpoint import CheckpointManager
+    from ranktide.runs.checkpoint import CheckpointManager
     mgr = CheckpointManager(sys.argv[1])
     for i in (1, 2):
         rng = np.random.default_rng(i)
@@ -415,7 +414,7 @@ class _FakeState:
 
 
 def test_recorder_cadence_step_end_and_stop(tmp_path):
-    from stream.rundir import RunRecorder
+    from ranktide.runs.rundir import RunRecorder
 
     run = _run(tmp_path)
     now = [0.0]
@@ -457,7 +456,7 @@ def test_recorder_cadence_step_end_and_stop(tmp_path):
 
 
 def test_resume_rejects_bad_budgets_before_touching_the_run(tmp_path):
-    from stream.rundir import resume
+    from ranktide.runs.resume import resume
 
     run = _run(tmp_path)
     before = run.config_path.read_text()

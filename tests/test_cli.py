@@ -3,8 +3,7 @@
 from __future__ import annotations
 
 import pytest
-
-from stream import cli
+from ranktide.cli import main as cli
 
 
 def test_every_registered_command_has_help_and_example():
@@ -33,8 +32,7 @@ def test_train_stopped_before_lam_max_prints_a_summary(tmp_path, capsys):
     # line must still print (regression: it raised TypeError on None).
     import numpy as np
     import scipy.sparse as sp
-
-    from stream.store import write_store
+    from ranktide.store import write_store
 
     rng = np.random.default_rng(0)
     X = sp.random(200, 30, density=0.2, format="csr", random_state=1, dtype=np.float32)

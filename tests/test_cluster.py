@@ -17,16 +17,16 @@ import scipy.sparse as sp
 
 distributed = pytest.importorskip("distributed", reason="dask.distributed not installed")
 
-from stream.cluster import (  # noqa: E402
+from ranktide.errors import ConfigError  # noqa: E402
+from ranktide.passes.dask_backend import (  # noqa: E402
     cluster_client,
     from_wire,
     parse_cluster,
     split_groups,
     to_wire,
 )
-from stream.errors import ConfigError  # noqa: E402
-from stream.gradient_pass import PassRequest, gradient_pass  # noqa: E402
-from stream.store import write_store  # noqa: E402
+from ranktide.passes.gradient import PassRequest, gradient_pass  # noqa: E402
+from ranktide.store import write_store  # noqa: E402
 
 
 def _problem(tmp_path, n=3000, d=400, k=12, r=3, seed=5):
@@ -93,7 +93,7 @@ def test_split_groups_balances_rows():
 
 
 def test_wire_form_rebuilds_objects_without_copying_big_arrays():
-    from stream.gradient_pass import Projection, _Partial
+    from ranktide.passes.gradient import Projection, _Partial
 
     rng = np.random.default_rng(0)
     X = sp.random(6, 5, density=0.5, format="csr", random_state=0, dtype=np.float32)
@@ -170,7 +170,7 @@ def test_dask_pass_profile_has_every_block(tmp_path, client):
 
 
 def test_dask_pass_stop_request_cancels_the_pass(tmp_path, client):
-    from stream.signals import StopFlag, StopRequested
+    from ranktide.signals import StopFlag, StopRequested
 
     path, req = _problem(tmp_path, n=20000)
     flag = StopFlag()
@@ -192,12 +192,12 @@ def test_dask_pass_stop_request_cancels_the_pass(tmp_path, client):
 
 
 def test_worker_killed_mid_pass_gives_same_result(tmp_path, client):
-    path, req = _problem(tmp_path, n=20000)
+    path, req = _problem(tmp_path, n=40000)
     serial = gradient_pass(path, req, backend="serial", block_rows=100)
     pids = list(client.run(os.getpid).values())
 
     def kill_one():
-        time.sleep(0.4)
+        time.sleep(0.15)
         os.kill(pids[0], signal.SIGKILL)
 
     killer = threading.Thread(target=kill_one)
@@ -206,7 +206,7 @@ def test_worker_killed_mid_pass_gives_same_result(tmp_path, client):
     dist = gradient_pass(path, req, backend="dask", block_rows=50)
     wall = time.perf_counter() - t0
     killer.join()
-    assert wall > 0.4, "the pass ended before the worker was killed; make it longer"
+    assert wall > 0.15, "the pass ended before the worker was killed; make it longer"
     _assert_same(serial, dist, 1e-12)
     # the killed worker really died (its nanny starts a new process)
     deadline = time.monotonic() + 60
@@ -230,15 +230,15 @@ def test_unreachable_scheduler_is_one_clear_error():
 
 
 def _model(tmp_path, req):
-    from stream.model import Model, save_model
+    from ranktide.model import Model, save_model
 
     m = Model(U=req.U, s=req.s, V=req.V, b=req.b, loss="softmax")
     return save_model(tmp_path / "model", m)
 
 
 def test_evaluate_and_predict_on_cluster_equal_serial(tmp_path, client):
-    from stream.evaluate import evaluate
-    from stream.predict import predict_to_file
+    from ranktide.scoring.evaluate import evaluate
+    from ranktide.scoring.predict import predict_to_file
 
     path, req = _problem(tmp_path)
     model_dir = _model(tmp_path, req)
@@ -254,11 +254,11 @@ def test_evaluate_and_predict_on_cluster_equal_serial(tmp_path, client):
 
 
 def test_cluster_needs_a_store_for_evaluate(client):
-    from stream.evaluate import evaluate
+    from ranktide.scoring.evaluate import evaluate
 
     rng = np.random.default_rng(0)
     X = sp.random(50, 10, density=0.2, format="csr", random_state=0)
-    from stream.model import Model
+    from ranktide.model import Model
 
     m = Model(U=np.eye(10, 2), s=np.ones(2), V=np.eye(3, 2), b=np.zeros(3), loss="softmax")
     with pytest.raises(ConfigError, match="need a store path"):
@@ -267,7 +267,7 @@ def test_cluster_needs_a_store_for_evaluate(client):
 
 @pytest.mark.parametrize("dense", [True, False])
 def test_trained_model_on_cluster_equals_serial(tmp_path, client, dense):
-    from stream.train import train
+    from ranktide.runs.train import train
 
     path, _ = _problem(tmp_path, n=800, d=60, k=5)
     # Reference: the serial backend. Every figure of a pass is the serial one bit for

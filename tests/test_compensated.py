@@ -18,11 +18,14 @@ import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
-
-from kernels.compensated import compensated_add, compensated_combine, csc_t_matmul_compensated
-from kernels.csc import block_csc
-from kernels.sparse import csr_t_matmul_accumulate
-from stream.errors import InputError
+from ranktide.kernels.compensated import (
+    compensated_add,
+    compensated_combine,
+    csc_t_matmul_compensated,
+)
+from ranktide.kernels.csc import block_csc
+from ranktide.kernels.errors import KernelInputError
+from ranktide.kernels.sparse import csr_t_matmul_accumulate
 
 
 def _partials(n=200, d=40, m=5, seed=0):
@@ -153,13 +156,13 @@ def test_transposed_block_equals_buffer_then_add(threads):
 
 def test_bad_arrays_are_one_clear_error():
     S, C = np.zeros((4, 3)), np.zeros((4, 3))
-    with pytest.raises(InputError, match=r"B must be a writable C-contiguous float64 array"):
+    with pytest.raises(KernelInputError, match=r"B must be a writable C-contiguous float64 array"):
         compensated_add(np.zeros((4, 3), dtype=np.float32), S, C)
-    with pytest.raises(InputError, match=r"C must be .* of shape \(4, 3\)"):
+    with pytest.raises(KernelInputError, match=r"C must be .* of shape \(4, 3\)"):
         compensated_add(np.zeros((4, 3)), S, np.zeros((3, 3)))
-    with pytest.raises(InputError, match=r"S2 must be a float64 array of shape \(4, 3\)"):
+    with pytest.raises(KernelInputError, match=r"S2 must be a float64 array of shape \(4, 3\)"):
         compensated_combine(S, C, np.zeros((4, 2)), np.zeros((4, 3)))
     X = sp.random(5, 4, density=0.5, format="csr", random_state=0, dtype=np.float32)
     T = block_csc(X.indptr, X.indices, X.data, 4)
-    with pytest.raises(InputError, match=r"S and C must be \(4, 2\)"):
+    with pytest.raises(KernelInputError, match=r"S and C must be \(4, 2\)"):
         csc_t_matmul_compensated(T, np.zeros((5, 2)), S, C)

@@ -13,12 +13,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from ranktide.kernels.conjugates import conjugate_sum
+from ranktide.kernels.errors import KernelInputError
+from ranktide.kernels.losses import multilabel_residual, softmax_residual, squared_residual
 from scipy.optimize import minimize_scalar
 from scipy.special import expit, logsumexp, softmax, xlogy
-
-from kernels.conjugates import conjugate_sum
-from kernels.losses import multilabel_residual, softmax_residual, squared_residual
-from stream.errors import InputError
 
 
 def _data(n=150, k=5, seed=0):
@@ -111,8 +110,8 @@ def test_binary_entropy_is_the_softplus_conjugate():
 
 def test_bad_scale_and_shapes_are_one_clear_error():
     R = np.zeros((3, 2))
-    with pytest.raises(InputError, match="dual scale"):
+    with pytest.raises(KernelInputError, match="dual scale"):
         conjugate_sum(R, np.zeros(3, np.int32), None, "softmax", 1.5)
-    with pytest.raises(InputError, match="target values"):
+    with pytest.raises(KernelInputError, match="target values"):
         conjugate_sum(R, np.zeros((3, 3)), None, "squared", 0.5)
     assert conjugate_sum(np.zeros((0, 2)), np.zeros(0, np.int32), None, "softmax", 0.5) == 0.0

@@ -12,15 +12,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.losses import best_intercept, get_loss
+from ranktide.passes.engine import PassProfile
+from ranktide.passes.gradient import PassRequest, gradient_pass
+from ranktide.store.memory_source import MemorySource
 from scipy.optimize import approx_fprime, minimize
 from scipy.special import expit, log_expit, log_softmax, softmax
 from sklearn.metrics import log_loss
-
-from stream.errors import ConfigError, InputError, ModelError
-from stream.gradient_pass import PassRequest, gradient_pass
-from stream.losses import best_intercept, get_loss
-from stream.memsource import MemorySource
-from stream.passes import PassProfile
 
 LOSSES = ["softmax", "squared", "multilabel"]
 
@@ -189,8 +188,8 @@ def test_range_and_tree_reductions_give_the_serial_pass_bit_for_bit(mode):
     (kernels/compensated.py); the plain sums of the small figures are left out here,
     since only the serial fold (kept by every backend) promises their bits.
     """
-    from stream.gradient_pass import _finalize, _state, block_products_kernels, combine_partials
-    from stream.sparse_path import CHOOSER
+    from ranktide.passes.gradient import _finalize, _state, block_products_kernels, combine_partials
+    from ranktide.passes.kernel_path import CHOOSER
 
     X, y, w = _problem("squared", n=700, d=90, k=8, seed=13)
     X.data *= np.float32(1e3) ** np.random.default_rng(0).uniform(-1, 1, X.nnz).astype(
@@ -230,7 +229,7 @@ def test_range_and_tree_reductions_give_the_serial_pass_bit_for_bit(mode):
 @pytest.mark.parametrize("loss", LOSSES)
 def test_transposed_and_csr_blocks_give_identical_passes(loss):
     """The column-major block kernels sum in the CSR kernels' order: bit-identical."""
-    from stream.sparse_path import CHOOSER
+    from ranktide.passes.kernel_path import CHOOSER
 
     X, y, w = _problem(loss, n=400, d=50, k=7, seed=12)
     U, s, V, b, Om, Psi = _model(50, 7, r=3)
@@ -252,7 +251,7 @@ def test_transposed_and_csr_blocks_give_identical_passes(loss):
 
 
 def test_path_chooser_probes_both_paths_then_keeps_the_faster():
-    from stream.sparse_path import PathChooser
+    from ranktide.passes.kernel_path import PathChooser
 
     ch = PathChooser()
     key = ("d", 24)
@@ -384,7 +383,7 @@ def test_loss_objects_match_dense_reference(loss):
 @pytest.mark.parametrize("store_backend", ["zarr", "hdf5"])
 @pytest.mark.parametrize("loss", ["softmax", "multilabel"])
 def test_pass_over_store_equals_in_memory(tmp_path, store_backend, loss):
-    from stream.store import write_store
+    from ranktide.store import write_store
 
     X, y, w = _problem(loss, n=500, d=40, k=6, seed=13)
     U, s, V, b, Om, Psi = _model(40, 6)

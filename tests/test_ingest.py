@@ -13,12 +13,11 @@ import numpy as np
 import pytest
 import scipy.io
 import scipy.sparse as sp
-
-from kernels import parse as kp
-from stream.errors import InputError
-from stream.ingest import ingest
-from stream.mmio import iter_entries, read_header
-from stream.store import open_store
+from ranktide.errors import InputError
+from ranktide.ingest.build import ingest
+from ranktide.ingest.mmio import iter_entries, read_header
+from ranktide.kernels import parse as kp
+from ranktide.store import open_store
 
 
 def read_all(path):
@@ -281,7 +280,7 @@ def test_tags_and_values_and_npy_weights(tmp_path):
 
 
 def test_cli_json_summary(tmp_path, capsys):
-    from stream.cli import main
+    from ranktide.cli.main import main
 
     A = sp.random(20, 10, density=0.3, random_state=4, format="csr")
     scipy.io.mmwrite(tmp_path / "a.mtx", A)

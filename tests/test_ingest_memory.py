@@ -25,7 +25,7 @@ _spec.loader.exec_module(bench)
 
 _CHILD = r"""
 import json, sys
-from stream.ingest import ingest
+from ranktide.ingest.build import ingest
 s = ingest(sys.argv[1], sys.argv[2], memory="32MB")
 hwm = [l for l in open("/proc/self/status") if l.startswith("VmHWM")][0]
 print(json.dumps({"peak_kib": int(hwm.split()[1]),

@@ -14,13 +14,17 @@ import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from ranktide.kernels import threads
+from ranktide.kernels.csc import (
+    block_csc,
+    csc_matmul_dense,
+    csc_t_matmul_accumulate,
+    worth_transposing,
+)
+from ranktide.kernels.errors import KernelConfigError, KernelInputError
+from ranktide.kernels.products import ProductBuffers, block_products, prepare_operands
+from ranktide.kernels.sparse import csr_matmul_dense, csr_t_matmul_accumulate
 from scipy.special import expit, logsumexp
-
-from kernels import threads
-from kernels.csc import block_csc, csc_matmul_dense, csc_t_matmul_accumulate, worth_transposing
-from kernels.products import ProductBuffers, block_products, prepare_operands
-from kernels.sparse import csr_matmul_dense, csr_t_matmul_accumulate
-from stream.errors import ConfigError, InputError
 
 DTYPES = [(np.int32, np.float32), (np.int64, np.float32), (np.int32, np.float64),
           (np.int64, np.float64)]
@@ -121,9 +125,9 @@ def test_transposed_block_edge_cases():
     np.testing.assert_allclose(o, X.astype(np.float64) @ B, rtol=1e-12, atol=1e-12)  # scipy
     bad = ix.copy()
     bad[7] = 200
-    with pytest.raises(InputError, match="entry 7 .* column id 200 outside 0..199"):
+    with pytest.raises(KernelInputError, match="entry 7 .* column id 200 outside 0..199"):
         block_csc(ip, bad, da, 200)
-    with pytest.raises(InputError, match="pointers"):
+    with pytest.raises(KernelInputError, match="pointers"):
         block_csc(np.array([0, 5, 3], dtype=np.int32), ix, da, 200)
     assert worth_transposing(100, 200) and not worth_transposing(99, 200)
     assert not worth_transposing(0, 0)
@@ -178,19 +182,19 @@ def test_sparse_bad_input_raises():
     B = np.zeros((50, 2))
     bad_ix = ix.copy()
     bad_ix[3] = 50
-    with pytest.raises(InputError, match=r"entry 3 \(row \d+\) has column id 50 outside 0..49"):
+    with pytest.raises(KernelInputError, match=r"entry 3 \(row \d+\) has column id 50 outside"):
         csr_matmul_dense(ip, bad_ix, da, B, np.zeros((30, 2)), where="part-0.mtx")
-    with pytest.raises(InputError, match="column id 50"):
+    with pytest.raises(KernelInputError, match="column id 50"):
         csr_t_matmul_accumulate(ip, bad_ix, da, np.zeros((30, 2)), np.zeros((50, 2)))
     bad_ip = ip.copy()
     bad_ip[-1] = ix.shape[0] + 5
-    with pytest.raises(InputError, match="row 29 has pointers"):
+    with pytest.raises(KernelInputError, match="row 29 has pointers"):
         csr_matmul_dense(bad_ip, ix, da, B, np.zeros((30, 2)))
-    with pytest.raises(InputError, match="out must be a writable float64"):
+    with pytest.raises(KernelInputError, match="out must be a writable float64"):
         csr_matmul_dense(ip, ix, da, B, np.zeros((30, 2), dtype=np.float32))
-    with pytest.raises(InputError, match="D has 29 rows but the block has 30"):
+    with pytest.raises(KernelInputError, match="D has 29 rows but the block has 30"):
         csr_t_matmul_accumulate(ip, ix, da, np.zeros((29, 2)), np.zeros((50, 2)))
-    with pytest.raises(InputError, match="indices has"):
+    with pytest.raises(KernelInputError, match="indices has"):
         csr_matmul_dense(ip, ix[:-1], da, B, np.zeros((30, 2)))
 
 
@@ -203,7 +207,7 @@ def test_threading_info_reports_numba_layer():
     assert info["layer"] == numba.threading_layer()  # reference: numba's own report
     assert info["threads"] == numba.get_num_threads()
     assert info["serialized"] == (info["layer"] == "workqueue")
-    import kernels
+    import ranktide.kernels as kernels
 
     assert kernels.threading_info() == info
 
@@ -355,13 +359,13 @@ def test_block_products_bad_input():
     bufs = ProductBuffers.zeros(ops)
     y_bad = y.copy()
     y_bad[4] = 6
-    with pytest.raises(InputError, match="train.zarr: row 1004 has class id 6 outside 0..5"):
+    with pytest.raises(KernelInputError, match="train.zarr: row 1004 has class id 6 outside 0..5"):
         block_products(X, y_bad, w, ops, bufs, row_offset=1000, where="train.zarr")
-    with pytest.raises(InputError, match="block has 399 columns but the model has 400"):
+    with pytest.raises(KernelInputError, match="block has 399 columns but the model has 400"):
         block_products(X[:, :399], y, w, ops, ProductBuffers.zeros(ops))
-    with pytest.raises(ConfigError, match="unknown loss"):
+    with pytest.raises(KernelConfigError, match="unknown loss"):
         prepare_operands(U=U, s=s, V=V, b=b, loss="hinge")
-    with pytest.raises(ConfigError, match="s has 2 values but U has 3 columns"):
+    with pytest.raises(KernelConfigError, match="s has 2 values but U has 3 columns"):
         prepare_operands(U=U, s=s[:2], V=V, b=b, loss="softmax")
 
 
@@ -370,8 +374,8 @@ import json
 from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 import scipy.sparse as sp
-from kernels.sparse import csr_t_matmul_accumulate
-from kernels.threads import threading_info
+from ranktide.kernels.sparse import csr_t_matmul_accumulate
+from ranktide.kernels.threads import threading_info
 
 X = sp.random(300, 200, density=0.1, format="csr", random_state=0)
 D = np.ones((300, 3))
@@ -433,7 +437,7 @@ def test_block_products_scratch_holds_residual():
     block_products(X, y, w, ops, ProductBuffers.zeros(ops), scratch=scratch)
     _, _, R = _dense_reference(X.toarray().astype(np.float64), y, w, U, s, V, b, "squared")
     np.testing.assert_allclose(scratch[:300].reshape(50, 6), R, rtol=1e-10, atol=1e-12)
-    with pytest.raises(ConfigError, match="scratch must be a C-contiguous float64 array"):
+    with pytest.raises(KernelConfigError, match="scratch must be a C-contiguous float64 array"):
         block_products(X, y, w, ops, ProductBuffers.zeros(ops), scratch=np.empty(10))
 
 
@@ -452,20 +456,20 @@ def test_more_error_messages():
          r"out must be \(d, 2\) to accumulate"),
     ]
     for call, msg in cases:
-        with pytest.raises(InputError, match=msg):
+        with pytest.raises(KernelInputError, match=msg):
             call()
     X, y, w, U, s, V, b, Psi, Om = _problem("multilabel", n=20, seed=15)
-    with pytest.raises(ConfigError, match="give U, Psi or n_cols"):
+    with pytest.raises(KernelConfigError, match="give U, Psi or n_cols"):
         prepare_operands(U=None, s=None, V=None, b=b, loss="squared")
-    with pytest.raises(ConfigError, match="class weights apply to the softmax loss only"):
+    with pytest.raises(KernelConfigError, match="class weights apply to the softmax loss only"):
         prepare_operands(U=U, s=s, V=V, b=b, loss="multilabel", class_weights=np.ones(6))
-    with pytest.raises(ConfigError, match="class_weights must have 6 values"):
+    with pytest.raises(KernelConfigError, match="class_weights must have 6 values"):
         prepare_operands(U=U, s=s, V=V, b=b, loss="softmax", class_weights=np.ones(5))
-    with pytest.raises(ConfigError, match=r"U must have shape \(400, any\)"):
+    with pytest.raises(KernelConfigError, match=r"U must have shape \(400, any\)"):
         prepare_operands(U=U[:10], s=s, V=V, b=b, loss="softmax", n_cols=400)
     ops = prepare_operands(U=U, s=s, V=V, b=b, loss="multilabel", Psi=Psi, Omega=Om)
-    with pytest.raises(InputError, match="tags must be a scipy CSR matrix"):
+    with pytest.raises(KernelInputError, match="tags must be a scipy CSR matrix"):
         block_products(X, y.toarray(), w, ops, ProductBuffers.zeros(ops))
     small = prepare_operands(U=U, s=s, V=V, b=b, loss="multilabel")
-    with pytest.raises(ConfigError, match="G_VO has shape"):
+    with pytest.raises(KernelConfigError, match="G_VO has shape"):
         block_products(X, y, w, ops, ProductBuffers.zeros(small))

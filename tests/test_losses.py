@@ -12,11 +12,8 @@ import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
-from scipy.optimize import approx_fprime
-from scipy.special import expit, logsumexp, softmax
-from sklearn.metrics import log_loss
-
-from kernels.losses import (
+from ranktide.kernels.errors import KernelInputError
+from ranktide.kernels.losses import (
     exp_nonpositive_kernel,
     fold_class_weights,
     multilabel_loss_only,
@@ -26,7 +23,9 @@ from kernels.losses import (
     squared_loss_only,
     squared_residual,
 )
-from stream.errors import InputError
+from scipy.optimize import approx_fprime
+from scipy.special import expit, logsumexp, softmax
+from sklearn.metrics import log_loss
 
 
 def _data(n=200, k=5, seed=0, scale=2.0):
@@ -160,18 +159,18 @@ def test_fold_class_weights_and_bad_labels():
     np.testing.assert_allclose(fold_class_weights(y, cw), cw[y], rtol=0)
     y_bad = y.copy()
     y_bad[12] = -1
-    with pytest.raises(InputError, match=r"labels.bin: row 512 has class id -1 outside 0..4"):
+    with pytest.raises(KernelInputError, match=r"labels.bin: row 512 has class id -1 outside 0..4"):
         softmax_residual(np.zeros((200, 5)), y_bad, None, *_acc(5), row_offset=500,
                          where="labels.bin")
-    with pytest.raises(InputError, match="row 12 has class id -1"):
+    with pytest.raises(KernelInputError, match="row 12 has class id -1"):
         fold_class_weights(y_bad, cw)
-    with pytest.raises(InputError, match="class weights must be"):
+    with pytest.raises(KernelInputError, match="class weights must be"):
         fold_class_weights(y, -cw)
-    with pytest.raises(InputError, match="weights must be a 1-D float array of 200 values"):
+    with pytest.raises(KernelInputError, match="weights must be a 1-D float array of 200 values"):
         softmax_residual(np.zeros((200, 5)), y, w[:10], *_acc(5))
-    with pytest.raises(InputError, match="out_gradb must be a float64 array of shape"):
+    with pytest.raises(KernelInputError, match="out_gradb must be a float64 array of shape"):
         softmax_residual(np.zeros((200, 5)), y, None, np.zeros(1), np.zeros(4))
-    with pytest.raises(InputError, match="scores must be a 2-D float64"):
+    with pytest.raises(KernelInputError, match="scores must be a 2-D float64"):
         softmax_residual(np.zeros((200, 5), np.float32), y, None, *_acc(5))
 
 
@@ -195,7 +194,7 @@ def test_squared_closed_form_and_gradient():
                                                                np.zeros(1)), 1e-7)
     Rs = squared_residual(Zs.copy(), Ys, ws, *_acc(2))  # reference: scipy approx_fprime
     np.testing.assert_allclose(Rs.ravel(), fd, atol=1e-6)
-    with pytest.raises(InputError, match="target values must be a float array of shape"):
+    with pytest.raises(KernelInputError, match="target values must be a float array of shape"):
         squared_residual(Z.copy(), Y[:, :3], w, *_acc(5))
 
 
@@ -248,9 +247,9 @@ def test_multilabel_bad_tags():
     bad = T.indices.copy()
     bad[0] = 5
     row = int(np.searchsorted(T.indptr, 0, side="right") - 1)
-    with pytest.raises(InputError, match=rf"tags.txt: row {row} has a tag id outside 0..4"):
+    with pytest.raises(KernelInputError, match=rf"tags.txt: row {row} has a tag id outside 0..4"):
         multilabel_residual(Z.copy(), T.indptr, bad, None, *_acc(5), where="tags.txt")
-    with pytest.raises(InputError, match="tag_indptr has 200 pointers for 200 rows"):
+    with pytest.raises(KernelInputError, match="tag_indptr has 200 pointers for 200 rows"):
         multilabel_residual(Z.copy(), T.indptr[:-1], T.indices, None, *_acc(5))
 
 
@@ -274,5 +273,5 @@ def test_more_error_messages():
          "target values must be a float array"),
     ]
     for call, msg in cases:
-        with pytest.raises(InputError, match=msg):
+        with pytest.raises(KernelInputError, match=msg):
             call()

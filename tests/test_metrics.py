@@ -12,17 +12,16 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.sparse as sp
-from scipy.special import log_softmax, softmax
-from sklearn import metrics as skm
-
-from stream.errors import InputError
-from stream.metrics import (
+from ranktide.errors import InputError
+from ranktide.scoring.metrics import (
     WORST_CLASSES,
     MultilabelMetrics,
     SoftmaxMetrics,
     SquaredMetrics,
     make_metrics,
 )
+from scipy.special import log_softmax, softmax
+from sklearn import metrics as skm
 
 CUTS = (0, 7, 8, 61, 140, 200)  # uneven blocks, including a block of one row
 

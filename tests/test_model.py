@@ -7,11 +7,10 @@ import json
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from ranktide.atomic import save_npz
+from ranktide.errors import ConfigError, InputError, ModelError, OutputExistsError
+from ranktide.model import Model, load_model, save_model
 from scipy.special import expit, softmax
-
-from stream.atomic import save_npz
-from stream.errors import ConfigError, InputError, ModelError, OutputExistsError
-from stream.model import Model, load_model, save_model
 
 
 def _random_model(loss: str, *, d: int = 25, k: int = 6, r: int = 3, seed: int = 0) -> Model:

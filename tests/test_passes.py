@@ -17,12 +17,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.sparse as sp
-
-from stream import passes
-from stream.errors import ConfigError, InputError, StoreError
-from stream.memory import Plan, parse_memory, plan_blocks, total_memory
-from stream.memsource import MemorySource, as_source, split_ranges
-from stream.passes import PassProfile, phase, register_backend, run_pass
+from ranktide.errors import ConfigError, InputError, StoreError
+from ranktide.passes import engine as passes
+from ranktide.passes.budget import Plan, parse_memory, plan_blocks, total_memory
+from ranktide.passes.engine import PassProfile, phase, register_backend, run_pass
+from ranktide.store.memory_source import MemorySource, as_source, split_ranges
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -132,7 +131,7 @@ def test_errors_propagate_without_hanging(backend):
 
 @pytest.mark.parametrize("backend", ["serial", "threads"])
 def test_stop_check_abandons_the_pass_at_a_block_boundary(backend):
-    from stream.signals import StopFlag, StopRequested
+    from ranktide.signals import StopFlag, StopRequested
 
     X, y, w = _data(n=200)
     computed: list[int] = []
@@ -351,8 +350,8 @@ def test_plan_dense_gradient_and_projections_rules():
 _RSS_SCRIPT = textwrap.dedent("""
     import json, sys, time, threading
     import numpy as np, psutil, scipy.sparse as sp
-    from stream.gradient_pass import PassRequest, gradient_pass
-    from stream.memory import plan_blocks
+    from ranktide.passes.gradient import PassRequest, gradient_pass
+    from ranktide.passes.budget import plan_blocks
 
     class Generated:
         # rows generated per block from the block's seed: nothing is held whole

@@ -10,11 +10,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from ranktide.kernels.errors import KernelConfigError
+from ranktide.solver.subspace import (
+    orth_against,
+    orth_rank_revealing,
+    subspace_update,
+    top_singular_pairs,
+)
 from scipy.linalg import subspace_angles
 from scipy.sparse.linalg import svds
-
-from stream.errors import ConfigError
-from stream.power import orth_against, orth_rank_revealing, subspace_update, top_singular_pairs
 
 
 def _with_spectrum(m, n, sv, seed):
@@ -196,21 +200,21 @@ def test_subspace_update_two_sided_iteration():
     sig = _iterate_updates(G, U, V, 3, 40, seed=21)
     assert np.all(sig <= S_true * (1 + 1e-12))
     np.testing.assert_allclose(sig[-1], S_true, rtol=1e-3)
-    with pytest.raises(ConfigError, match="p_omega"):
+    with pytest.raises(KernelConfigError, match="p_omega"):
         subspace_update(U=U, V=V, G_VO=G @ V, Gt_Psi=G.T @ U[:, :1], p_psi=1, p_omega=29)
 
 
 def test_bad_arguments():
     G = np.ones((5, 4))
-    with pytest.raises(ConfigError, match="n_pairs=5 must be between 1 and min"):
+    with pytest.raises(KernelConfigError, match="n_pairs=5 must be between 1 and min"):
         top_singular_pairs(G, n_pairs=5)
-    with pytest.raises(ConfigError, match="warm_start must have 4 rows"):
+    with pytest.raises(KernelConfigError, match="warm_start must have 4 rows"):
         top_singular_pairs(G, warm_start=np.ones((3, 1)))
-    with pytest.raises(ConfigError, match="give G, or matvec, rmatvec and shape"):
+    with pytest.raises(KernelConfigError, match="give G, or matvec, rmatvec and shape"):
         top_singular_pairs(matvec=lambda x: x)
-    with pytest.raises(ConfigError, match="matvec returned shape"):
+    with pytest.raises(KernelConfigError, match="matvec returned shape"):
         top_singular_pairs(matvec=lambda x: x, rmatvec=lambda y: y, shape=(6, 4))
-    with pytest.raises(ConfigError, match="non-finite"):
+    with pytest.raises(KernelConfigError, match="non-finite"):
         top_singular_pairs(np.full((3, 3), np.nan))
 
 
@@ -226,15 +230,14 @@ def test_more_error_messages():
                                  Gt_Psi=np.ones((3, 0)), p_psi=0, p_omega=0), "disagree"),
     ]
     for call, msg in cases:
-        with pytest.raises(ConfigError, match=msg):
+        with pytest.raises(KernelConfigError, match=msg):
             call()
 
 
 def test_svd_falls_back_to_gesvd_when_gesdd_fails(monkeypatch):
     """kernels.svd: when numpy's gesdd raises, scipy's gesvd answers (scipy.linalg reference)."""
     import scipy.linalg
-
-    from kernels import svd as svd_mod
+    from ranktide.kernels import svd as svd_mod
 
     A = np.random.default_rng(0).standard_normal((30, 7))
     want = scipy.linalg.svd(A, full_matrices=False, lapack_driver="gesvd")

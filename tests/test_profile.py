@@ -14,10 +14,9 @@ import json
 import numpy as np
 import pytest
 import scipy.sparse as sp
-
-from stream.cli import main
-from stream.memsource import MemorySource
-from stream.profile import VERDICT_RULE, profile_store, verdict, write_profile
+from ranktide.cli.main import main
+from ranktide.diagnostics.profile import VERDICT_RULE, profile_store, verdict, write_profile
+from ranktide.store.memory_source import MemorySource
 
 
 def _source(n=600, d=200, k=8, seed=0, cls=MemorySource):
@@ -96,8 +95,8 @@ def test_verdict_follows_the_rule(tmp_path):
 
 
 def test_profile_with_a_model_and_threads(tmp_path):
-    from stream.model import Model, save_model
-    from stream.store import write_store
+    from ranktide.model import Model, save_model
+    from ranktide.store import write_store
 
     src, X = _source(n=300, d=50, k=5, seed=3)
     write_store(tmp_path / "s.zarr", X, src.targets).close()
@@ -113,7 +112,7 @@ def test_profile_with_a_model_and_threads(tmp_path):
 
 
 def test_cli_profile(tmp_path, capsys):
-    from stream.store import write_store
+    from ranktide.store import write_store
 
     src, X = _source(n=400, d=60, k=4, seed=5)
     write_store(tmp_path / "s.zarr", X, src.targets).close()
@@ -136,7 +135,7 @@ def test_cli_profile(tmp_path, capsys):
     (["--block-rows", "0"], "--block-rows 0"),
 ])
 def test_cli_profile_bad_options(tmp_path, capsys, argv, msg):
-    from stream.store import write_store
+    from ranktide.store import write_store
 
     src, X = _source(n=50, d=20, k=3)
     write_store(tmp_path / "s.zarr", X, src.targets).close()
@@ -146,8 +145,8 @@ def test_cli_profile_bad_options(tmp_path, capsys, argv, msg):
 
 
 def test_cli_profile_bad_model(tmp_path, capsys):
-    from stream.atomic import save_npz
-    from stream.store import write_store
+    from ranktide.atomic import save_npz
+    from ranktide.store import write_store
 
     src, X = _source(n=50, d=20, k=3)
     write_store(tmp_path / "s.zarr", X, src.targets).close()

@@ -14,19 +14,18 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from conic import orthonormal_centred_design, solve_conic, svt_numpy
-from scipy.optimize import check_grad
-from scipy.special import expit
-from scipy.special import softmax as sm
-from sklearn.metrics import log_loss
-from threadpoolctl import threadpool_limits
-
-from stream.errors import ConfigError, InputError
-from stream.reference import (
+from ranktide.errors import ConfigError, InputError
+from ranktide.solver.reference import (
     dense_gradient,
     dense_objective,
     lam_max_dense,
     reference_solve,
 )
+from scipy.optimize import check_grad
+from scipy.special import expit
+from scipy.special import softmax as sm
+from sklearn.metrics import log_loss
+from threadpoolctl import threadpool_limits
 
 LOSSES = ["softmax", "squared", "multilabel"]
 

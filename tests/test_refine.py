@@ -8,9 +8,8 @@ the solver suites check against CVXPY + Clarabel).
 from __future__ import annotations
 
 import numpy as np
-
-from kernels.dense import add_row, extrapolate
-from stream.refine import refine
+from ranktide.kernels.dense import add_row, extrapolate
+from ranktide.solver.refine import refine
 
 
 def test_fused_extrapolation_and_row_add_equal_numpy_bitwise():

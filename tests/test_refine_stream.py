@@ -1,7 +1,7 @@
 """The refinement streamed over projection blocks (memory or scratch files).
 
 Reference: CVXPY + Clarabel (tests/conic.py) on the same subproblem
-min f(A N + b) + lam ||N||_*; and the in-memory refinement of stream.refine.
+min f(A N + b) + lam ||N||_*; and the in-memory refinement of ranktide.solver.refine.
 """
 
 from __future__ import annotations
@@ -10,11 +10,10 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from conic import solve_conic
-
-from stream.errors import ConfigError
-from stream.refine import refine
-from stream.refine_stream import MemoryProjections, ScratchProjections, refine_streamed
-from stream.signals import StopFlag, StopRequested
+from ranktide.errors import ConfigError
+from ranktide.signals import StopFlag, StopRequested
+from ranktide.solver.refine import refine
+from ranktide.solver.refine_stream import MemoryProjections, ScratchProjections, refine_streamed
 
 
 def _sub(loss, seed=1, n=150, q=5, k=4):
@@ -95,9 +94,8 @@ def test_training_under_a_small_budget_streams_the_refinement(loss, tmp_path):
     from pathlib import Path
 
     sys.path.insert(0, str(Path(__file__).parent))
+    from ranktide.runs.train import train
     from test_solver_internals import _problem
-
-    from stream.train import train
 
     X, y = _problem(loss, n=300, d=20, k=4, seed=8)
     kw = {"loss": loss, "lam_frac": 0.15, "tol": 1e-7, "seed": 1, "dense_gradient": False}

@@ -28,9 +28,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.sparse as sp
-
-from stream.cli import main
-from stream.errors import ModelError
+from ranktide.cli.main import main
+from ranktide.errors import ModelError
 
 REPO = Path(__file__).resolve().parents[1]
 N_ROWS = 200
@@ -53,10 +52,10 @@ def pause(name):
 
 
 if sys.argv[1] == "train":  # the matrix-free path (power blocks, random refills)
-    import stream.train as T
+    import ranktide.runs.train as T
     T.train = functools.partial(T.train, dense_gradient=False)
 if kind == "refine":
-    import stream.solver as S
+    import ranktide.solver.greedy as S
     real_refine, calls = S.refine, [0]
 
     def refine(*a, **k):
@@ -69,7 +68,7 @@ if kind == "refine":
 if kind in ("pass", "slow"):
     # "pass": pause (until killed) in block 2 of the at-th pass; "slow": blocks 2.. of
     # the at-th pass take a second each, so a signal lands inside one of them
-    import stream.gradient_pass as G
+    import ranktide.passes.gradient as G
     real_run_pass, calls = G.run_pass, [0]
 
     def on_block(seen):
@@ -94,7 +93,7 @@ if kind in ("pass", "slow"):
 
     G.run_pass = run_pass
 if kind == "enospc":
-    import stream.checkpoint as C
+    import ranktide.runs.checkpoint as C
     real_save, calls = C.save_npz, [0]
 
     def save_npz(path, arrays):
@@ -104,7 +103,7 @@ if kind == "enospc":
         return real_save(path, arrays)
 
     C.save_npz = save_npz
-from stream.cli import main
+from ranktide.cli.main import main
 sys.exit(main(sys.argv[1:]))
 """
 
@@ -112,10 +111,9 @@ sys.exit(main(sys.argv[1:]))
 # ---------------------------------------------------------------- fixtures
 @pytest.fixture(scope="module")
 def work(tmp_path_factory):
+    from ranktide.runs.train import train
+    from ranktide.store import write_store
     from sklearn.datasets import load_digits
-
-    from stream.store import write_store
-    from stream.train import train
 
     root = tmp_path_factory.mktemp("resume")
     X, y = load_digits(return_X_y=True)  # scikit-learn's shipped digits data
@@ -175,7 +173,7 @@ def _wait(proc: subprocess.Popen, ready, what: str, timeout: float = 120.0) -> b
 
 
 def _final_model(run: Path):
-    from stream.model import load_model
+    from ranktide.model import load_model
 
     return load_model(run / "model")
 
@@ -296,11 +294,11 @@ def test_stop_inside_a_pass_or_a_refinement_restores_the_state(work, monkeypatch
     """In process: a stop request during a block (of pass 5), or during the third
     refinement, leaves the solver state as it was before that outer iteration (that is
     what is checkpointed), and resuming reaches the uninterrupted model."""
-    import stream.gradient_pass as G
-    import stream.solver as S
-    from stream.rundir import resume
-    from stream.signals import StopFlag
-    from stream.train import train
+    import ranktide.passes.gradient as G
+    import ranktide.solver.greedy as S
+    from ranktide.runs.resume import resume
+    from ranktide.runs.train import train
+    from ranktide.signals import StopFlag
 
     root, ref = work
     flag, passes, refines = StopFlag(), [0], [0]
@@ -445,7 +443,7 @@ def test_disk_full_during_checkpoint_stops_cleanly(work):
     assert "ranktide resume" in lines[0]
     assert _latest(run).name == "ckpt-00000003"  # the three written before stay valid
     assert not any(p.name.startswith(".ckpt-") for p in (run / "checkpoints").iterdir())
-    from stream.checkpoint import CheckpointManager
+    from ranktide.runs.checkpoint import CheckpointManager
 
     _arrays, meta, path = CheckpointManager(run).load_latest()  # verifies the checksums
     assert path.name == "ckpt-00000003" and meta["solver"]["passes"] == 3
@@ -455,12 +453,11 @@ def test_disk_full_during_checkpoint_stops_cleanly(work):
 def test_path_stopped_at_each_kind_of_moment_resumes_exactly(work):
     """A path run stopped (stop flag) inside the lam_max phase, inside a value and at a
     value's end resumes to the uninterrupted path: same points, same best model."""
+    from ranktide.runs.resume import resume
+    from ranktide.runs.train import train
+    from ranktide.signals import StopFlag
+    from ranktide.store import write_store
     from sklearn.datasets import load_digits
-
-    from stream.rundir import resume
-    from stream.signals import StopFlag
-    from stream.store import write_store
-    from stream.train import train
 
     root, _ref = work
     X, y = load_digits(return_X_y=True)  # rows after the training rows, for validation

@@ -1,4 +1,4 @@
-"""The greedy solver (``stream.train``) against outside references.
+"""The greedy solver (``ranktide.runs.train``) against outside references.
 
 * CVXPY + Clarabel (tests/conic.py) on small problems of every loss, with and
   without row weights, with an intercept: objective and singular values;
@@ -18,10 +18,9 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from conic import orthonormal_centred_design, solve_conic, svt_numpy
+from ranktide.runs.train import train
+from ranktide.solver.reference import dense_gradient, lam_max_dense, reference_solve
 from threadpoolctl import threadpool_limits
-
-from stream.reference import dense_gradient, lam_max_dense, reference_solve
-from stream.train import train
 
 LOSSES = ["softmax", "squared", "multilabel"]
 
@@ -248,10 +247,9 @@ def test_same_seed_same_model_and_backends_agree():
 
 
 def test_digits_path_selected_model(tmp_path):
+    from ranktide.store import write_store
     from sklearn.datasets import load_digits
     from sklearn.model_selection import train_test_split
-
-    from stream.store import write_store
 
     digits = load_digits()  # bundled with scikit-learn: 1797 x 64, 10 classes
     X = digits.data / 16.0

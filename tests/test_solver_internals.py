@@ -18,12 +18,10 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from conic import solve_conic
-from scipy.special import expit, logsumexp
-
-from stream.atomic import load_npz, save_npz
-from stream.errors import ConfigError, InputError
-from stream.refine import refine
-from stream.solver import (
+from ranktide.atomic import load_npz, save_npz
+from ranktide.errors import ConfigError, InputError
+from ranktide.runs.train import train
+from ranktide.solver.greedy import (
     GreedySolver,
     SolverConfig,
     SolverState,
@@ -32,7 +30,8 @@ from stream.solver import (
     gap_estimate,
     sigma1_lower_bound,
 )
-from stream.train import train
+from ranktide.solver.refine import refine
+from scipy.special import expit, logsumexp
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -344,7 +343,7 @@ def test_train_smoke(loss, tmp_path):
     for key in ("pass", "objective", "gap_estimate", "sigma_ratio", "rank", "seconds",
                 "bytes_read", "mb_per_s", "atoms_added"):
         assert key in last
-    from stream.model import load_model
+    from ranktide.model import load_model
 
     m = load_model(tmp_path / "run" / "model")
     np.testing.assert_array_equal(m.s, res.model.s)
@@ -377,8 +376,8 @@ def test_train_path_class_weights_and_errors(tmp_path):
 
 
 def test_cli_train_exit_codes(tmp_path, capsys):
-    from stream.cli import main
-    from stream.store import write_store
+    from ranktide.cli.main import main
+    from ranktide.store import write_store
 
     X, y = _problem("softmax", n=120, d=15, k=3, seed=12)
     store = tmp_path / "t.zarr"
@@ -400,7 +399,7 @@ def test_cli_train_exit_codes(tmp_path, capsys):
     meta = json.loads((tmp_path / "run" / "model" / "model.json").read_text())
     assert math.isfinite(meta["objective"])
     # the console entry point runs the same code (one subprocess, for the exit status)
-    done = subprocess.run([sys.executable, "-m", "stream.cli", "train", str(store), "--loss",
+    done = subprocess.run([sys.executable, "-m", "ranktide.cli", "train", str(store), "--loss",
                            "softmax", "--lam", "-1", "--out", str(tmp_path / "r3")],
                           capture_output=True, text=True, cwd=ROOT)
     assert done.returncode == 2 and "lam = -1.0" in done.stderr

@@ -11,12 +11,11 @@ import json
 import numpy as np
 import pytest
 import scipy.sparse as sp
-
-from stream.cli import main
-from stream.errors import ConfigError, OutputExistsError
-from stream.inspect import QUANTILES, hist_quantiles, inspect_store
-from stream.split import split_store
-from stream.store import open_store, write_store
+from ranktide.cli.main import main
+from ranktide.errors import ConfigError, OutputExistsError
+from ranktide.store import open_store, write_store
+from ranktide.store.inspect import QUANTILES, hist_quantiles, inspect_store
+from ranktide.store.split import split_store
 
 
 def _matrix(n=300, d=40, seed=0):

@@ -22,12 +22,11 @@ import pytest
 import scipy.sparse as sp
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-
-from stream import atomic as atomic_mod
-from stream import store_format as store_mod
-from stream.checksums import SegmentHasher, segment_checksum
-from stream.errors import ConfigError, InputError, OutputExistsError, StoreError
-from stream.store import create_store, open_store, write_store
+from ranktide import atomic as atomic_mod
+from ranktide.errors import ConfigError, InputError, OutputExistsError, StoreError
+from ranktide.store import create_store, open_store, write_store
+from ranktide.store import format as store_mod
+from ranktide.store.checksums import SegmentHasher, segment_checksum
 
 # The conformance class runs its property test once per backend subclass; each
 # subclass only fixes ``backend``, so running it from two executors is intended.
@@ -256,8 +255,8 @@ class StoreContract:
     @pytest.mark.parametrize("codec", ["zstd", "lz4", "none"])
     def test_threaded_decoding_path(self, tmp_path, codec):
         # force the thread-pool decoding path (normally for reads >= 1 MiB)
-        import stream._store_hdf5 as h5mod
-        import stream._store_zarr as zmod
+        import ranktide.store._hdf5 as h5mod
+        import ranktide.store._zarr as zmod
 
         rng = np.random.default_rng(13)
         X = random_csr(rng, 120, 40, 0.3)

@@ -3,7 +3,7 @@
 Each command runs in a subprocess on small generated stores and models.
 References: scikit-learn's metrics (accuracy_score, top_k_accuracy_score,
 log_loss, f1_score, mean_squared_error, r2_score) on the whole score matrix,
-the API (`stream.evaluate.evaluate`, `Model.top_k`, `Model.predict_proba`),
+the API (`ranktide.scoring.evaluate.evaluate`, `Model.top_k`, `Model.predict_proba`),
 and the PNG file signature (ISO/IEC 15948 / RFC 2083: the 8 bytes
 89 50 4E 47 0D 0A 1A 0A).
 """
@@ -21,13 +21,12 @@ from typing import Any
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from ranktide.cli import main as cli
+from ranktide.model import Model, load_model, save_model
+from ranktide.scoring.evaluate import evaluate
+from ranktide.store import write_store
 from scipy.special import softmax
 from sklearn import metrics as skm
-
-from stream import cli
-from stream.evaluate import evaluate
-from stream.model import Model, load_model, save_model
-from stream.store import write_store
 
 REPO = Path(__file__).resolve().parents[1]
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # RFC 2083, section 3.1
@@ -38,14 +37,14 @@ def subprocess_ranktide(*args: Any, timeout: float = 300) -> subprocess.Complete
     """Run ``ranktide ARGS`` as a separate process (the real entry point)."""
     env = dict(os.environ, PYTHONPATH=str(REPO))
     return subprocess.run(
-        [sys.executable, "-m", "stream.cli", *map(str, args)],
+        [sys.executable, "-m", "ranktide.cli", *map(str, args)],
         capture_output=True, text=True, cwd=REPO, env=env, timeout=timeout,
     )
 
 
 @pytest.fixture
 def ranktide(capsys):
-    """Run ``ranktide ARGS`` in this process through ``stream.cli.main``.
+    """Run ``ranktide ARGS`` in this process through ``ranktide.cli.main.main``.
 
     Most checks use this (a fresh interpreter per call would cost ~1-2 s of
     imports each); the subprocess tests cover the real entry point.
@@ -284,7 +283,7 @@ def _fake_run(run: Path, model: Model) -> None:
 
 
 def test_report_writes_pngs_and_html(tmp_path):
-    from stream.profile import profile_store, write_profile
+    from ranktide.diagnostics.profile import profile_store, write_profile
 
     run = tmp_path / "run"
     model = _model("softmax")
@@ -350,7 +349,7 @@ def test_demo_small_end_to_end(tmp_path):
         assert (out / "run" / "report" / png).read_bytes()[:8] == PNG_MAGIC
         assert f'src="{png}"' in html
     # an earlier demo (it has demo.json) is cleared for the next run, a foreign directory is not
-    from stream.demo import _prepare_out
+    from ranktide.cli.demo_workflow import _prepare_out
 
     _prepare_out(out, overwrite=False)
     assert out.is_dir() and not any(out.iterdir())

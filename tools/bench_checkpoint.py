@@ -4,13 +4,13 @@ Generates an invented softmax problem (fictional warehouse pick lists: rows of
 hashed item ids, each routed to one of ``k`` packing stations by a hidden
 low-rank rule), writes it as a zarr store, and trains it in the same run:
 
-* ``no run dir``: :func:`stream.train.train` without ``out`` (no checkpoints,
+* ``no run dir``: :func:`ranktide.runs.train.train` without ``out`` (no checkpoints,
   the baseline);
 * ``default cadence``: with a run directory at the default cadence (every 60 s
   of training, and at the end);
 * ``every pass``: a checkpoint after every pass (the worst case).
 
-Every :meth:`stream.checkpoint.CheckpointManager.save` is timed. Reported:
+Every :meth:`ranktide.runs.checkpoint.CheckpointManager.save` is timed. Reported:
 checkpoint seconds as a share of training seconds for each scenario, the mean
 seconds per checkpoint and its projection at the default cadence
 (``mean write / 60 s``, the steady-state share on a long run). Target (issue
@@ -39,10 +39,10 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from stream.atomic import atomic_write_json  # noqa: E402
-from stream.checkpoint import CheckpointManager  # noqa: E402
-from stream.store import write_store  # noqa: E402
-from stream.train import train  # noqa: E402
+from ranktide.atomic import atomic_write_json  # noqa: E402
+from ranktide.runs.checkpoint import CheckpointManager  # noqa: E402
+from ranktide.runs.train import train  # noqa: E402
+from ranktide.store import write_store  # noqa: E402
 
 DEFAULT_SECONDS = 60.0
 

@@ -31,10 +31,9 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from bench_store import make_matrix  # noqa: E402
-
-from stream.cluster import cluster_client  # noqa: E402
-from stream.gradient_pass import PassRequest, gradient_pass  # noqa: E402
-from stream.store import open_store, write_store  # noqa: E402
+from ranktide.passes.dask_backend import cluster_client  # noqa: E402
+from ranktide.passes.gradient import PassRequest, gradient_pass  # noqa: E402
+from ranktide.store import open_store, write_store  # noqa: E402
 
 K = 200
 RANK = 16

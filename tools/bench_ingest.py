@@ -36,7 +36,7 @@ def _hwm_kib():
     with open("/proc/self/status") as fh:
         return int([x for x in fh if x.startswith("VmHWM")][0].split()[1])
 if sys.argv[4] == "ingest":
-    from stream.ingest import ingest
+    from ranktide.ingest.build import ingest
     t, c = time.perf_counter(), time.process_time()
     s = ingest(sys.argv[1], sys.argv[2], memory=sys.argv[3], overwrite=True)
     n, extra = s.entries_read, {"sorted": s.sorted_input, "buckets": s.buckets}

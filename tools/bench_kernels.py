@@ -37,9 +37,9 @@ from numba import njit, prange
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from kernels.csc import block_csc, csc_matmul_dense, csc_t_matmul_accumulate  # noqa: E402
-from kernels.sparse import csr_matmul_dense, csr_t_matmul_accumulate  # noqa: E402
-from stream.atomic import atomic_write_json  # noqa: E402
+from ranktide.atomic import atomic_write_json  # noqa: E402
+from ranktide.kernels.csc import block_csc, csc_matmul_dense, csc_t_matmul_accumulate  # noqa: E402
+from ranktide.kernels.sparse import csr_matmul_dense, csr_t_matmul_accumulate  # noqa: E402
 
 
 @njit(nogil=True, cache=True, parallel=True)

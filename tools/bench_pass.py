@@ -6,7 +6,7 @@ fictional support tickets routed to one of ``k`` teams (default 200k rows x
 default codec. At rank 16 with 8 power and 8 expansion columns it times, in
 the same run:
 
-* ``pass``: :func:`stream.gradient_pass.gradient_pass` over the store (our
+* ``pass``: :func:`ranktide.passes.gradient.gradient_pass` over the store (our
   kernels and engine; serial backend with read-ahead, and the threads backend);
 * ``floor``: the read-only floor — reading and decoding every block, nothing
   else;
@@ -45,10 +45,10 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from stream.atomic import atomic_write_json  # noqa: E402
-from stream.gradient_pass import PassRequest, gradient_pass  # noqa: E402
-from stream.memsource import MemorySource  # noqa: E402
-from stream.store import create_store, open_store  # noqa: E402
+from ranktide.atomic import atomic_write_json  # noqa: E402
+from ranktide.passes.gradient import PassRequest, gradient_pass  # noqa: E402
+from ranktide.store import create_store, open_store  # noqa: E402
+from ranktide.store.memory_source import MemorySource  # noqa: E402
 
 RANK, POWER = 16, 8
 

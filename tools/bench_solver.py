@@ -97,14 +97,14 @@ def make_problem(*, n: int, d: int, k: int, nnz_row: int, rank: int, seed: int):
 
 
 def save_problem(path: Path, X: sp.csr_matrix, y: np.ndarray) -> None:
-    from stream.atomic import save_npz
+    from ranktide.atomic import save_npz
 
     save_npz(path, {"indptr": X.indptr.astype(np.int64), "indices": X.indices,
                     "data": X.data, "shape": np.array(X.shape), "y": y})
 
 
 def load_problem(path: Path):
-    from stream.atomic import load_npz
+    from ranktide.atomic import load_npz
 
     z = load_npz(path)
     X = sp.csr_matrix((z["data"], z["indices"], z["indptr"]), shape=tuple(z["shape"]))
@@ -140,7 +140,7 @@ def _tiny_problem():
 
 
 def child_greedy(args) -> dict:
-    from stream.train import train
+    from ranktide.runs.train import train
 
     X, y = load_problem(Path(args.data))
     base = _rss()
@@ -181,7 +181,7 @@ def child_greedy(args) -> dict:
 
 
 def child_reference(args) -> dict:
-    from stream.reference import reference_solve
+    from ranktide.solver.reference import reference_solve
 
     X, y = load_problem(Path(args.data))
     base = _rss()
@@ -207,7 +207,7 @@ def child_reference(args) -> dict:
 
 
 def child_lam_max(args) -> dict:
-    from stream.reference import lam_max_dense
+    from ranktide.solver.reference import lam_max_dense
 
     X, y = load_problem(Path(args.data))
     return {"lam_max": lam_max_dense(X, y, "softmax")}
@@ -451,7 +451,7 @@ def main(argv=None) -> int:
                        **results}
         # the reference goes last: summarize() compares every other run with it
         results = {k: results[k] for k in sorted(results, key=lambda k: k == "reference")}
-        from stream.atomic import atomic_write_json
+        from ranktide.atomic import atomic_write_json
 
         atomic_write_json(saved, {"results": results, "lam": lam, "lam_max": lam_max,
                                   "shape": shape})
@@ -474,7 +474,7 @@ def main(argv=None) -> int:
     print_table(rows, ratios, meta)
     doc = {"benchmark": "bench_solver", "meta": meta, "rows": rows, "ratios": ratios,
            "histories": {name: res["history"] for name, res in results.items()}}
-    from stream.atomic import atomic_write_json
+    from ranktide.atomic import atomic_write_json
 
     atomic_write_json(args.out / "bench_solver.json", doc)
     print(f"wrote {args.out / 'bench_solver.json'}")

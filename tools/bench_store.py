@@ -17,7 +17,7 @@ at >= 50% of the raw floor.
 
 ``--sweep-zstd`` also measures zstd variants (levels; plain zstd vs blosc zstd
 with byte or bit shuffle) on the zarr backend, the measurement that picks the
-form and level used by codec ``"zstd"`` (see ``stream.store.ZSTD_LEVEL``).
+form and level used by codec ``"zstd"`` (see ``ranktide.store.ZSTD_LEVEL``).
 
 If ``tools/bench_ingest.py`` exists and defines ``run(out_dir) -> dict``, it is
 called and its figures are merged under ``"ingest"``.
@@ -49,9 +49,9 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from stream import store as store_mod  # noqa: E402
-from stream.atomic import atomic_write_json  # noqa: E402
-from stream.store_format import DEFAULT_CODEC  # noqa: E402
+from ranktide import store as store_mod  # noqa: E402
+from ranktide.atomic import atomic_write_json  # noqa: E402
+from ranktide.store.format import DEFAULT_CODEC  # noqa: E402
 
 RAW_NAMES = ("indptr", "indices", "data", "classes")
 
@@ -280,9 +280,8 @@ def zstd_sweep_configs(work: Path, X, y) -> list[dict[str, Any]]:
     """zarr stores written with zstd variants (monkeypatching the codec table)."""
     from unittest import mock
 
+    import ranktide.store._zarr as zmod
     from zarr.codecs import BloscCodec, ZstdCodec
-
-    import stream._store_zarr as zmod
 
     variants = {
         "zstd level -1": [ZstdCodec(level=-1)],

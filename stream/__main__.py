@@ -1,0 +1,7 @@
+"""`python -m ranktide`: the command line."""
+
+import sys
+
+from ranktide.cli.main import main
+
+sys.exit(main())

@@ -1,0 +1,1 @@
+"""The command line: `main`, one module per subcommand, and the demo workflow."""

@@ -1,0 +1,63 @@
+"""``ranktide profile``: time the phases of solver-style passes over a store."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
+
+HELP = "Profile solver-style passes over a store: I/O vs compute per block and phase"
+EXAMPLE = "ranktide profile data.zarr --passes 3 --rank 16 --out prof"
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("store", metavar="STORE", help="store directory (zarr) or file (HDF5)")
+    parser.add_argument("--model", metavar="MODEL_DIR", default=None,
+                        help="model directory (factors.npz + model.json); default: W = 0 with "
+                             "the best intercept and random factors of rank --rank")
+    parser.add_argument("--passes", type=int, default=3, metavar="N",
+                        help="profiled passes (default 3)")
+    parser.add_argument("--rank", type=int, default=16, metavar="R",
+                        help="rank of the random factors without --model (default 16)")
+    parser.add_argument("--out", metavar="DIR", default=None,
+                        help="write profile.csv, profile.json and profile.png here")
+    parser.add_argument("--memory", metavar="SIZE", default=None,
+                        help="memory budget that sizes the blocks, e.g. 4GB (default: a "
+                             "quarter of RAM)")
+    parser.add_argument("--block-rows", type=int, default=None, metavar="N",
+                        help="rows per block (default: planned from --memory)")
+    parser.add_argument("--backend", choices=("serial", "threads"), default="serial",
+                        help="pass backend (default serial)")
+    parser.add_argument("--threads", type=int, default=None, metavar="N",
+                        help="compute threads of the threads backend")
+    parser.add_argument("--seed", type=int, default=0, help="seed of the random factors")
+    add_cluster_option(parser)
+    parser.add_argument("--quiet", action="store_true", help="no progress bar, no table")
+    parser.add_argument("--json", action="store_true",
+                        help="print the summary as JSON instead of the table")
+
+
+def run(args: argparse.Namespace) -> int:
+    from ranktide.diagnostics.profile import format_report, jsonable, profile_store, write_profile
+    from ranktide.errors import ConfigError
+    from ranktide.passes.budget import parse_memory
+
+    if args.block_rows is not None and args.block_rows < 1:
+        raise ConfigError(f"--block-rows {args.block_rows}: must be at least 1")
+    budget = parse_memory(args.memory) if args.memory is not None else None
+    with cluster_backend(args) as backend:
+        report = profile_store(
+            args.store, model=args.model, passes=args.passes, rank=args.rank,
+            backend=backend, block_rows=args.block_rows, memory=budget,
+            n_threads=args.threads, seed=args.seed, progress=not args.quiet,
+        )
+    paths = write_profile(report, args.out) if args.out else {}
+    if args.json:
+        print(json.dumps(jsonable(report.summary), indent=2, sort_keys=True))
+    elif not args.quiet:
+        print(format_report(report.summary))
+        for p in paths.values():
+            print(f"wrote {p}", file=sys.stderr)
+    return 0

@@ -1,1 +1,0 @@
-"""One module per ``ranktide`` subcommand (see :mod:`stream.cli`)."""

@@ -1,0 +1,220 @@
+"""Resume: load a run's latest valid checkpoint, check it may continue, and train on.
+
+A resumed run ends with the same model as an uninterrupted one with the same
+settings: everything the next pass depends on is in the checkpoint.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from ranktide.errors import CheckpointError, ConfigError
+from ranktide.runs.checkpoint import CheckpointSchedule
+from ranktide.runs.rundir import RESUME_MUTABLE, RunDir, RunRecorder, check_resume_compatible
+from ranktide.runs.train import train
+from ranktide.signals import StopFlag
+from ranktide.solver.greedy import SolverState
+from ranktide.store import open_store
+
+
+@dataclass
+class ResumePoint:
+    """A run restored from its latest valid checkpoint, ready for :func:`ranktide.runs.train.train`.
+
+    Attributes
+    ----------
+    run : RunDir
+    state : ranktide.solver.greedy.SolverState
+    context : dict
+        The trainer's checkpoint context (planner decisions, path position).
+    context_arrays : dict of str to ndarray
+        The trainer's arrays (the best model so far on a path).
+    checkpoint : Path
+        The checkpoint directory it came from.
+    """
+
+    run: RunDir
+    state: Any
+    context: dict[str, Any]
+    context_arrays: dict[str, np.ndarray]
+    checkpoint: Path
+
+    def solver_config(self, cfg: Any) -> Any:
+        """``cfg`` with the planner's saved decisions (block rows, dense gradient) forced.
+
+        The planner sizes blocks from the rank at start-up; a resumed run must
+        read the same blocks as the uninterrupted one (sums in the same order).
+        """
+        plan = self.context.get("plan") or {}
+        changes: dict[str, Any] = {}
+        if cfg.block_rows is None and cfg.block_bytes is None and plan.get("block_rows"):
+            changes["block_rows"] = int(plan["block_rows"])
+        if cfg.dense_gradient is None and plan.get("dense_gradient") is not None:
+            changes["dense_gradient"] = bool(plan["dense_gradient"])
+        return replace(cfg, **changes) if changes else cfg
+
+
+def load_resume_point(
+    run_dir: str | os.PathLike,
+    *,
+    fingerprint: str,
+    changes: Mapping[str, Any],
+) -> ResumePoint:
+    """Load the latest valid checkpoint of a run and check that it may continue.
+
+    Parameters
+    ----------
+    run_dir : path
+    fingerprint : str
+        The fingerprint of the store the resumed run reads.
+    changes : mapping
+        New values of resume-mutable settings (budgets, tolerance, cadence).
+
+    Raises
+    ------
+    CheckpointError
+        No valid checkpoint, a newer format, another store, changed settings
+        (each key named), or a ``config.json`` edited since the checkpoint.
+    """
+    run = RunDir.open(run_dir)
+    bad = sorted(set(changes) - RESUME_MUTABLE)
+    if bad:
+        raise CheckpointError(
+            f"{run.path}: {', '.join(bad)} cannot change on resume; only "
+            f"{', '.join(sorted(RESUME_MUTABLE))} may (start a new run otherwise)"
+        )
+    arrays, meta, path = run.checkpoints.load_latest()
+    # config.json must still say what the checkpoint was written under
+    at_checkpoint = dict(run.config, settings=meta.get("settings") or {})
+    check_resume_compatible(at_checkpoint, run.settings, run.fingerprint or "", run=run.path)
+    new_settings = dict(run.settings, **dict(changes))
+    check_resume_compatible(run.config, new_settings, fingerprint, run=run.path)
+    solver_arrays, ctx_arrays = RunRecorder.split(arrays)
+    state = SolverState.from_checkpoint(solver_arrays, meta.get("solver") or {})
+    old_tol, new_tol = run.settings.get("tol"), changes.get("tol")
+    if state.phase == "done" and new_tol is not None and old_tol is not None and new_tol < old_tol:
+        # a converged fit continues when the tolerance is tightened
+        state.phase, state.status, state.cert_passes = "fit", "running", 0
+    run.truncate_history(int(meta.get("history_len", 0)))
+    if changes:
+        run.update_settings(changes)
+    return ResumePoint(
+        run=run,
+        state=state,
+        context=dict(meta.get("context") or {}),
+        context_arrays=ctx_arrays,
+        checkpoint=path,
+    )
+
+
+def _resume_backend(saved: str) -> str:
+    """The saved backend, or ``"serial"`` for one that needs a cluster session."""
+    return "serial" if saved == "dask" else saved
+
+
+def _check_changes(changes: Mapping[str, Any]) -> None:
+    """Validate new budgets and cadence before anything in the run is touched."""
+    tol = changes.get("tol")
+    if tol is not None and not (0 < tol < 1):
+        raise ConfigError(f"--tol {tol}: must lie in (0, 1)")
+    passes = changes.get("max_passes")
+    if passes is not None and int(passes) < 1:
+        raise ConfigError(f"--max-passes {passes}: must be >= 1")
+    secs = changes.get("max_seconds")
+    if secs is not None and not secs > 0:
+        raise ConfigError(f"--max-seconds {secs}: must be > 0")
+    CheckpointSchedule(
+        seconds=changes.get("checkpoint_seconds", 60.0), passes=changes.get("checkpoint_passes")
+    )
+
+
+def resume(
+    run_dir: str | os.PathLike,
+    *,
+    store: str | os.PathLike | None = None,
+    max_passes: int | None = None,
+    max_seconds: float | None = None,
+    tol: float | None = None,
+    checkpoint_seconds: float | None = None,
+    checkpoint_passes: int | None = None,
+    backend: str | None = None,
+    stop: StopFlag | None = None,
+    callback: Callable[[dict], Any] | None = None,
+    on_pass: Callable[[dict], None] | None = None,
+    progress: bool = False,
+) -> Any:
+    """Continue an interrupted (or finished) run from its latest valid checkpoint.
+
+    The run ends with the same model as an uninterrupted run with the same
+    settings: everything the next pass depends on is in the checkpoint.
+
+    Parameters
+    ----------
+    run_dir : path
+        The run directory written by ``train(..., out=run_dir)``.
+    store : path, optional
+        The training store, when it has moved (its fingerprint must match).
+    max_passes, max_seconds, tol, checkpoint_seconds, checkpoint_passes : optional
+        New budgets, tolerance and checkpoint cadence (the saved ones otherwise).
+    backend : str, optional
+        Pass backend for the rest of the run (results agree across backends to
+        rounding); by default the saved one, except that a run trained on a
+        cluster resumes on ``"serial"`` unless a backend is given.
+    stop, callback, on_pass, progress
+        As in :func:`ranktide.runs.train.train`.
+
+    Returns
+    -------
+    ranktide.runs.train.TrainResult
+    """
+    run = RunDir.open(run_dir)
+    where = store if store is not None else run.store_path
+    if where is None:
+        raise CheckpointError(
+            f"{run.path}: the run was trained on in-memory data; pass the store to resume on"
+        )
+    given = {
+        "max_passes": max_passes,
+        "max_seconds": max_seconds,
+        "tol": tol,
+        "checkpoint_seconds": checkpoint_seconds,
+        "checkpoint_passes": checkpoint_passes,
+    }
+    changes = {k: v for k, v in given.items() if v is not None}
+    _check_changes(changes)
+    with open_store(where) as src:
+        point = load_resume_point(run.path, fingerprint=src.fingerprint, changes=changes)
+        s = point.run.settings
+        cw = s.get("class_weights")
+        return train(
+            src,
+            loss=s["loss"],
+            lam=s.get("lam"),
+            lam_frac=s.get("lam_frac"),
+            path=s.get("path"),
+            path_min_frac=s.get("path_min_frac", 0.01),
+            valid=s.get("valid"),
+            tol=s["tol"],
+            max_passes=s["max_passes"],
+            max_seconds=s.get("max_seconds"),
+            memory=s.get("memory"),
+            seed=s["seed"],
+            block_rows=s.get("block_rows"),
+            backend=backend or _resume_backend(s.get("backend", "serial")),
+            class_weight=None if cw is None else np.asarray(cw, dtype=np.float64),
+            callback=callback,
+            progress=progress,
+            on_pass=on_pass,
+            dense_gradient=s.get("dense_gradient"),
+            power_size=s.get("power_size", 6),
+            expand_size=s.get("expand_size", 6),
+            checkpoint_seconds=s.get("checkpoint_seconds", 60.0),
+            checkpoint_passes=s.get("checkpoint_passes"),
+            stop=stop,
+            resume_point=point,
+        )

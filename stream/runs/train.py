@@ -1,0 +1,690 @@
+"""``train()``: fit a trace-norm regularized model, one lam or a regularization path.
+
+The Python face of ``ranktide train``. It validates the settings, builds a
+:class:`ranktide.solver.greedy.GreedySolver`, runs it for one ``lam`` (given, or a
+fraction of ``lam_max``) or along a path ``lam_j = lam_max * ratio^(j/(m-1))``
+with warm starts and validation metrics at each value, and writes the run
+directory (``config.json``, ``history.jsonl``, ``model/``) when asked.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import os
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from ranktide.errors import ConfigError, InputError
+from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverResult, _jsonable
+
+__all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDATION_METRIC"]
+
+#: validation metric per loss: (key in the metrics dict, True when higher is better)
+VALIDATION_METRIC: dict[str, tuple[str, bool]] = {
+    "softmax": ("accuracy", True),
+    "squared": ("rmse", False),
+    "multilabel": ("micro_f1", True),
+}
+
+
+@dataclass(frozen=True)
+class PathPoint:
+    """One value of a regularization path.
+
+    Attributes
+    ----------
+    index : int
+    lam : float
+    objective, gap, sigma_ratio : float
+        At the end of this value's fit (gap and sigma_ratio are estimates).
+    rank, passes : int
+        ``passes`` counts the passes spent on this value.
+    status : str
+    metrics : dict
+        Validation metrics (see :mod:`ranktide.scoring.metrics`).
+    score : float
+        The validation metric that picks the best lam (see :data:`VALIDATION_METRIC`).
+    """
+
+    index: int
+    lam: float
+    objective: float
+    gap: float
+    sigma_ratio: float
+    rank: int
+    passes: int
+    status: str
+    metrics: dict
+    score: float
+
+
+@dataclass(frozen=True)
+class TrainResult:
+    """Outcome of :func:`train`.
+
+    Attributes
+    ----------
+    model : ranktide.model.Model
+        The fitted model (on a path: the best lam's); None when a path was
+        interrupted inside its first value.
+    objective : float
+        ``F(W, b)`` of the model.
+    gap : float
+        Gap estimate of the model (DESIGN section 2; an estimate, since
+        ``sigma_1`` comes from power iteration).
+    sigma_ratio : float
+        ``sigma_1 / lam`` (<= 1 + tol at convergence).
+    rank, passes : int
+    seconds : float
+    status : str
+        ``converged``, ``max_passes``, ``max_seconds``, ``callback`` or ``path_early_stop``.
+    message : str
+    history : list of dict
+        One record per pass (``pass``, ``objective``, ``gap_estimate``,
+        ``sigma_ratio``, ``rank``, ``seconds``, ``bytes_read``, ``mb_per_s``,
+        ``atoms_added``, ...).
+    lam, lam_max : float
+    path : list of PathPoint
+        Empty without a path.
+    best_index : int or None
+        Index of the best lam on the path.
+    run_dir : str or None
+    grad_b_norm : float
+        ``||grad_b f||_inf`` beside the gap (the bound assumes it is 0).
+    """
+
+    model: Any
+    objective: float
+    gap: float
+    sigma_ratio: float
+    rank: int
+    passes: int
+    seconds: float
+    status: str
+    message: str
+    history: list = field(default_factory=list)
+    lam: float = math.nan
+    lam_max: float | None = None
+    path: list = field(default_factory=list)
+    best_index: int | None = None
+    run_dir: str | None = None
+    grad_b_norm: float = math.nan
+
+
+# ---------------------------------------------------------------- inputs
+
+
+def _validate(*, loss, lam, lam_frac, path, path_min_frac, valid, tol, max_passes,
+              max_seconds, class_weight) -> None:
+    from ranktide.losses import get_loss
+
+    get_loss(loss)
+    given = [name for name, v in (("lam", lam), ("lam_frac", lam_frac), ("path", path))
+             if v is not None]
+    if len(given) != 1:
+        raise ConfigError("train: give exactly one of lam, lam_frac and path "
+                          f"(got {', '.join(given) or 'none'})")
+    if lam is not None and not (isinstance(lam, (int, float)) and math.isfinite(lam) and lam > 0):
+        raise ConfigError(f"train: lam = {lam!r}; give a positive number")
+    if lam_frac is not None and not (math.isfinite(lam_frac) and 0 < lam_frac):
+        raise ConfigError(f"train: lam_frac = {lam_frac!r}; give a positive fraction of lam_max")
+    if path is not None:
+        if isinstance(path, bool) or int(path) != path or int(path) < 2:
+            raise ConfigError(f"train: path = {path!r}; give the number of lam values (>= 2)")
+        if valid is None:
+            raise ConfigError("train: a regularization path needs validation data; "
+                              "pass valid= (--valid STORE)")
+        if not (0 < path_min_frac < 1):
+            raise ConfigError(f"train: path_min_frac = {path_min_frac!r}; it must lie in (0, 1)")
+    if not (0 < tol < 1):
+        raise ConfigError(f"train: tol = {tol!r}; it must lie in (0, 1)")
+    if int(max_passes) < 1:
+        raise ConfigError(f"train: max_passes = {max_passes!r}; it must be >= 1")
+    if max_seconds is not None and not max_seconds > 0:
+        raise ConfigError(f"train: max_seconds = {max_seconds!r}; it must be positive")
+    if class_weight is not None and loss != "softmax":
+        raise ConfigError(f"train: class weights apply to the softmax loss only, not {loss!r}; "
+                          "drop --class-weight")
+
+
+def _count_block(block: Any, k: int) -> np.ndarray:
+    return np.bincount(np.asarray(block.targets, dtype=np.int64), minlength=k).astype(np.float64)
+
+
+def _sum_combine(parts: list) -> np.ndarray:
+    acc = parts[0]
+    for p in parts[1:]:
+        acc = acc + p
+    return acc
+
+
+def resolve_class_weights(class_weight: Any, src: Any, *, backend: str = "serial",
+                          block_rows: int | None = None) -> np.ndarray | None:
+    """Class weights (k,) from ``"balanced"``, a file (.npy or text) or an array.
+
+    ``"balanced"`` gives ``n / (k * count_c)`` (counted in one pass over the
+    targets; a class with no rows gets weight 0).
+    """
+    if class_weight is None:
+        return None
+    k = int(src.n_outputs)
+    where = "class weights"
+    if isinstance(class_weight, str) and class_weight == "balanced":
+        from ranktide.passes.engine import run_pass
+
+        counts = run_pass(src, _count_block, _sum_combine, state=k, block_rows=block_rows,
+                          backend=backend, desc="class counts")
+        n = float(counts.sum())
+        cw = np.zeros(k)
+        seen = counts > 0
+        cw[seen] = n / (k * counts[seen])
+        return cw
+    if isinstance(class_weight, (str, os.PathLike)):
+        p = Path(class_weight)
+        where = str(p)
+        if not p.is_file():
+            raise InputError(f"{p}: class weight file not found; give 'balanced' or a file "
+                             f"with {k} numbers")
+        try:
+            if p.suffix == ".npy":
+                cw = np.load(p, allow_pickle=False)
+            else:
+                cw = np.loadtxt(p, dtype=np.float64, ndmin=1)
+        except (ValueError, OSError) as exc:
+            raise InputError(f"{p}: not readable as {k} class weights ({exc}); write one "
+                             "number per class") from None
+    else:
+        cw = class_weight
+    cw = np.asarray(cw, dtype=np.float64).reshape(-1)
+    if cw.shape != (k,):
+        raise InputError(f"{where}: {cw.size} class weights for {k} classes; give one per class")
+    bad = np.flatnonzero(~np.isfinite(cw) | (cw < 0))
+    if bad.size:
+        raise InputError(f"{where}: entry {int(bad[0])} is {cw[bad[0]]!r}; class weights must "
+                         "be finite and >= 0")
+    if not np.any(cw > 0):
+        raise InputError(f"{where}: every class weight is 0; give some class a positive weight")
+    return cw
+
+
+def _fingerprint(src: Any) -> str:
+    fp = getattr(src, "fingerprint", None)
+    if fp:
+        return str(fp)
+    # in-memory data: a digest of its block contents (small enough to be in memory)
+    h = hashlib.sha256()
+    for a, b in src.block_ranges():
+        blk = src.read_block(a, b)
+        for arr in (blk.X.indptr, blk.X.indices, blk.X.data):
+            h.update(np.ascontiguousarray(arr).tobytes())
+        t = blk.targets
+        if t is not None:
+            parts = (t.indptr, t.indices) if hasattr(t, "indptr") else (np.asarray(t),)
+            for arr in parts:
+                h.update(np.ascontiguousarray(arr).tobytes())
+        if blk.weights is not None:
+            h.update(np.ascontiguousarray(blk.weights).tobytes())
+    return "mem-" + h.hexdigest()[:32]
+
+
+# ---------------------------------------------------------------- model and metrics
+
+
+def _model(src: Any, loss: str, fit: SolverResult, meta: dict) -> Any:
+    from ranktide.model import Model
+
+    names = getattr(src, "output_names", None)
+    return Model(U=fit.U, s=fit.s, V=fit.V, b=fit.b, loss=loss,
+                 names=list(names) if names else None, meta=meta)
+
+
+def _fit_meta(fit: SolverResult, fingerprint: str, grad_b: float) -> dict:
+    return _jsonable({
+        "lam": fit.lam, "lam_max": fit.lam_max, "lam_max_settled": fit.lam_max_settled,
+        "store_fingerprint": fingerprint,
+        "objective": fit.objective, "gap": fit.gap, "gap_is_estimate": True,
+        "rel_gap": fit.rel_gap, "sigma_ratio": fit.sigma_ratio, "grad_b_norm": grad_b,
+        "passes": fit.passes, "seconds": fit.seconds, "status": fit.status,
+    })
+
+
+def _validation(model: Any, valid: Any, loss: str, block_rows: int | None) -> tuple[dict, float]:
+    from ranktide.scoring.evaluate import evaluate
+
+    metrics = evaluate(model, valid, block_rows=block_rows)
+    key, _ = VALIDATION_METRIC[loss]
+    return metrics, float(metrics[key])
+
+
+# ---------------------------------------------------------------- the run
+
+
+class _Recorder:
+    """Per-pass hook: keeps the history, appends it to the run dir, calls the user callback."""
+
+    def __init__(self, run: Any, callback: Callable | None, printer: Callable | None,
+                 hook: Callable[[], bool] | None = None) -> None:
+        self.run = run
+        self.callback = callback
+        self.printer = printer
+        self.hook = hook  # checkpoint cadence / stop flag (ranktide.runs.rundir.RunRecorder)
+        self.history: list[dict] = []
+
+    def record(self, rec: dict) -> None:
+        line = _jsonable(dict(rec, kind="pass"))
+        self.history.append(line)
+        if self.run is not None:
+            self.run.append_history(line)
+
+    def __call__(self, rec: dict) -> Any:
+        self.record(rec)
+        if self.printer is not None:
+            self.printer(rec)
+        if self.hook is not None and self.hook():
+            return True
+        if self.callback is not None:
+            return self.callback(rec)
+        return None
+
+    def event(self, rec: dict) -> None:
+        if self.run is not None:
+            self.run.append_history(_jsonable(rec))
+
+
+def train(
+    source: Any,
+    *,
+    loss: str,
+    lam: float | None = None,
+    lam_frac: float | None = None,
+    path: int | None = None,
+    path_min_frac: float = 0.01,
+    valid: Any = None,
+    tol: float = 1e-4,
+    max_passes: int = 100,
+    max_seconds: float | None = None,
+    memory: int | str | None = None,
+    seed: int = 0,
+    block_rows: int | None = None,
+    backend: str = "serial",
+    class_weight: Any = None,
+    callback: Callable[[dict], Any] | None = None,
+    progress: bool = False,
+    out: str | os.PathLike | None = None,
+    overwrite: bool = False,
+    targets: Any = None,
+    weights: Any = None,
+    dense_gradient: bool | None = None,
+    power_size: int = 6,
+    expand_size: int = 6,
+    on_pass: Callable[[dict], None] | None = None,
+    checkpoint_seconds: float | None = 60.0,
+    checkpoint_passes: int | None = None,
+    stop: Any = None,
+    resume_point: Any = None,
+) -> TrainResult:
+    """Fit ``min f(W, b) + lam ||W||_*`` on ``source`` with the greedy low-rank solver.
+
+    Parameters
+    ----------
+    source : store path, Store, ``(X, targets[, weights])`` or scipy CSR
+        With a bare CSR matrix give ``targets=`` (and optionally ``weights=``).
+    loss : {"softmax", "squared", "multilabel"}
+    lam, lam_frac, path : exactly one
+        A penalty, a fraction of ``lam_max``, or the number ``m`` of path values
+        ``lam_j = lam_max * path_min_frac^(j / (m - 1))``, j = 0..m-1.
+    path_min_frac : float
+        Smallest path value as a fraction of ``lam_max`` (default 0.01).
+    valid : store path, Store or tuple
+        Validation data (required with ``path``): softmax accuracy, squared
+        RMSE, multilabel micro-F1 pick the best lam; the path stops early
+        when validation worsens twice in a row.
+    tol : float
+        Relative gap estimate at which a fit stops (default 1e-4).
+    max_passes : int
+        Passes allowed per value of lam (default 100).
+    max_seconds : float, optional
+        Wall-clock budget of the whole run.
+    memory : int or str, optional
+        Memory budget (``"4GB"``); default a quarter of RAM.
+    seed : int
+        Seed of the solver's random starting blocks.
+    block_rows : int, optional
+        Rows per pass block (default from the memory planner).
+    backend : {"serial", "threads"}
+    class_weight : "balanced", path or array (k,), optional
+        Softmax only.
+    callback : callable, optional
+        Called with each pass's record; True or ``"stop"`` stops the run.
+    progress : bool
+        Progress bars on passes.
+    out : path, optional
+        Run directory: ``config.json``, ``history.jsonl`` (one line per pass,
+        appended and flushed), ``model/``.
+    overwrite : bool
+        Replace an existing run directory.
+    targets, weights : optional
+        With a bare CSR ``source``.
+    dense_gradient : bool, optional
+        Force (True) or forbid (False) the dense-gradient path; default by budget.
+    power_size, expand_size : int
+        Block sizes ``p`` and ``p'`` of the solver (see :class:`SolverConfig`).
+    on_pass : callable, optional
+        Called with each pass's record for display (never stops the run).
+    checkpoint_seconds, checkpoint_passes : optional
+        With ``out``: a checkpoint every ``checkpoint_seconds`` of training
+        (default 60) or every ``checkpoint_passes`` passes, whichever comes
+        first, at the end of each path step and at the end.
+    stop : ranktide.signals.StopFlag, optional
+        Checked after every block and refinement step; when set, the
+        unfinished outer iteration is abandoned, a checkpoint of the state
+        before it is written and the run ends with status ``"interrupted"``
+        (no model is written).
+    resume_point : ranktide.runs.resume.ResumePoint, optional
+        Continue a run from a checkpoint (see :func:`ranktide.runs.resume.resume`).
+
+    Returns
+    -------
+    TrainResult
+    """
+    _validate(loss=loss, lam=lam, lam_frac=lam_frac, path=path, path_min_frac=path_min_frac,
+              valid=valid, tol=tol, max_passes=max_passes, max_seconds=max_seconds,
+              class_weight=class_weight)
+    from ranktide.runs.checkpoint import CheckpointSchedule
+
+    CheckpointSchedule(seconds=checkpoint_seconds, passes=checkpoint_passes)  # validates them
+    from ranktide.losses import check_loss_source
+    from ranktide.store.memory_source import as_source
+
+    opened = isinstance(source, (str, os.PathLike))
+    src = as_source(source, targets=targets, weights=weights)
+    solver = None
+    try:
+        check_loss_source(loss, src)
+        cw = resolve_class_weights(class_weight, src, backend=backend, block_rows=block_rows)
+        cfg = SolverConfig(loss=loss, lam=lam, lam_frac=lam_frac, tol=tol,
+                           max_passes=int(max_passes), seed=int(seed), memory=memory,
+                           block_rows=block_rows, backend=backend, class_weights=cw,
+                           dense_gradient=dense_gradient, power_size=power_size,
+                           expand_size=expand_size)
+        if resume_point is not None:
+            cfg = resume_point.solver_config(cfg)
+        scratch = None
+        if out is not None:
+            scratch = Path(out) / "scratch"
+        elif resume_point is not None:
+            scratch = Path(resume_point.run.path) / "scratch"
+        solver = GreedySolver(src, cfg, progress=progress,
+                              state=None if resume_point is None else resume_point.state,
+                              stop=stop, scratch_dir=scratch)
+        fingerprint = _fingerprint(src)
+        run = None if resume_point is None else resume_point.run
+        if out is not None and run is None:
+            run = _create_run(out, src, cfg, fingerprint, overwrite=overwrite,
+                              extra={"path": path, "path_min_frac": path_min_frac,
+                                     "class_weight": class_weight if isinstance(
+                                         class_weight, str) else None,
+                                     "max_seconds": max_seconds,
+                                     "valid": _path_of(valid),
+                                     "checkpoint_seconds": checkpoint_seconds,
+                                     "checkpoint_passes": checkpoint_passes})
+        ctx, ckpt = _checkpointing(run, solver, resume_point, checkpoint_seconds,
+                                   checkpoint_passes, stop)
+        hook = stop if ckpt is None else (lambda: ckpt.after_pass(solver.state))
+        rec = _Recorder(run, callback, on_pass, hook=hook)
+        if resume_point is not None:
+            rec.history = [h for h in run.read_history() if h.get("kind") == "pass"]
+        t0 = time.perf_counter()
+        deadline = None if max_seconds is None else t0 + float(max_seconds)
+        if path is None:
+            result = _train_single(solver, rec, deadline, fingerprint, src, loss)
+        else:
+            result = _train_path(solver, rec, deadline, fingerprint, src, loss, int(path),
+                                 float(path_min_frac), valid, block_rows, ctx)
+        if stop is not None and stop:
+            return _with(result, status="interrupted",
+                         run_dir=None if run is None else str(run.path),
+                         message=f"interrupted by {stop.signal_name}; checkpoint written"
+                         if run is not None else f"interrupted by {stop.signal_name}")
+        if ckpt is not None:
+            ctx.finished = True
+            ckpt.checkpoint(solver.state)
+        if run is not None:
+            from ranktide.model import save_model
+
+            save_model(run.model_dir, result.model, overwrite=True)
+            result = _with(result, run_dir=str(run.path))
+        return result
+    finally:
+        if solver is not None:
+            solver.remove_scratch()
+        if opened:
+            src.close()
+
+
+def _with(result: TrainResult, **changes: Any) -> TrainResult:
+    from dataclasses import replace
+
+    return replace(result, **changes)
+
+
+def _path_of(source: Any) -> str | None:
+    if isinstance(source, (str, os.PathLike)):
+        return os.fspath(Path(source).resolve())
+    p = getattr(source, "path", None)
+    return None if p is None else os.fspath(Path(p).resolve())
+
+
+class _RunContext:
+    """What a checkpoint holds beside the solver state (``ctx`` in ranktide.runs.rundir).
+
+    The planner's decisions (block rows, dense gradient), so a resumed run
+    reads the same blocks; on a path, the position (``path``: index, whether
+    its lam is set, points so far, the early-stop count) and the best model
+    so far (``best``: arrays U, s, V, b).
+    """
+
+    def __init__(self, solver: GreedySolver, saved: dict | None = None,
+                 best: dict | None = None) -> None:
+        saved = saved or {}
+        rows = solver.config.block_rows
+        if rows is None and solver.config.block_bytes is None:
+            rows = solver.plan.block_rows
+        self.plan = saved.get("plan") or {"block_rows": None if rows is None else int(rows),
+                                          "dense_gradient": bool(solver.dense)}
+        self.path: dict | None = saved.get("path")
+        self.best: dict | None = best or None
+        self.finished = False
+        self.recorder: Any = None  # the RunRecorder, for the path-step checkpoints
+
+    def __call__(self) -> tuple[dict, dict]:
+        arrays = dict(self.best) if self.best else {}
+        return arrays, {"plan": self.plan, "path": self.path, "finished": self.finished}
+
+
+def _checkpointing(run, solver, resume_point, seconds, passes, stop):
+    """The run context and the checkpoint hook (None without a run directory)."""
+    if resume_point is not None:
+        ctx = _RunContext(solver, resume_point.context, resume_point.context_arrays)
+    else:
+        ctx = _RunContext(solver)
+    if run is None:
+        return ctx, None
+    from ranktide.runs.checkpoint import CheckpointSchedule
+    from ranktide.runs.rundir import RunRecorder
+
+    sched = CheckpointSchedule(seconds=seconds, passes=passes)
+    ctx.recorder = RunRecorder(run, schedule=sched, stop=stop, context=ctx)
+    return ctx, ctx.recorder
+
+
+def _create_run(out, src, cfg: SolverConfig, fingerprint: str, *, overwrite: bool,
+                extra: dict) -> Any:
+    from ranktide.runs.rundir import RunDir
+
+    settings = {
+        "loss": cfg.loss, "lam": cfg.lam, "lam_frac": cfg.lam_frac, "tol": cfg.tol,
+        "max_passes": cfg.max_passes, "seed": cfg.seed,
+        "memory": cfg.memory if not isinstance(cfg.memory, float) else int(cfg.memory),
+        "block_rows": cfg.block_rows, "backend": cfg.backend,
+        "class_weights": None if cfg.class_weights is None else cfg.class_weights.tolist(),
+        "power_size": cfg.power_size, "expand_size": cfg.expand_size,
+        "dense_gradient": cfg.dense_gradient, **extra,
+    }
+    store_path = getattr(src, "path", None)
+    return RunDir.create(out, settings=_jsonable(settings), store_path=store_path,
+                         fingerprint=fingerprint, overwrite=overwrite)
+
+
+def _seconds_left(deadline: float | None) -> float | None:
+    if deadline is None:
+        return None
+    return max(1e-3, deadline - time.perf_counter())
+
+
+def _run_solver(solver: GreedySolver, rec: _Recorder, deadline: float | None) -> SolverResult:
+    from dataclasses import replace
+
+    solver.config = replace(solver.config, max_seconds=_seconds_left(deadline))
+    fit = solver.run(callback=rec)
+    if fit.status == "interrupted" and rec.hook is not None:
+        rec.hook()  # the stop flag is set: this writes the checkpoint
+    return fit
+
+
+def _grad_b(history: list) -> float:
+    for h in reversed(history):
+        if "grad_b_norm" in h:
+            return float(h["grad_b_norm"] if h["grad_b_norm"] is not None else math.nan)
+    return math.nan
+
+
+def _train_single(solver, rec, deadline, fingerprint, src, loss) -> TrainResult:
+    fit = _run_solver(solver, rec, deadline)
+    gb = _grad_b(rec.history)
+    model = _model(src, loss, fit, _fit_meta(fit, fingerprint, gb))
+    return TrainResult(model=model, objective=fit.objective, gap=fit.gap,
+                       sigma_ratio=fit.sigma_ratio, rank=fit.rank, passes=fit.passes,
+                       seconds=fit.seconds, status=fit.status, message=fit.message,
+                       history=list(rec.history), lam=fit.lam, lam_max=fit.lam_max,
+                       grad_b_norm=gb)
+
+
+def _better(a: float, b: float, higher: bool) -> bool:
+    return a > b if higher else a < b
+
+
+def _point_best(points: list, higher: bool) -> int:
+    return max(range(len(points)), key=lambda i: points[i].score if higher else -points[i].score)
+
+
+def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, valid,
+                block_rows, ctx) -> TrainResult:
+    from dataclasses import asdict
+
+    from ranktide.model import Model
+
+    pos = ctx.path
+    if pos is None:  # a fresh path (or a resume from inside the lam_max phase)
+        first = _run_solver(solver, rec, deadline)  # lam_max phase only (lam is None)
+        if first.status in ("callback", "interrupted"):
+            model = _model(src, loss, first, _fit_meta(first, fingerprint, math.nan))
+            return TrainResult(model=model, objective=first.objective, gap=first.gap,
+                               sigma_ratio=first.sigma_ratio, rank=first.rank,
+                               passes=first.passes, seconds=first.seconds, status=first.status,
+                               message=first.message, history=list(rec.history),
+                               lam=first.lam, lam_max=first.lam_max)
+        if first.status != "lam_max":
+            raise ConfigError(f"train: the lam_max phase ended with status {first.status!r}; "
+                              "raise --max-passes or --max-seconds")
+        # the path position, in the checkpoints: value index, whether its lam is set,
+        # finished points, early-stop count, best point so far
+        pos = {"index": 0, "started": False, "points": [], "worse": 0, "best": None,
+               "best_meta": None, "status": "converged", "message": "", "passes_before": 0,
+               "done": False}
+        ctx.path = pos
+    lam_max = float(solver.state.lam_max)
+    key, higher = VALIDATION_METRIC[loss]
+    lams = [lam_max * min_frac ** (j / (m - 1)) for j in range(m)]
+    points: list[PathPoint] = [PathPoint(**p) for p in pos["points"]]
+    best_model = None
+    if pos["best"] is not None:  # resumed: the best model so far comes from the checkpoint
+        names = getattr(src, "output_names", None)
+        b = ctx.best
+        best_model = Model(U=b["U"], s=b["s"], V=b["V"], b=b["b"], loss=loss,
+                           names=list(names) if names else None, meta=pos["best_meta"])
+    status = message = None
+    while not pos["done"] and pos["index"] < m:
+        j = pos["index"]
+        lam_j = lams[j]
+        if not pos["started"]:
+            pos["passes_before"] = solver.state.passes
+            solver.set_lam(lam_j, path_index=j)
+            pos["started"] = True
+        fit = _run_solver(solver, rec, deadline)
+        if fit.status == "interrupted":  # the checkpoint keeps the position inside this value
+            status, message = fit.status, f"path interrupted at value {j + 1} of {m}"
+            break
+        gb = _grad_b(rec.history)
+        model = _model(src, loss, fit, _fit_meta(fit, fingerprint, gb))
+        metrics, score = _validation(model, valid, loss, block_rows)
+        pt = PathPoint(index=j, lam=lam_j, objective=fit.objective, gap=fit.gap,
+                       sigma_ratio=fit.sigma_ratio, rank=fit.rank,
+                       passes=solver.state.passes - pos["passes_before"], status=fit.status,
+                       metrics=_jsonable(metrics), score=score)
+        points.append(pt)
+        best = _point_best(points, higher)
+        if best == len(points) - 1:
+            best_model = model
+        rec.event({"kind": "path", "index": j, "lam": lam_j, "rank": fit.rank,
+                   "objective": fit.objective, "gap_estimate": fit.gap,
+                   "sigma_ratio": fit.sigma_ratio, "status": fit.status,
+                   "val_metric": score, "val_metric_name": f"validation {key}",
+                   "validation": _jsonable(metrics), "best_lam": points[best].lam,
+                   "passes": pt.passes})
+        if fit.status in ("callback", "max_seconds"):
+            # unfinished value: the checkpoint keeps the position inside it
+            status, message = fit.status, f"path stopped at value {j + 1} of {m}: {fit.message}"
+            break
+        if best == len(points) - 1:
+            pos["best"], pos["best_meta"] = j, model.meta
+            ctx.best = {"U": fit.U, "s": fit.s, "V": fit.V, "b": fit.b}
+        if len(points) >= 2 and _better(points[-2].score, score, higher):
+            pos["worse"] += 1
+        else:
+            pos["worse"] = 0
+        pos["points"] = [asdict(p) for p in points]
+        pos["index"], pos["started"] = j + 1, False
+        if pos["worse"] >= 2:
+            pos["status"] = "path_early_stop"
+            pos["message"] = (f"validation {key} worsened twice in a row; stopped at value "
+                              f"{j + 1} of {m}")
+            pos["done"] = True
+        elif fit.status != "converged":
+            pos["status"] = fit.status
+        if ctx.recorder is not None:  # a checkpoint at the end of each path step
+            ctx.recorder.checkpoint(solver.state)
+    status = status or pos["status"]
+    message = message or pos["message"]
+    if not points:  # interrupted inside the first value: nothing to report but the state
+        st = solver.state
+        return TrainResult(model=None, objective=math.nan, gap=math.nan, sigma_ratio=math.nan,
+                           rank=st.rank, passes=st.passes, seconds=st.seconds, status=status,
+                           message=message, history=list(rec.history), lam=lams[0],
+                           lam_max=lam_max)
+    best = _point_best(points, higher)
+    pt = points[best]
+    if not message:
+        message = (f"path of {len(points)} values; best lam {pt.lam:.6g} "
+                   f"(validation {key} {pt.score:.6g})")
+    return TrainResult(model=best_model, objective=pt.objective, gap=pt.gap,
+                       sigma_ratio=pt.sigma_ratio, rank=pt.rank, passes=solver.state.passes,
+                       seconds=solver.state.seconds, status=status, message=message,
+                       history=list(rec.history), lam=pt.lam, lam_max=lam_max, path=points,
+                       best_index=best, grad_b_norm=float(best_model.meta.get("grad_b_norm") or
+                                                          math.nan))

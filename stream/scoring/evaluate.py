@@ -1,0 +1,394 @@
+"""Streamed evaluation of a model on a labelled store (or in-memory data).
+
+The data are read block by block; each block's scores are computed, fed to
+the loss's metric accumulator (:mod:`ranktide.scoring.metrics`) and dropped, so memory
+holds one block of scores at a time.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.scoring.metrics import make_metrics
+
+__all__ = [
+    "evaluate",
+    "DataSource",
+    "open_source",
+    "as_model",
+    "model_dims",
+    "model_names",
+    "score_block_rows",
+]
+
+#: Bytes of dense scores (and their temporaries) one block may hold.
+SCORE_BUDGET = 64 * 2**20
+
+#: Store target kind that each loss needs.
+KIND_OF_LOSS = {"softmax": "classes", "multilabel": "tags", "squared": "values"}
+
+
+@dataclass(frozen=True)
+class SourceBlock:
+    """One row block of a source: rows ``[start, stop)``."""
+
+    start: int
+    stop: int
+    X: sp.csr_matrix
+    targets: Any
+    weights: np.ndarray | None
+
+
+class DataSource:
+    """A store or in-memory CSR data, read as row blocks.
+
+    Parameters
+    ----------
+    name : str
+        What error messages call the data (the store's path or ``"<array>"``).
+    n_rows, n_cols : int
+        Shape of the feature matrix.
+    target_kind : {"classes", "values", "tags"} or None
+        Kind of targets available.
+    n_outputs : int or None
+        Classes, tags or outputs the targets cover.
+    """
+
+    def __init__(
+        self,
+        *,
+        name: str,
+        n_rows: int,
+        n_cols: int,
+        target_kind: str | None,
+        n_outputs: int | None,
+        output_names: list[str] | None = None,
+        store: Any = None,
+        X: sp.csr_matrix | None = None,
+        targets: Any = None,
+        weights: np.ndarray | None = None,
+    ) -> None:
+        self.name = name
+        self.n_rows = int(n_rows)
+        self.n_cols = int(n_cols)
+        self.target_kind = target_kind
+        self.n_outputs = n_outputs
+        self.output_names = output_names
+        self._store = store
+        self._X = X
+        self._targets = targets
+        self._weights = weights
+
+    def blocks(self, rows: int) -> Iterator[SourceBlock]:
+        """Yield consecutive row blocks of at most ``rows`` rows."""
+        if self._store is not None:
+            for b in self._store.blocks(rows=rows):
+                yield SourceBlock(b.start, b.stop, b.X, b.targets, b.weights)
+            return
+        for a in range(0, self.n_rows, rows):  # one step per block, not per row
+            z = min(a + rows, self.n_rows)
+            t = None if self._targets is None else self._targets[a:z]
+            w = None if self._weights is None else self._weights[a:z]
+            yield SourceBlock(a, z, self._X[a:z], t, w)
+
+    def map_blocks(
+        self, rows: int, fn: Any, state: Any, *, backend: str = "serial"
+    ) -> Iterator[tuple[int, int, Any]]:
+        """Yield ``(start, stop, fn(block, state))`` for each block, in order.
+
+        ``backend="dask"`` runs ``fn`` on the workers of the current
+        dask.distributed client (the data must be a store on a shared path);
+        ``fn`` must then be a module-level function.
+        """
+        if backend == "dask":
+            if self._store is None:
+                raise ConfigError("--cluster: evaluate and predict on a cluster need a store "
+                                  "path, not in-memory arrays")
+            from ranktide.passes.dask_backend import map_blocks_ordered
+
+            ranges = self._store.block_ranges(rows=rows)
+            yield from map_blocks_ordered(self._store, ranges, fn, state)
+            return
+        for blk in self.blocks(rows):
+            yield blk.start, blk.stop, fn(blk, state)
+
+    def close(self) -> None:
+        if self._store is not None and hasattr(self._store, "close"):
+            self._store.close()
+
+
+def _in_memory(X: Any, targets: Any = None, weights: Any = None) -> DataSource:
+    """Standardize in-memory input: CSR features, targets of a known kind."""
+    if not sp.issparse(X):
+        X = np.asarray(X)
+        if X.ndim != 2:
+            raise InputError(
+                f"<array>: features have shape {X.shape}; pass a 2-D (rows, cols) matrix"
+            )
+    X = sp.csr_matrix(X, dtype=np.float32)
+    n = X.shape[0]
+    kind = None
+    k = None
+    if targets is not None:
+        if sp.issparse(targets):
+            targets = sp.csr_matrix(targets, dtype=np.float32)
+            kind, k = "tags", targets.shape[1]
+        else:
+            targets = np.asarray(targets)
+            if targets.ndim == 1 and np.issubdtype(targets.dtype, np.integer):
+                kind, k = "classes", (int(targets.max()) + 1 if targets.size else 0)
+            elif targets.ndim == 2:
+                kind, k = "values", targets.shape[1]
+            else:
+                raise InputError(
+                    f"<array>: targets of dtype {targets.dtype} and shape {targets.shape}; pass "
+                    "integer class ids (n,), a float matrix (n, k) or a sparse tag matrix (n, k)"
+                )
+        if targets.shape[0] != n:
+            raise InputError(
+                f"<array>: {targets.shape[0]} target rows for {n} feature rows; pass one per row"
+            )
+    if weights is not None:
+        weights = np.asarray(weights, dtype=np.float32).reshape(-1)
+        if weights.shape[0] != n:
+            raise InputError(f"<array>: {weights.shape[0]} weights for {n} rows; pass one per row")
+        if not np.all(np.isfinite(weights)) or (weights < 0).any():
+            bad = int(np.flatnonzero(~(np.isfinite(weights) & (weights >= 0)))[0])
+            raise InputError(f"<array>: row {bad}: weight {weights[bad]} is not finite and >= 0")
+    return DataSource(
+        name="<array>", n_rows=n, n_cols=X.shape[1], target_kind=kind, n_outputs=k,
+        X=X, targets=targets, weights=weights,
+    )
+
+
+def open_source(source: Any) -> DataSource:
+    """Wrap a store path, an open store, a CSR matrix or ``(X, targets[, weights])``.
+
+    Raises
+    ------
+    StoreError
+        When a path is not a readable store.
+    InputError
+        When in-memory input is malformed.
+    """
+    if isinstance(source, (str, os.PathLike)):
+        from ranktide.store import open_store
+
+        store = open_store(source)
+        return _from_store(store, str(source))
+    if hasattr(source, "blocks") and hasattr(source, "shape"):
+        return _from_store(source, str(getattr(source, "path", "<store>")))
+    if isinstance(source, tuple):
+        if not 1 <= len(source) <= 3:
+            raise InputError("<array>: pass (X,), (X, targets) or (X, targets, weights)")
+        return _in_memory(*source)
+    return _in_memory(source)
+
+
+def _from_store(store: Any, name: str) -> DataSource:
+    n_rows, n_cols = store.shape
+    return DataSource(
+        name=name, n_rows=n_rows, n_cols=n_cols, target_kind=store.target_kind,
+        n_outputs=store.n_outputs, store=store,
+        output_names=None if store.output_names is None else [str(x) for x in store.output_names],
+    )
+
+
+def as_model(model: Any) -> Any:
+    """A loaded model: ``model`` itself, or :func:`ranktide.model.load_model` of a path."""
+    if isinstance(model, (str, os.PathLike)):
+        from ranktide.model import load_model
+
+        return load_model(model)
+    return model
+
+
+def model_names(model: Any) -> list[str] | None:
+    """The model's output names in column order, or None."""
+    names = getattr(model, "output_names", None)
+    if names is None:
+        names = getattr(model, "names", None)
+    return None if names is None else [str(s) for s in names]
+
+
+def model_dims(model: Any) -> tuple[int, int]:
+    """(n_features d, n_outputs k) of a model."""
+    d = getattr(model, "n_features", None)
+    k = getattr(model, "n_outputs", None)
+    if d is None:
+        d = np.shape(model.U)[0]
+    if k is None:
+        k = np.shape(model.b)[0]
+    return int(d), int(k)
+
+
+def score_block_rows(n_outputs: int, block_rows: int | None) -> int:
+    """Rows per block: ``block_rows`` if given, else what keeps dense scores in budget."""
+    if block_rows is not None:
+        if int(block_rows) < 1:
+            raise InputError(f"block_rows={block_rows}: must be at least 1")
+        return int(block_rows)
+    # scores, probabilities and one temporary, float64
+    return max(1, SCORE_BUDGET // (3 * 8 * max(1, n_outputs)))
+
+
+def check_compatible(model: Any, src: DataSource, *, need_targets: bool) -> tuple[int, int]:
+    """Check that ``src`` has the model's feature count (and matching targets).
+
+    Raises
+    ------
+    ModelError
+        Feature or output count differ.
+    InputError
+        Targets are missing or of another kind than the model's loss.
+    """
+    d, k = model_dims(model)
+    if src.n_cols != d:
+        raise ModelError(
+            f"{src.name}: {src.n_cols} feature columns but the model has {d}; use data hashed "
+            "or ingested the same way as the training store"
+        )
+    if not need_targets:
+        return d, k
+    want = KIND_OF_LOSS.get(str(model.loss))
+    if src.target_kind is None:
+        raise InputError(
+            f"{src.name}: has no targets; evaluate needs labelled data (use predict for "
+            "unlabelled rows)"
+        )
+    if src.target_kind != want:
+        raise InputError(
+            f"{src.name}: targets are {src.target_kind} but a {model.loss} model needs {want}; "
+            "evaluate with a store of the kind the model was trained on"
+        )
+    n_out = src.n_outputs
+    if n_out is not None and (n_out > k if want == "classes" else n_out != k):
+        raise ModelError(
+            f"{src.name}: targets cover {n_out} outputs but the model has {k}; use a store with "
+            "the model's classes, tags or outputs"
+        )
+    _check_names(model_names(model), src)
+    return d, k
+
+
+def _check_names(names: list[str] | None, src: DataSource) -> None:
+    """Target ids must mean the same outputs in the store and in the model."""
+    theirs = src.output_names
+    if names is None or theirs is None:
+        return
+    for j, (a, b) in enumerate(zip(theirs, names, strict=False)):
+        if a != b:
+            raise ModelError(
+                f"{src.name}: output {j} is {a!r} in the store but {b!r} in the model; ingest "
+                "the evaluation data with the training data's label set (or split one store)"
+            )
+
+
+def _check_classes(y: np.ndarray, k: int, name: str, start: int) -> None:
+    bad = np.flatnonzero((y < 0) | (y >= k))
+    if bad.size:
+        i = int(bad[0])
+        raise InputError(
+            f"{name}: row {start + i}: class id {int(y[i])} is outside 0..{k - 1} of the model; "
+            "evaluate with the store the model's classes came from"
+        )
+
+
+def progress_bar(total: int, *, enabled: bool, desc: str) -> Any:
+    """A tqdm bar over rows, shown only when ``enabled`` and stderr is a terminal."""
+    from tqdm.auto import tqdm
+
+    show = bool(enabled) and sys.stderr.isatty()
+    # delay: runs shorter than half a second never draw a bar
+    return tqdm(total=total, disable=not show, desc=desc, unit="rows", unit_scale=True,
+                leave=False, file=sys.stderr, delay=0.5)
+
+
+def _metrics_of_block(blk: Any, state: tuple) -> Any:
+    """The metric sums of one block (a module-level function, so workers can run it)."""
+    model, k, top_k, name, kind = state
+    if kind == "classes":
+        _check_classes(np.asarray(blk.targets), k, name, blk.start)
+    acc = make_metrics(str(model.loss), n_outputs=k, top_k=top_k,
+                       output_names=model_names(model))
+    acc.update(np.asarray(model.scores(blk.X)), blk.targets, blk.weights)
+    return acc
+
+
+def evaluate(
+    model: Any,
+    source: Any,
+    *,
+    top_k: int = 5,
+    block_rows: int | None = None,
+    progress: bool = False,
+    backend: str = "serial",
+) -> dict[str, Any]:
+    """Evaluate ``model`` on labelled data, streamed block by block.
+
+    Parameters
+    ----------
+    model : Model or path
+        A loaded :class:`ranktide.model.Model` or its directory.
+    source : path, Store, or tuple
+        A store (path or open :class:`ranktide.store.Store`) with targets, or
+        in-memory ``(X, targets)`` / ``(X, targets, weights)`` with ``X`` of
+        shape (n, d) (scipy sparse or dense), targets as class ids (n,),
+        values (n, k) or a sparse tag matrix (n, k).
+    top_k : int
+        The k of top-k accuracy (softmax) and precision@k (multilabel).
+    block_rows : int, optional
+        Rows per block; default keeps a block's dense scores near 64 MiB.
+    progress : bool
+        Show a progress bar on a terminal.
+    backend : {"serial", "dask"}
+        ``"dask"`` scores the blocks on the current dask.distributed client's
+        workers and merges their metric sums in block order.
+
+    Returns
+    -------
+    dict
+        The metrics of the loss (see :mod:`ranktide.scoring.metrics`): softmax
+        ``accuracy``, ``top_k_accuracy``, ``log_loss``, ``macro_f1``,
+        ``worst_class_recall``; multilabel ``micro_f1``, ``macro_f1``,
+        ``precision_at_k``; squared ``rmse``, ``r2`` and their per-output
+        lists. Also ``loss``, ``n_rows``, ``total_weight``, ``mean_loss`` and
+        ``source``.
+
+    Raises
+    ------
+    RanktideError
+        Data without targets, of another kind or shape than the model's.
+    """
+    model = as_model(model)
+    close = isinstance(source, (str, os.PathLike))
+    src = open_source(source)
+    try:
+        _, k = check_compatible(model, src, need_targets=True)
+        acc = make_metrics(str(model.loss), n_outputs=k, top_k=top_k,
+                           output_names=model_names(model))
+        rows = score_block_rows(k, block_rows)
+        state = (model, k, top_k, src.name, src.target_kind)
+        with progress_bar(src.n_rows, enabled=progress, desc="evaluate") as bar:
+            for a, z, part in src.map_blocks(rows, _metrics_of_block, state, backend=backend):
+                acc.merge(part)
+                bar.update(z - a)
+        if not acc.total_weight > 0:
+            raise InputError(
+                f"{src.name}: {acc.n_rows} rows and no positive row weight; evaluate on a "
+                "non-empty store"
+            )
+        out = acc.result()
+    finally:
+        if close:
+            src.close()
+    out["source"] = src.name if src.name == "<array>" else str(Path(src.name))
+    return out
