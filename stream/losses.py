@@ -30,6 +30,9 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError
+from ranktide.kernels import losses as kl
+from ranktide.passes.engine import run_pass
+from ranktide.store.memory_source import as_source
 
 __all__ = ["Loss", "get_loss", "LOSS_NAMES", "TARGET_KIND", "best_intercept",
            "check_loss_source", "row_weights"]
@@ -97,8 +100,6 @@ class Loss:
         residual : (n, k) float64 array
             ``w_i * dloss/dz_i`` for each row.
         """
-        from ranktide.kernels import losses as kl
-
         Z = np.asarray(scores, dtype=np.float64)
         if Z.ndim != 2:
             raise ConfigError(f"{where}: scores must be 2-D (n, k), got shape {Z.shape}")
@@ -237,8 +238,6 @@ def best_intercept(
         condition ``grad_b f = 0``); squared: the weighted mean of ``Y``;
         multilabel: ``logit(freq)`` of the weighted tag frequencies.
     """
-    from ranktide.store.memory_source import as_source
-
     opened = isinstance(source, (str, os.PathLike))
     src = as_source(source)
     try:
@@ -253,8 +252,6 @@ def best_intercept(
 def _best_intercept(src: Any, *, loss: str, class_weights: Any, backend: str,
                     block_rows: int | None, block_bytes: int | None, clip: float,
                     progress: bool) -> np.ndarray:
-    from ranktide.passes.engine import run_pass
-
     check_loss_source(loss, src)
     k = int(src.n_outputs)
     cw = None

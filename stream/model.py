@@ -25,8 +25,10 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
+from ranktide import __version__
 from ranktide.atomic import atomic_dir, atomic_write_json, load_npz, save_npz
 from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.kernels.sparse import csr_matmul_dense
 from ranktide.kernels.svd import svd
 
 __all__ = ["Model", "save_model", "load_model", "MODEL_FORMAT", "MODEL_VERSION", "NAMES_KEY"]
@@ -204,8 +206,6 @@ class Model:
         if self.rank == 0 or n == 0:
             return out
         if sp.issparse(X):
-            from ranktide.kernels.sparse import csr_matmul_dense
-
             Xc = sp.csr_matrix(X)
             data = Xc.data
             if data.dtype not in (np.float32, np.float64):
@@ -284,8 +284,6 @@ def _jsonable(value: Any, key: str) -> Any:
 
 
 def _versions() -> dict[str, str | None]:
-    from ranktide import __version__
-
     out: dict[str, str | None] = {}
     for pkg in _VERSIONED:
         try:

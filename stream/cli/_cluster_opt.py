@@ -6,6 +6,8 @@ import argparse
 import contextlib
 from collections.abc import Iterator
 
+from ranktide.passes.dask_backend import cluster_client, parse_cluster
+
 
 def add_cluster_option(parser: argparse.ArgumentParser) -> None:
     """Add ``--cluster local:N | tcp://HOST:PORT`` to a subcommand."""
@@ -24,7 +26,5 @@ def cluster_backend(args: argparse.Namespace, default: str = "serial") -> Iterat
     if not spec:
         yield getattr(args, "backend", None) or default
         return
-    from ranktide.passes.dask_backend import cluster_client, parse_cluster
-
     with cluster_client(parse_cluster(spec)):
         yield "dask"

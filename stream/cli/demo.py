@@ -5,6 +5,8 @@ from __future__ import annotations
 import argparse
 import json
 
+from ranktide.cli.demo_workflow import run_demo
+
 HELP = "Run the whole workflow on invented data: ingest, split, train a path, evaluate, report"
 EXAMPLE = "ranktide demo --size small --out demo-out"
 
@@ -23,8 +25,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.cli.demo_workflow import run_demo
-
     made = run_demo(args.out, size=args.size, seed=args.seed, quiet=args.quiet or args.json,
                     overwrite=args.overwrite)
     if args.json:

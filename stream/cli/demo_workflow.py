@@ -27,7 +27,13 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 from ranktide.atomic import atomic_write_bytes, atomic_write_json, remove_path
+from ranktide.diagnostics.report import write_report
 from ranktide.errors import ConfigError, OutputExistsError
+from ranktide.ingest.build import ingest
+from ranktide.runs.train import train
+from ranktide.scoring.evaluate import evaluate
+from ranktide.scoring.predict import predict_to_file
+from ranktide.store.split import split_store
 
 __all__ = [
     "DemoSize",
@@ -342,8 +348,6 @@ def _step_data(demo: _Demo) -> None:
 
 
 def _step_ingest(demo: _Demo) -> None:
-    from ranktide.ingest.build import ingest
-
     store = demo.out / "catalogue.zarr"
     summary = ingest(demo.paths.matrix, store, labels=demo.paths.labels, progress=not demo.quiet)
     demo.store = store
@@ -354,8 +358,6 @@ def _step_ingest(demo: _Demo) -> None:
 
 
 def _step_split(demo: _Demo) -> None:
-    from ranktide.store.split import split_store
-
     store = demo.store
     train, hold = demo.out / "train.zarr", demo.out / "holdout.zarr"
     info = split_store(store, train, hold, holdout=0.2, seed=demo.seed)
@@ -374,8 +376,6 @@ def _step_split(demo: _Demo) -> None:
 
 
 def _step_train(demo: _Demo) -> None:
-    from ranktide.runs.train import train
-
     fit = demo.fit_store
     run = demo.out / "run"
     result = train(fit, valid=demo.valid_store, out=run, seed=demo.seed,
@@ -398,8 +398,6 @@ def _step_train(demo: _Demo) -> None:
 
 
 def _step_evaluate(demo: _Demo) -> None:
-    from ranktide.scoring.evaluate import evaluate
-
     model = demo.model_dir
     hold = demo.holdout_store
     res = evaluate(model, hold, top_k=5, progress=not demo.quiet)
@@ -414,8 +412,6 @@ def _step_evaluate(demo: _Demo) -> None:
 
 
 def _step_predict(demo: _Demo) -> None:
-    from ranktide.scoring.predict import predict_to_file
-
     model = demo.model_dir
     hold = demo.holdout_store
     out = demo.out / "holdout_predictions.csv"
@@ -425,8 +421,6 @@ def _step_predict(demo: _Demo) -> None:
 
 
 def _step_report(demo: _Demo) -> None:
-    from ranktide.diagnostics.report import write_report
-
     run = demo.run_dir
     page = write_report(run)
     demo.say(f"  {page}")

@@ -9,6 +9,8 @@ from collections.abc import Sequence
 from typing import Any
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
+from ranktide.errors import ConfigError
+from ranktide.scoring.evaluate import evaluate
 
 HELP = "Evaluate a model on a labelled store (streamed): accuracy, F1, RMSE, ..."
 EXAMPLE = "ranktide evaluate run/model holdout.zarr --top 5 --json"
@@ -79,9 +81,6 @@ def format_metrics(res: dict[str, Any]) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.errors import ConfigError
-    from ranktide.scoring.evaluate import evaluate
-
     if args.top < 1:
         raise ConfigError(f"--top {args.top}: must be at least 1")
     with cluster_backend(args) as backend:

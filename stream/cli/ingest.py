@@ -6,6 +6,7 @@ import argparse
 import json
 import sys
 
+from ranktide.ingest.build import ingest
 from ranktide.store.format import DEFAULT_CODEC
 
 HELP = "Read a Matrix Market, triplet or .npz sparse matrix (and targets) into a store"
@@ -45,8 +46,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.ingest.build import ingest
-
     summary = ingest(
         args.source,
         args.out,

@@ -6,6 +6,8 @@ import argparse
 import json
 import sys
 
+from ranktide.store.inspect import format_inspection, inspect_store
+
 HELP = "Summarize a store: shape, density, sizes, row lengths, empty rows/columns, targets"
 EXAMPLE = "ranktide inspect reviews.zarr --json"
 
@@ -18,8 +20,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.store.inspect import format_inspection, inspect_store
-
     info = inspect_store(args.store)
     if args.quiet and not args.json:
         return 0

@@ -6,6 +6,8 @@ import argparse
 import json
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
+from ranktide.errors import ConfigError
+from ranktide.scoring.predict import predict_to_file
 
 HELP = "Predict every row of a store (streamed) into CSV, .npy or zarr"
 EXAMPLE = "ranktide predict run/model holdout.zarr --out predictions.csv --top 5 --proba"
@@ -30,9 +32,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.errors import ConfigError
-    from ranktide.scoring.predict import predict_to_file
-
     if args.top < 1:
         raise ConfigError(f"--top {args.top}: must be at least 1")
     with cluster_backend(args) as backend:

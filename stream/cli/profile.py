@@ -7,6 +7,9 @@ import json
 import sys
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
+from ranktide.diagnostics.profile import format_report, jsonable, profile_store, write_profile
+from ranktide.errors import ConfigError
+from ranktide.passes.budget import parse_memory
 
 HELP = "Profile solver-style passes over a store: I/O vs compute per block and phase"
 EXAMPLE = "ranktide profile data.zarr --passes 3 --rank 16 --out prof"
@@ -40,10 +43,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.diagnostics.profile import format_report, jsonable, profile_store, write_profile
-    from ranktide.errors import ConfigError
-    from ranktide.passes.budget import parse_memory
-
     if args.block_rows is not None and args.block_rows < 1:
         raise ConfigError(f"--block-rows {args.block_rows}: must be at least 1")
     budget = parse_memory(args.memory) if args.memory is not None else None

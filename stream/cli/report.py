@@ -5,6 +5,8 @@ from __future__ import annotations
 import argparse
 import json
 
+from ranktide.diagnostics.report import write_report
+
 HELP = "Plot a run (objective, gap, rank, singular values, path, profile) into PNGs + HTML"
 EXAMPLE = "ranktide report run --out run/report"
 
@@ -18,8 +20,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.diagnostics.report import write_report
-
     page = write_report(args.run_dir, args.out)
     figures = sorted(str(p) for p in page.parent.glob("*.png"))
     if args.json:

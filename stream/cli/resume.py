@@ -8,6 +8,10 @@ import sys
 import warnings
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
+from ranktide.cli.train import _summary, pass_printer, summary_line
+from ranktide.runs.checkpoint import CheckpointWarning
+from ranktide.runs.resume import resume
+from ranktide.signals import interrupted_message, stop_on_signals
 
 HELP = "Continue an interrupted run from its latest valid checkpoint"
 EXAMPLE = "ranktide resume run1 --max-passes 200"
@@ -39,11 +43,6 @@ def _warn_lines(caught: list) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.cli.train import _summary, pass_printer, summary_line
-    from ranktide.runs.checkpoint import CheckpointWarning
-    from ranktide.runs.resume import resume
-    from ranktide.signals import interrupted_message, stop_on_signals
-
     show = not (args.quiet or args.json)
     on_pass = pass_printer(show)
 

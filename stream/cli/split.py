@@ -6,6 +6,8 @@ import argparse
 import json
 import sys
 
+from ranktide.store.split import split_store
+
 HELP = "Split a store's rows into train and holdout stores (stratified for class targets)"
 EXAMPLE = (
     "ranktide split reviews.zarr --holdout 0.2 --seed 7 --out train.zarr "
@@ -27,8 +29,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.store.split import split_store
-
     res = split_store(
         args.store, args.out, args.out_holdout,
         holdout=args.holdout, seed=args.seed, overwrite=args.overwrite,

@@ -9,6 +9,10 @@ import sys
 from typing import Any
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
+from ranktide.errors import ConfigError
+from ranktide.runs.train import train
+from ranktide.signals import interrupted_message, stop_on_signals
+from ranktide.solver.greedy import _jsonable
 
 HELP = "Train a trace-norm regularized model on a store (one lam or a regularization path)"
 EXAMPLE = "ranktide train tickets.zarr --loss softmax --lam-frac 0.1 --out run1"
@@ -124,16 +128,11 @@ def _summary(res: Any) -> dict:
         out["path"] = [{"lam": p.lam, "score": p.score, "rank": p.rank, "passes": p.passes,
                         "status": p.status} for p in res.path]
         out["best_index"] = res.best_index
-    from ranktide.solver.greedy import _jsonable
 
     return _jsonable(out)
 
 
 def run(args: argparse.Namespace) -> int:
-    from ranktide.errors import ConfigError
-    from ranktide.runs.train import train
-    from ranktide.signals import interrupted_message, stop_on_signals
-
     if args.path is not None and args.valid is None:
         raise ConfigError("--path needs --valid STORE (the validation data that picks lam)")
     if args.valid is not None and args.path is None:

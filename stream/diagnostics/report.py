@@ -29,8 +29,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from ranktide.atomic import atomic_write_bytes
+from ranktide.atomic import atomic_write_bytes, load_npz
 from ranktide.errors import CheckpointError
+from ranktide.model import load_model
 
 __all__ = ["write_report", "read_history", "split_history"]
 
@@ -129,15 +130,12 @@ def _singular_values(run_dir: Path) -> np.ndarray | None:
     if not model_dir.is_dir():
         return None
     try:
-        from ranktide.model import load_model
-
         model = load_model(model_dir)
         s = getattr(model, "s", None)
         if s is not None:
             return np.sort(np.asarray(s, dtype=np.float64).ravel())[::-1]
     except Exception:  # an unreadable model leaves that plot out; the page says so
         pass
-    from ranktide.atomic import load_npz
 
     for f in sorted(model_dir.glob("*.npz")):
         try:

@@ -39,6 +39,8 @@ from ranktide.ingest.mmio import (
 )
 from ranktide.ingest.targets import TargetSource, WeightSource, open_targets, open_weights
 from ranktide.kernels import parse as kp
+from ranktide.passes.budget import parse_memory
+from ranktide.store import create_store
 from ranktide.store.format import DEFAULT_CODEC
 
 __all__ = ["IngestSummary", "ingest", "DUPLICATES"]
@@ -400,8 +402,6 @@ def _plan(memory: int) -> _Plan:
 
 
 def _parse_memory(memory: Any) -> int:
-    from ranktide.passes.budget import parse_memory
-
     return int(parse_memory(memory))
 
 
@@ -441,8 +441,6 @@ class _Progress:
 
 
 def _writer(out: Path, hdr: MatrixHeader, n_cols: int, tsrc: TargetSource | None, a: dict):
-    from ranktide.store import create_store
-
     return create_store(
         out,
         n_cols=n_cols,

@@ -32,6 +32,7 @@ from ranktide.ingest.mmio import (
     MAX_LINE_BYTES,
     MatrixHeader,
     _Chunker,
+    _convert_fallback,
     _Parser,
     check_readable,
 )
@@ -310,8 +311,6 @@ class WeightSource:
                     self._fail(st, line, buf)
                 n, n_fb = int(st[kp.ST_ENTRIES]), int(st[kp.ST_FALLBACK])
                 if n_fb:
-                    from ranktide.ingest.mmio import _convert_fallback
-
                     _convert_fallback(buf, ps, n_fb)
                 w = ps.vals[:n]
                 stop = int(st[kp.ST_POS])

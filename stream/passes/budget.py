@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from ranktide.errors import ConfigError
+from ranktide.kernels.csc import worth_transposing
 
 __all__ = ["parse_memory", "total_memory", "default_budget", "plan_blocks", "Plan",
            "format_bytes", "MAX_BLOCK_CSR_BYTES"]
@@ -251,7 +252,6 @@ def plan_blocks(
         rows = min(rows, int(max_block_bytes // csr_row) if csr_row > 0 else n, max(n, 1))
         return max(rows, 1)
 
-    from ranktide.kernels.csc import worth_transposing
 
     rows = _rows(per_row, room)
     transposed = 0

@@ -37,9 +37,12 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import ranktide.passes.engine as passes
 import scipy.sparse as sp
 from ranktide.errors import ConfigError
+from ranktide.passes.engine import BlockRecord, register_backend
 from ranktide.signals import StopRequested
+from ranktide.store import open_store
 
 __all__ = ["ClusterSpec", "parse_cluster", "cluster_client", "open_store_cached"]
 
@@ -156,8 +159,6 @@ def _restore_env(saved: dict[str, str]) -> None:
 @functools.lru_cache(maxsize=8)
 def open_store_cached(path: str, verify: bool = True) -> Any:
     """Open a store once per worker process (keyed by path and pid-local cache)."""
-    from ranktide.store import open_store
-
     return open_store(path, verify=verify)
 
 
@@ -312,8 +313,6 @@ def _open_remote(source_ref: Any) -> Any:
 
 def _timed_call(fn: Any, args: tuple, timed: bool) -> tuple[Any, dict[str, float], float]:
     """``fn(*args)`` with its seconds and (when ``timed``) its named phases."""
-    import ranktide.passes.engine as passes
-
     timer = passes.PhaseTimer() if timed else None
     passes._local.timer = timer
     t0 = time.perf_counter()
@@ -522,8 +521,6 @@ def _with_worker_fold(rec: Any, worker: dict) -> Any:
 
 
 def _block_record(done: Any, index: int, rec: dict, *, client_fold_s: float) -> Any:
-    from ranktide.passes.engine import BlockRecord
-
     io = rec["io"]
     fold_s = rec["fold_s"] + client_fold_s
     return BlockRecord(
@@ -595,8 +592,6 @@ class _RangeNnz:
 
 def register() -> None:
     """Make ``backend="dask"`` available to :func:`ranktide.passes.engine.run_pass`."""
-    from ranktide.passes.engine import register_backend
-
     register_backend("dask", dask_backend)
 
 

@@ -32,8 +32,18 @@ from typing import Any
 
 import numpy as np
 from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.kernels.compensated import (
+    compensated_add,
+    compensated_combine,
+    csc_t_matmul_compensated,
+)
+from ranktide.kernels.csc import BlockCSC, block_csc, csc_t_matmul_accumulate
+from ranktide.kernels.products import ProductBuffers, block_products, prepare_operands
+from ranktide.kernels.sparse import csr_t_matmul_accumulate
 from ranktide.losses import check_loss_source, get_loss
 from ranktide.passes.engine import PassProfile, phase, run_pass
+from ranktide.passes.kernel_path import CHOOSER
+from ranktide.solver.refine_stream import write_projection_block
 from ranktide.store.memory_source import as_source
 
 __all__ = [
@@ -279,8 +289,6 @@ class _State:
 
 
 def _state(req: PassRequest, where: str) -> _State:
-    from ranktide.kernels.products import prepare_operands
-
     ops = prepare_operands(
         U=req.U,
         s=req.s,
@@ -310,9 +318,6 @@ def _state(req: PassRequest, where: str) -> _State:
 
 def _xt_accumulate(X: Any, D: np.ndarray, out: np.ndarray) -> None:
     """``out += X^T D`` with the deterministic kernels (CSR block or its transpose)."""
-    from ranktide.kernels.csc import BlockCSC, csc_t_matmul_accumulate
-    from ranktide.kernels.sparse import csr_t_matmul_accumulate
-
     if isinstance(X, BlockCSC):
         csc_t_matmul_accumulate(X, D, out)
     else:
@@ -328,10 +333,6 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
     forms ``R [V, Omega]``; ``X^T (R [V, Omega])`` (and ``X^T R``) is left
     as a pending term for the combine.
     """
-    from ranktide.kernels.csc import block_csc
-    from ranktide.kernels.products import ProductBuffers, block_products
-    from ranktide.passes.kernel_path import CHOOSER
-
     t0 = time.perf_counter()
     n = int(block.stop - block.start)
     k = st.VO.shape[0]
@@ -361,8 +362,6 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
         D = R @ st.VO
     proj = None
     if st.keep_projections and st.projections_dir is not None:
-        from ranktide.solver.refine_stream import write_projection_block
-
         file = write_projection_block(st.projections_dir, int(block.start), XQ, block.targets,
                                       block.weights)
         proj = [Projection(start=int(block.start), stop=int(block.stop), XQ=None, targets=None,
@@ -402,9 +401,6 @@ def _add_term(acc: _Partial, name: str, X: Any, D: np.ndarray) -> None:
     on a CSR block the term is scattered into a zeroed ``d x m`` buffer
     (reused across blocks, zeroed again by the add).
     """
-    from ranktide.kernels.compensated import compensated_add, csc_t_matmul_compensated
-    from ranktide.kernels.csc import BlockCSC
-
     S = getattr(acc, name)
     if S is None:
         S = np.zeros((X.shape[1], D.shape[1]))
@@ -427,8 +423,6 @@ def _add_term(acc: _Partial, name: str, X: Any, D: np.ndarray) -> None:
 
 def _materialize(acc: _Partial) -> None:
     """Add the pending terms of ``acc`` into its d-row accumulators."""
-    from ranktide.passes.kernel_path import CHOOSER
-
     for X, D, R, (key, path, block_s, nnz) in acc.terms:
         t0 = time.perf_counter()
         with phase("xt_products"):
@@ -441,8 +435,6 @@ def _materialize(acc: _Partial) -> None:
 
 def _combine_sums(acc: _Partial, p: _Partial) -> None:
     """``acc += p`` for the d-row accumulators of an already reduced partial ``p``."""
-    from ranktide.kernels.compensated import compensated_combine
-
     for name in ("G_VO", "G"):
         S2 = getattr(p, name)
         if S2 is None:

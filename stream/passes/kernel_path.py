@@ -22,6 +22,8 @@ import contextlib
 import threading
 from collections.abc import Hashable, Iterator
 
+from ranktide.kernels.csc import worth_transposing
+
 __all__ = ["PathChooser", "CHOOSER"]
 
 _PROBES = 2  # timings per path before choosing
@@ -49,8 +51,6 @@ class PathChooser:
         sorted_ids : bool
             Column ids are sorted within rows (needed for identical results).
         """
-        from ranktide.kernels.csc import worth_transposing
-
         if not sorted_ids or nnz <= 0:
             return "csr"
         if self._forced is not None:

@@ -24,7 +24,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from ranktide.atomic import atomic_write_bytes, atomic_write_json, fsync_dir
+from ranktide import __version__
+from ranktide.atomic import atomic_write_bytes, atomic_write_json, fsync_dir, remove_path
 from ranktide.errors import CheckpointError, ConfigError, OutputExistsError
 from ranktide.runs.checkpoint import CheckpointManager, CheckpointSchedule, canonical_json
 from ranktide.signals import StopFlag
@@ -202,8 +203,6 @@ class RunDir:
         OutputExistsError
             When ``path`` already holds something and ``overwrite`` is false.
         """
-        from ranktide import __version__
-
         p = Path(path)
         if p.exists() and (not p.is_dir() or any(p.iterdir())):
             if not overwrite:
@@ -211,7 +210,6 @@ class RunDir:
                     f"{p}: already exists; pass --overwrite to replace it, or continue it with "
                     f"ranktide resume {p}"
                 )
-            from ranktide.atomic import remove_path
 
             remove_path(p)
         try:

@@ -20,7 +20,14 @@ from typing import Any
 
 import numpy as np
 from ranktide.errors import ConfigError, InputError
+from ranktide.losses import check_loss_source, get_loss
+from ranktide.model import Model, save_model
+from ranktide.passes.engine import run_pass
+from ranktide.runs.checkpoint import CheckpointSchedule
+from ranktide.runs.rundir import RunDir, RunRecorder
+from ranktide.scoring.evaluate import evaluate
 from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverResult, _jsonable
+from ranktide.store.memory_source import as_source
 
 __all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDATION_METRIC"]
 
@@ -121,8 +128,6 @@ class TrainResult:
 
 def _validate(*, loss, lam, lam_frac, path, path_min_frac, valid, tol, max_passes,
               max_seconds, class_weight) -> None:
-    from ranktide.losses import get_loss
-
     get_loss(loss)
     given = [name for name, v in (("lam", lam), ("lam_frac", lam_frac), ("path", path))
              if v is not None]
@@ -175,8 +180,6 @@ def resolve_class_weights(class_weight: Any, src: Any, *, backend: str = "serial
     k = int(src.n_outputs)
     where = "class weights"
     if isinstance(class_weight, str) and class_weight == "balanced":
-        from ranktide.passes.engine import run_pass
-
         counts = run_pass(src, _count_block, _sum_combine, state=k, block_rows=block_rows,
                           backend=backend, desc="class counts")
         n = float(counts.sum())
@@ -236,8 +239,6 @@ def _fingerprint(src: Any) -> str:
 
 
 def _model(src: Any, loss: str, fit: SolverResult, meta: dict) -> Any:
-    from ranktide.model import Model
-
     names = getattr(src, "output_names", None)
     return Model(U=fit.U, s=fit.s, V=fit.V, b=fit.b, loss=loss,
                  names=list(names) if names else None, meta=meta)
@@ -254,8 +255,6 @@ def _fit_meta(fit: SolverResult, fingerprint: str, grad_b: float) -> dict:
 
 
 def _validation(model: Any, valid: Any, loss: str, block_rows: int | None) -> tuple[dict, float]:
-    from ranktide.scoring.evaluate import evaluate
-
     metrics = evaluate(model, valid, block_rows=block_rows)
     key, _ = VALIDATION_METRIC[loss]
     return metrics, float(metrics[key])
@@ -395,11 +394,8 @@ def train(
     _validate(loss=loss, lam=lam, lam_frac=lam_frac, path=path, path_min_frac=path_min_frac,
               valid=valid, tol=tol, max_passes=max_passes, max_seconds=max_seconds,
               class_weight=class_weight)
-    from ranktide.runs.checkpoint import CheckpointSchedule
 
     CheckpointSchedule(seconds=checkpoint_seconds, passes=checkpoint_passes)  # validates them
-    from ranktide.losses import check_loss_source
-    from ranktide.store.memory_source import as_source
 
     opened = isinstance(source, (str, os.PathLike))
     src = as_source(source, targets=targets, weights=weights)
@@ -455,8 +451,6 @@ def train(
             ctx.finished = True
             ckpt.checkpoint(solver.state)
         if run is not None:
-            from ranktide.model import save_model
-
             save_model(run.model_dir, result.model, overwrite=True)
             result = _with(result, run_dir=str(run.path))
         return result
@@ -515,8 +509,6 @@ def _checkpointing(run, solver, resume_point, seconds, passes, stop):
         ctx = _RunContext(solver)
     if run is None:
         return ctx, None
-    from ranktide.runs.checkpoint import CheckpointSchedule
-    from ranktide.runs.rundir import RunRecorder
 
     sched = CheckpointSchedule(seconds=seconds, passes=passes)
     ctx.recorder = RunRecorder(run, schedule=sched, stop=stop, context=ctx)
@@ -525,8 +517,6 @@ def _checkpointing(run, solver, resume_point, seconds, passes, stop):
 
 def _create_run(out, src, cfg: SolverConfig, fingerprint: str, *, overwrite: bool,
                 extra: dict) -> Any:
-    from ranktide.runs.rundir import RunDir
-
     settings = {
         "loss": cfg.loss, "lam": cfg.lam, "lam_frac": cfg.lam_frac, "tol": cfg.tol,
         "max_passes": cfg.max_passes, "seed": cfg.seed,
@@ -587,7 +577,6 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
                 block_rows, ctx) -> TrainResult:
     from dataclasses import asdict
 
-    from ranktide.model import Model
 
     pos = ctx.path
     if pos is None:  # a fresh path (or a resume from inside the lam_max phase)

@@ -17,7 +17,10 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.model import load_model
+from ranktide.passes.dask_backend import map_blocks_ordered
 from ranktide.scoring.metrics import make_metrics
+from ranktide.store import open_store
 
 __all__ = [
     "evaluate",
@@ -112,8 +115,6 @@ class DataSource:
             if self._store is None:
                 raise ConfigError("--cluster: evaluate and predict on a cluster need a store "
                                   "path, not in-memory arrays")
-            from ranktide.passes.dask_backend import map_blocks_ordered
-
             ranges = self._store.block_ranges(rows=rows)
             yield from map_blocks_ordered(self._store, ranges, fn, state)
             return
@@ -180,8 +181,6 @@ def open_source(source: Any) -> DataSource:
         When in-memory input is malformed.
     """
     if isinstance(source, (str, os.PathLike)):
-        from ranktide.store import open_store
-
         store = open_store(source)
         return _from_store(store, str(source))
     if hasattr(source, "blocks") and hasattr(source, "shape"):
@@ -205,8 +204,6 @@ def _from_store(store: Any, name: str) -> DataSource:
 def as_model(model: Any) -> Any:
     """A loaded model: ``model`` itself, or :func:`ranktide.model.load_model` of a path."""
     if isinstance(model, (str, os.PathLike)):
-        from ranktide.model import load_model
-
         return load_model(model)
     return model
 

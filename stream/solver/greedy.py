@@ -40,9 +40,19 @@ from typing import Any
 import numpy as np
 from ranktide.errors import CheckpointError, ConfigError
 from ranktide.kernels.svd import svd
+from ranktide.losses import get_loss, intercept_from_sums
+from ranktide.passes.budget import plan_blocks
+from ranktide.passes.engine import PassProfile
+from ranktide.passes.gradient import PassRequest, gradient_pass
 from ranktide.signals import StopRequested
 from ranktide.solver.refine import _blas_one_thread, refine
+from ranktide.solver.refine_stream import (
+    MemoryProjections,
+    ScratchProjections,
+    refine_streamed,
+)
 from ranktide.solver.subspace import orth_against
+from ranktide.store.memory_source import as_source
 
 __all__ = ["SolverConfig", "SolverState", "GreedySolver", "SolverResult",
            "sigma1_lower_bound", "gap_estimate"]
@@ -147,8 +157,6 @@ class SolverConfig:
     rotation_size: int | None = None
 
     def __post_init__(self) -> None:
-        from ranktide.losses import get_loss
-
         get_loss(self.loss)
         if self.lam is not None and self.lam_frac is not None:
             raise ConfigError("solver: give lam or lam_frac, not both")
@@ -536,8 +544,6 @@ class GreedySolver:
                  progress: bool = False, pass_fn: Callable | None = None,
                  stop: Callable[[], bool] | None = None,
                  scratch_dir: str | os.PathLike | None = None) -> None:
-        from ranktide.store.memory_source import as_source
-
         self.config = config
         self.source = as_source(source)
         self.n, self.d = (int(x) for x in self.source.shape)
@@ -549,9 +555,7 @@ class GreedySolver:
         self.scratch_root = None if scratch_dir is None else os.fspath(scratch_dir)
         self._own_scratch: str | None = None
         self._pass_scratch: str | None = None  # this iteration's files, removed after it
-        if pass_fn is None:
-            from ranktide.passes.gradient import gradient_pass as pass_fn
-        self._pass_fn = pass_fn
+        self._pass_fn = gradient_pass if pass_fn is None else pass_fn
         self.state = state if state is not None else self.initial_state()
         self._check_state(self.state)
         self._rng = _generator(self.state.rng_state)
@@ -578,8 +582,6 @@ class GreedySolver:
                 f"fit data with {self.d} features and {self.k} outputs; resume on the same store")
 
     def _plan_memory(self) -> None:
-        from ranktide.passes.budget import plan_blocks
-
         cfg = self.config
         r = max(self.state.rank, 1)
         plan = plan_blocks(self.source, budget=cfg.memory, rank=r + cfg.expand_size,
@@ -648,9 +650,6 @@ class GreedySolver:
 
     # ------------------------------------------------------------ one pass
     def _run_pass(self):
-        from ranktide.passes.engine import PassProfile
-        from ranktide.passes.gradient import PassRequest
-
         cfg, st = self.config, self.state
         rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
         st.Psi = _fill(st.Psi, st.U, cfg.expand_size, self._rng, cap=rot + cfg.expand_size)
@@ -689,7 +688,6 @@ class GreedySolver:
         frequencies), squared ``b - grad_b``, multilabel ``sigmoid(b) - grad_b``;
         :func:`ranktide.losses.intercept_from_sums` turns them into ``b0``.
         """
-        from ranktide.losses import intercept_from_sums
         from scipy.special import expit, softmax
 
         b, g = self.state.b, res.grad_b
@@ -792,12 +790,6 @@ class GreedySolver:
 
     def _refine_streamed(self, proj, mode: str, N0: np.ndarray, b0: np.ndarray,
                          rel_gap: float):
-        from ranktide.solver.refine_stream import (
-            MemoryProjections,
-            ScratchProjections,
-            refine_streamed,
-        )
-
         cfg = self.config
         if mode == "blocks":
             blocks: Any = MemoryProjections([(p.XQ, p.targets, p.weights) for p in proj])

@@ -26,6 +26,8 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError
+from ranktide.kernels import losses as kl
+from ranktide.kernels.dense import add_row, extrapolate
 from ranktide.kernels.svd import svd
 from ranktide.signals import StopRequested
 
@@ -253,8 +255,6 @@ class _KernelLoss:
     """
 
     def __init__(self, loss: str, Y, w: np.ndarray, k: int) -> None:
-        from ranktide.kernels import losses as kl
-
         self.k = k
         self.w = np.ascontiguousarray(w, dtype=np.float64)
         if loss == "softmax":
@@ -284,14 +284,10 @@ class _KernelLoss:
     @staticmethod
     def extrapolate(X: np.ndarray, P: np.ndarray, beta: float, out: np.ndarray) -> None:
         """``out = X + beta (X - P)`` in one fused pass."""
-        from ranktide.kernels.dense import extrapolate
-
         extrapolate(X, P, beta, out)
 
     @staticmethod
     def add_row(Z: np.ndarray, c: np.ndarray) -> None:
-        from ranktide.kernels.dense import add_row
-
         add_row(Z, c)
 
 

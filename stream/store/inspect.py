@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from ranktide.store import open_store
 
 __all__ = ["inspect_store", "QUANTILES", "format_inspection"]
 
@@ -165,8 +166,6 @@ def inspect_store(store: Any, *, block_bytes: int | None = None) -> dict[str, An
         ``compression_ratio``, ``row_nnz`` (quantiles, mean), ``empty_rows``,
         ``empty_cols``, ``targets`` (per kind, or None), ``weights`` (or None).
     """
-    from ranktide.store import open_store
-
     own = not hasattr(store, "blocks")
     st = open_store(store) if own else store
     try:

@@ -18,6 +18,8 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError
+from ranktide.store.reader import Block as _StoreBlock
+from ranktide.store.reader import open_store
 
 __all__ = ["MemorySource", "as_source", "DEFAULT_BLOCK_BYTES", "split_ranges"]
 
@@ -25,12 +27,6 @@ __all__ = ["MemorySource", "as_source", "DEFAULT_BLOCK_BYTES", "split_ranges"]
 DEFAULT_BLOCK_BYTES = 64 * 2**20
 
 _KINDS = ("classes", "values", "tags")
-
-try:  # the store's Block when it is available, so callers see one type
-    from ranktide.store import Block as _StoreBlock
-except ImportError:  # pragma: no cover - only before the store module exists
-    _StoreBlock = None
-
 
 @dataclass(frozen=True)
 class _MemBlock:
@@ -361,8 +357,6 @@ def as_source(
     if hasattr(source, "block_ranges") and hasattr(source, "read_block"):
         return source
     if isinstance(source, (str, os.PathLike)):
-        from ranktide.store import open_store
-
         return open_store(source)
     if isinstance(source, tuple):
         if not 2 <= len(source) <= 3:

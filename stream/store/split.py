@@ -15,6 +15,8 @@ from typing import Any
 
 import numpy as np
 from ranktide.errors import ConfigError, OutputExistsError
+from ranktide.store.reader import open_store
+from ranktide.store.writer import create_store
 
 __all__ = ["split_store", "holdout_mask_counts"]
 
@@ -137,8 +139,6 @@ def split_store(
         ``train`` and ``holdout`` paths and row counts, ``seed``,
         ``stratified``, and for class targets ``holdout_per_class``.
     """
-    from ranktide.store import create_store, open_store
-
     own = not hasattr(store, "blocks")
     st = open_store(store) if own else store
     try:
