@@ -404,7 +404,7 @@ def test_workqueue_layer_is_serialized(tmp_path):
     env = dict(os.environ, NUMBA_THREADING_LAYER="workqueue")
     proc = subprocess.run([sys.executable, "-c", _WORKQUEUE_SCRIPT], env=env,
                           capture_output=True, text=True, timeout=240,
-                          cwd=os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+                          cwd=os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)))))
     assert proc.returncode == 0, proc.stderr[-2000:]
     got = json.loads(proc.stdout.strip().splitlines()[-1])
     assert got["info"]["layer"] == "workqueue"

@@ -33,7 +33,7 @@ from ranktide.solver.greedy import (
 from ranktide.solver.refine import refine
 from scipy.special import expit, logsumexp
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def _problem(loss: str, *, n=200, d=30, k=5, seed=0):

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 
 _spec = importlib.util.spec_from_file_location("bench_ingest", ROOT / "tools" / "bench_ingest.py")
 bench = importlib.util.module_from_spec(_spec)

@@ -93,7 +93,7 @@ def test_training_under_a_small_budget_streams_the_refinement(loss, tmp_path):
     import sys
     from pathlib import Path
 
-    sys.path.insert(0, str(Path(__file__).parent))
+    sys.path.insert(0, str(Path(__file__).parents[1]))
     from ranktide.runs.train import train
     from test_solver_internals import _problem
 

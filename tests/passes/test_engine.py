@@ -23,7 +23,7 @@ from ranktide.passes.budget import Plan, parse_memory, plan_blocks, total_memory
 from ranktide.passes.engine import PassProfile, phase, register_backend, run_pass
 from ranktide.store.memory_source import MemorySource, as_source, split_ranges
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 
 def _data(n=300, d=40, k=5, seed=0):

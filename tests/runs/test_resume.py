@@ -31,7 +31,7 @@ import scipy.sparse as sp
 from ranktide.cli.main import main
 from ranktide.errors import ModelError
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 N_ROWS = 200
 SETTINGS = [
     "--loss", "softmax", "--lam-frac", "0.05", "--tol", "1e-6", "--seed", "3",

@@ -28,7 +28,7 @@ from ranktide.runs.checkpoint import CheckpointManager, CheckpointSchedule, Chec
 from ranktide.runs.rundir import RUN_VERSION, RunDir, check_resume_compatible
 from ranktide.signals import StopFlag, interrupted_message, stop_on_signals
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 
 def _state(seed: int) -> tuple[dict[str, np.ndarray], dict]:

@@ -28,7 +28,7 @@ from ranktide.store import write_store
 from scipy.special import softmax
 from sklearn import metrics as skm
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # RFC 2083, section 3.1
 D, K, N = 40, 7, 230
 

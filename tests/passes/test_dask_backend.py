@@ -1,7 +1,7 @@
 """dask.distributed backend: same pass partials as the serial backend, worker loss.
 
 The serial backend is the reference here; the gradient pass itself is checked
-against numpy/scipy in tests/test_gradient_pass.py.
+against numpy/scipy in tests/passes/test_gradient.py.
 """
 
 from __future__ import annotations
