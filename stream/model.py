@@ -16,7 +16,6 @@ half-written model never appears under the final name.
 from __future__ import annotations
 
 import json
-import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from importlib import metadata as _metadata
@@ -28,6 +27,7 @@ import scipy.sparse as sp
 from ranktide import __version__
 from ranktide.atomic import atomic_dir, atomic_write_json, load_npz, save_npz
 from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.jsondata import json_data
 from ranktide.kernels.sparse import csr_matmul_dense
 from ranktide.kernels.svd import svd
 
@@ -263,26 +263,6 @@ def _check_names(names: Any, k: int, where: str) -> list[str]:
     return names
 
 
-def _jsonable(value: Any, key: str) -> Any:
-    """Convert numpy scalars / arrays in metadata to JSON types."""
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, np.ndarray):
-        value = value.tolist()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, Mapping):
-        return {str(k): _jsonable(v, f"{key}.{k}") for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v, key) for v in value]
-    if value is None or isinstance(value, (str, int, float, bool)):
-        return value
-    raise ConfigError(
-        f"model metadata {key!r}: {type(value).__name__} is not JSON data; pass numbers, "
-        "strings, lists or dicts"
-    )
-
-
 def _versions() -> dict[str, str | None]:
     out: dict[str, str | None] = {}
     for pkg in _VERSIONED:
@@ -330,7 +310,7 @@ def save_model(
     for key, value in merged.items():
         if key in _STRUCTURAL:
             continue
-        doc[str(key)] = _jsonable(value, str(key))
+        doc[str(key)] = json_data(value, f"model metadata {key!r}")
     doc.update({
         "format": MODEL_FORMAT,
         "format_version": MODEL_VERSION,

@@ -10,9 +10,9 @@ from typing import Any
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
 from ranktide.errors import ConfigError
+from ranktide.jsondata import json_data
 from ranktide.runs.train import train
 from ranktide.signals import interrupted_message, stop_on_signals
-from ranktide.solver.greedy import _jsonable
 
 HELP = "Train a trace-norm regularized model on a store (one lam or a regularization path)"
 EXAMPLE = "ranktide train tickets.zarr --loss softmax --lam-frac 0.1 --out run1"
@@ -129,7 +129,7 @@ def _summary(res: Any) -> dict:
                         "status": p.status} for p in res.path]
         out["best_index"] = res.best_index
 
-    return _jsonable(out)
+    return json_data(out)
 
 
 def run(args: argparse.Namespace) -> int:

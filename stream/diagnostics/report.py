@@ -32,6 +32,7 @@ import numpy as np
 from ranktide.atomic import atomic_write_bytes, load_npz
 from ranktide.errors import CheckpointError
 from ranktide.model import load_model
+from ranktide.runs.rundir import read_history_file
 
 __all__ = ["write_report", "read_history", "split_history"]
 
@@ -40,23 +41,8 @@ PATH_KINDS = frozenset({"path", "lam", "path_step", "lam_done", "step"})
 
 # --------------------------------------------------------------------- reading
 def read_history(run_dir: str | os.PathLike) -> list[dict[str, Any]]:
-    """Every JSON-object line of ``RUN/history.jsonl``; torn or foreign lines are skipped."""
-    path = Path(run_dir) / "history.jsonl"
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        return []
-    except OSError as exc:
-        raise CheckpointError(f"{path}: unreadable ({exc.strerror}); check permissions") from None
-    out = []
-    for line in text.splitlines():
-        try:
-            rec = json.loads(line)
-        except ValueError:
-            continue
-        if isinstance(rec, dict):
-            out.append(rec)
-    return out
+    """Every complete record of ``RUN/history.jsonl`` (a torn last line is skipped)."""
+    return read_history_file(Path(run_dir) / "history.jsonl")
 
 
 def _is_path_record(rec: Mapping[str, Any]) -> bool:

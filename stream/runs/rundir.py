@@ -38,6 +38,7 @@ __all__ = [
     "RunRecorder",
     "check_resume_compatible",
     "check_format_version",
+    "read_history_file",
 ]
 
 RUN_FORMAT = "ranktide-run"
@@ -296,20 +297,8 @@ class RunDir:
         self._history_len = n + 1
 
     def read_history(self) -> list[dict[str, Any]]:
-        """Every complete record of ``history.jsonl`` (a torn last line is skipped)."""
-        try:
-            text = self.history_path.read_text(encoding="utf-8")
-        except FileNotFoundError:
-            return []
-        records = []
-        for line in text.splitlines():
-            try:
-                rec = json.loads(line)
-            except ValueError:
-                break
-            if isinstance(rec, dict):
-                records.append(rec)
-        return records
+        """Every complete record of ``history.jsonl`` (see :func:`read_history_file`)."""
+        return read_history_file(self.history_path)
 
     def truncate_history(self, n_records: int) -> None:
         """Keep the first ``n_records`` records (those a checkpoint accounts for).
@@ -423,3 +412,31 @@ class RunRecorder:
             else:
                 solver[k] = v
         return solver, ctx
+
+
+def read_history_file(path: str | os.PathLike) -> list[dict[str, Any]]:
+    """Every complete record of a run's ``history.jsonl``.
+
+    Records are appended one line at a time, so only the last line can be torn
+    (a kill in the middle of a write): it is skipped. A line that is not a JSON
+    object anywhere else means the file was damaged or edited; the records
+    before it are returned (a resumed run rewrites the file from its checkpoint).
+    A missing file has no records.
+    """
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        return []
+    except OSError as exc:
+        raise CheckpointError(f"{p}: unreadable ({exc.strerror}); check permissions") from None
+    records = []
+    for line in text.splitlines():
+        try:
+            rec = json.loads(line)
+        except ValueError:
+            break
+        if not isinstance(rec, dict):
+            break
+        records.append(rec)
+    return records

@@ -20,13 +20,14 @@ from typing import Any
 
 import numpy as np
 from ranktide.errors import ConfigError, InputError
+from ranktide.jsondata import json_data
 from ranktide.losses import check_loss_source, get_loss
 from ranktide.model import Model, save_model
 from ranktide.passes.engine import run_pass
 from ranktide.runs.checkpoint import CheckpointSchedule
 from ranktide.runs.rundir import RunDir, RunRecorder
 from ranktide.scoring.evaluate import evaluate
-from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverResult, _jsonable
+from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverResult
 from ranktide.store.memory_source import as_source
 
 __all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDATION_METRIC"]
@@ -245,7 +246,7 @@ def _model(src: Any, loss: str, fit: SolverResult, meta: dict) -> Any:
 
 
 def _fit_meta(fit: SolverResult, fingerprint: str, grad_b: float) -> dict:
-    return _jsonable({
+    return json_data({
         "lam": fit.lam, "lam_max": fit.lam_max, "lam_max_settled": fit.lam_max_settled,
         "store_fingerprint": fingerprint,
         "objective": fit.objective, "gap": fit.gap, "gap_is_estimate": True,
@@ -275,7 +276,7 @@ class _Recorder:
         self.history: list[dict] = []
 
     def record(self, rec: dict) -> None:
-        line = _jsonable(dict(rec, kind="pass"))
+        line = json_data(dict(rec, kind="pass"))
         self.history.append(line)
         if self.run is not None:
             self.run.append_history(line)
@@ -292,7 +293,7 @@ class _Recorder:
 
     def event(self, rec: dict) -> None:
         if self.run is not None:
-            self.run.append_history(_jsonable(rec))
+            self.run.append_history(json_data(rec))
 
 
 def train(
@@ -527,7 +528,7 @@ def _create_run(out, src, cfg: SolverConfig, fingerprint: str, *, overwrite: boo
         "dense_gradient": cfg.dense_gradient, **extra,
     }
     store_path = getattr(src, "path", None)
-    return RunDir.create(out, settings=_jsonable(settings), store_path=store_path,
+    return RunDir.create(out, settings=json_data(settings), store_path=store_path,
                          fingerprint=fingerprint, overwrite=overwrite)
 
 
@@ -625,7 +626,7 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
         pt = PathPoint(index=j, lam=lam_j, objective=fit.objective, gap=fit.gap,
                        sigma_ratio=fit.sigma_ratio, rank=fit.rank,
                        passes=solver.state.passes - pos["passes_before"], status=fit.status,
-                       metrics=_jsonable(metrics), score=score)
+                       metrics=json_data(metrics), score=score)
         points.append(pt)
         best = _point_best(points, higher)
         if best == len(points) - 1:
@@ -634,7 +635,7 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
                    "objective": fit.objective, "gap_estimate": fit.gap,
                    "sigma_ratio": fit.sigma_ratio, "status": fit.status,
                    "val_metric": score, "val_metric_name": f"validation {key}",
-                   "validation": _jsonable(metrics), "best_lam": points[best].lam,
+                   "validation": json_data(metrics), "best_lam": points[best].lam,
                    "passes": pt.passes})
         if fit.status in ("callback", "max_seconds"):
             # unfinished value: the checkpoint keeps the position inside it

@@ -39,6 +39,7 @@ from typing import Any
 
 import numpy as np
 from ranktide.errors import CheckpointError, ConfigError
+from ranktide.jsondata import json_data
 from ranktide.kernels.svd import svd
 from ranktide.losses import get_loss, intercept_from_sums
 from ranktide.passes.budget import plan_blocks
@@ -186,20 +187,6 @@ class SolverConfig:
 # ---------------------------------------------------------------- state
 
 
-def _jsonable(x: Any) -> Any:
-    if isinstance(x, float) and not math.isfinite(x):
-        return None
-    if isinstance(x, (np.floating,)):
-        return _jsonable(float(x))
-    if isinstance(x, (np.integer,)):
-        return int(x)
-    if isinstance(x, dict):
-        return {str(k): _jsonable(v) for k, v in x.items()}
-    if isinstance(x, (list, tuple)):
-        return [_jsonable(v) for v in x]
-    return x
-
-
 # The refinement also stops once the decrease of F over its last check interval is at
 # most this fraction of its whole decrease (ranktide.solver.refine.refine, ``stall``): the outer
 # loop gains nothing from a subproblem solved past its subspace's worth. Measured on the
@@ -320,8 +307,8 @@ class SolverState:
         # keep each array's memory order (C or Fortran): BLAS rounds differently by layout,
         # and an exact resume needs the same products as the uninterrupted run (np.save keeps it)
         arrays = {name: np.asarray(getattr(self, name), dtype=np.float64) for name in _ARRAYS}
-        meta = {name: _jsonable(getattr(self, name)) for name in _SCALARS}
-        meta["rng_state"] = _jsonable(self.rng_state)
+        meta = {name: json_data(getattr(self, name)) for name in _SCALARS}
+        meta["rng_state"] = json_data(self.rng_state)
         meta["state_version"] = STATE_VERSION
         return arrays, meta
 
