@@ -8,43 +8,41 @@ Given an orthonormal basis ``Q`` (d x q) and the cached dense projections
 which equals the full objective at ``W = Q N`` because ``||Q N||_* = ||N||_*``.
 Nothing here touches the sparse data.
 
-Method (chosen after measuring, see :func:`refine`): accelerated proximal
-gradient (FISTA, Beck & Teboulle 2009) with singular value thresholding as the
-prox of the trace norm (Cai, Candes & Shen 2010), function-value restart
-(O'Donoghue & Candes 2015) and backtracking on the step (started from, and
-capped by, a proven Lipschitz bound). For the squared loss the intercept is
-eliminated in closed form and every step works on q x q / q x k sufficient
-statistics only.
+Method (chosen after measuring, see :func:`refine`): the accelerated proximal
+gradient loop of :mod:`ranktide.solver.apg`, driven here by two oracles:
+:class:`DenseOracle` (softmax, multilabel: the projections and the n x k
+scores of its iterates in memory) and :class:`SquaredOracle` (the squared
+loss: q x q / q x k sufficient statistics, no n x k work per step).
 """
 
 from __future__ import annotations
 
 import contextlib
+import weakref
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError
 from ranktide.kernels import losses as kl
 from ranktide.kernels.dense import add_row, extrapolate
-from ranktide.kernels.svd import svd
-from ranktide.signals import StopRequested
+from ranktide.solver.apg import ApgProgress, ApgResult, Curvature, apg, certificate, svt
 
-__all__ = ["RefineResult", "refine", "svt", "loss_and_residual"]
+__all__ = ["RefineResult", "refine", "svt", "certificate", "loss_and_residual", "DenseOracle",
+           "SquaredOracle", "refine_result", "CURVATURE"]
 
-_SLACK = 0.0
 # Score matrices with fewer entries than this use vectorized numpy instead of the fused
 # parallel kernels. Measured on the shared 2-core machine (n = 3000, k = 50, q = 20): numpy
 # 9 ms per step, the kernels 59 ms with 2 threads (their thread team stalls when the cores
 # are shared) and 7 ms with 1; below ~1e6 entries the kernels' gain is not worth that risk.
 _KERNEL_MIN_ENTRIES = 1_000_000
-_SHRINK = 1.25
 _LOSSES = ("softmax", "squared", "multilabel")
 # Curvature bound of each loss in the scores: the Hessian of logsumexp is
 # diag(p) - p p^T, whose largest eigenvalue is <= 1/2; sigmoid' <= 1/4;
 # the squared loss has Hessian I (standard bounds, e.g. Boehning 1992 for softmax).
-_CURVATURE = {"softmax": 0.5, "multilabel": 0.25, "squared": 1.0}
+CURVATURE = {"softmax": 0.5, "multilabel": 0.25, "squared": 1.0}
 
 
 @dataclass(frozen=True)
@@ -95,31 +93,6 @@ class RefineResult:
 
 
 # ---------------------------------------------------------------- helpers
-
-
-def svt(M: np.ndarray, thresh: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Singular value thresholding: the prox of ``thresh * ||.||_*``.
-
-    Parameters
-    ----------
-    M : ndarray, shape (q, k)
-    thresh : float
-        Non-negative threshold.
-
-    Returns
-    -------
-    A : ndarray, shape (q, r)
-    s : ndarray, shape (r,)
-        ``max(sigma - thresh, 0)`` restricted to the positive ones.
-    B : ndarray, shape (k, r)
-        So that the prox is ``A @ diag(s) @ B.T`` (Cai, Candes & Shen 2010).
-    """
-    if M.size == 0:
-        return np.zeros((M.shape[0], 0)), np.zeros(0), np.zeros((M.shape[1], 0))
-    u, sig, vt = svd(M)
-    shrunk = sig - thresh
-    keep = shrunk > 0.0
-    return u[:, keep], shrunk[keep], vt[keep].T
 
 
 def _as_array(parts, name: str):
@@ -291,16 +264,6 @@ class _KernelLoss:
         add_row(Z, c)
 
 
-def _certificate(GN: np.ndarray, N: np.ndarray, nuc: float, F: float, lam: float) -> float:
-    """Relative conditional-gradient gap bound of the subproblem (DESIGN section 2)."""
-    if GN.size == 0:
-        return 0.0
-    sigma1 = float(np.linalg.norm(GN, 2))
-    tau = F / lam
-    gap = float(np.sum(GN * N)) + lam * nuc + tau * max(0.0, sigma1 - lam)
-    return max(gap, 0.0) / max(abs(F), 1e-300)
-
-
 def _blas_one_thread():
     """Limit BLAS to one thread for the refinement's thin products, when threadpoolctl exists.
 
@@ -332,6 +295,137 @@ def _validate(A, N0, b0, lam, tol, max_iter, loss):
         )
 
 
+# ---------------------------------------------------------------- oracles
+
+
+class _Scores:
+    """Handle of a point's n x k scores; the buffer returns to its pool when dropped."""
+
+    __slots__ = ("Z", "__weakref__")
+
+    def __init__(self, Z: np.ndarray, pool: list | None) -> None:
+        self.Z = Z
+        if pool is not None:
+            weakref.finalize(self, pool.append, Z)
+
+
+class DenseOracle:
+    """The smooth part ``f(Ac N + 1 c^T)`` on projections held in memory (softmax, multilabel).
+
+    It works on the weighted-centered projections ``Ac = A - 1 abar^T`` with
+    ``c = b + N^T abar`` (the same scores, the same ``N``), so its curvature
+    bound is block diagonal: ``curv * lambda_max(Ac^T W Ac)`` in ``N`` and
+    ``curv`` in ``c`` (curv = 1/2 softmax, 1/4 multilabel). The scores of every
+    point it evaluates are kept in its handle (buffers reused from a pool), so
+    extrapolated scores are a linear combination, not a product.
+
+    Parameters
+    ----------
+    A : ndarray, shape (n, q)
+        Projections.
+    Y : targets as :func:`rows_for_loss` returns them
+    w : ndarray, shape (n,)
+        Row weights summing to 1.
+    loss : {"softmax", "multilabel"}
+    k : int
+        Outputs.
+    """
+
+    def __init__(self, A: np.ndarray, Y, w: np.ndarray, loss: str, k: int) -> None:
+        self.abar = A.T @ w
+        self.Ac = A - self.abar
+        n, q = A.shape
+        self.k = k = int(k)
+        lmax = float(np.linalg.eigvalsh(self.Ac.T @ (self.Ac * w[:, None]))[-1]) if q else 0.0
+        cv = CURVATURE[loss]
+        self._curv = Curvature(LN=cv * lmax * (1.0 + 1e-12), Lc=cv * (1.0 + 1e-12))
+        # tiny score matrices: the parallel kernels' start-up costs more than the arithmetic
+        self.ev = (_KernelLoss if n * k >= _KERNEL_MIN_ENTRIES else _NumpyLoss)(loss, Y, w, k)
+        self._pool: list[np.ndarray] = []
+        self._R = np.empty((n, k))  # the residual (extrapolated scores are formed in it)
+        self._in_R = _Scores(self._R, None)
+        self.evaluations = 0
+
+    def curvature(self) -> Curvature:
+        return self._curv
+
+    def value(self, N: np.ndarray, c: np.ndarray) -> tuple[float, _Scores]:
+        Z = self._pool.pop() if self._pool else np.empty((self.Ac.shape[0], self.k))
+        np.matmul(self.Ac, N, out=Z)
+        self.ev.add_row(Z, c)
+        self.evaluations += 1
+        return self.ev.value(Z), _Scores(Z, self._pool)
+
+    def extrapolate(self, hx: _Scores, hp: _Scores, beta: float) -> _Scores:
+        self.ev.extrapolate(hx.Z, hp.Z, beta, self._R)
+        return self._in_R
+
+    def value_and_grad(self, N: np.ndarray, c: np.ndarray,
+                       handle: _Scores | None = None) -> tuple[float, np.ndarray, np.ndarray]:
+        if handle is None:
+            np.matmul(self.Ac, N, out=self._R)
+            self.ev.add_row(self._R, c)
+        elif handle is not self._in_R:
+            np.copyto(self._R, handle.Z)
+        f, R, g_c = self.ev.residual(self._R)  # the residual overwrites the scores
+        self.evaluations += 1
+        return f, self.Ac.T @ R, g_c
+
+
+class SquaredOracle:
+    """The squared loss from its sufficient statistics (no n x k work per step).
+
+    With centered projections and ``c = b + N^T abar``,
+    ``f = 0.5 (<N, C N> - 2 <N, D> + c0) + 0.5 ||c - ybar||^2`` where
+    ``C = Ac^T W Ac`` (q x q), ``D = Ac^T W Y`` (q x k),
+    ``c0 = sum_i w_i ||y_i - ybar||^2`` (the cross terms vanish because
+    ``sum_i w_i ac_i = 0``). The curvature is exact: ``lambda_max(C)`` in
+    ``N`` and 1 in ``c``, so the step is ``1 / lambda_max(C)`` and the
+    intercept lands on ``ybar`` (its closed form) at the first step.
+
+    Parameters
+    ----------
+    M_AA : (q, q), m_A : (q,), M_AY : (q, k), m_Y : (k,), m_YY : float
+        Weighted means (weights summing to 1) of ``a a^T``, ``a``, ``a y^T``,
+        ``y`` and ``||y||^2`` over the rows.
+    """
+
+    def __init__(self, M_AA: np.ndarray, m_A: np.ndarray, M_AY: np.ndarray, m_Y: np.ndarray,
+                 m_YY: float) -> None:
+        self.abar = m_A
+        self.ybar = m_Y
+        self.C = M_AA - np.outer(m_A, m_A)
+        self.D = M_AY - np.outer(m_A, m_Y)
+        self.c0 = float(m_YY - m_Y @ m_Y)
+        LN = float(np.linalg.eigvalsh(self.C)[-1]) * (1.0 + 1e-12) if self.C.size else 1.0
+        self._curv = Curvature(LN=max(LN, 1e-300), Lc=1.0, exact=True)
+        self.evaluations = 0  # no n x q x k products
+
+    @classmethod
+    def from_rows(cls, A: np.ndarray, Y: np.ndarray, w: np.ndarray) -> SquaredOracle:
+        """Statistics of rows ``A`` (n, q), targets ``Y`` (n, k), weights ``w`` summing to 1."""
+        Aw = A * w[:, None]
+        return cls(A.T @ Aw, A.T @ w, Aw.T @ Y, Y.T @ w, float(w @ (Y * Y).sum(axis=1)))
+
+    def curvature(self) -> Curvature:
+        return self._curv
+
+    def value(self, N: np.ndarray, c: np.ndarray) -> tuple[float, None]:
+        dc = c - self.ybar
+        f = 0.5 * (float(np.sum(N * (self.C @ N))) - 2.0 * float(np.sum(N * self.D)) + self.c0)
+        return f + 0.5 * float(dc @ dc), None
+
+    def extrapolate(self, hx: None, hp: None, beta: float) -> None:
+        return None
+
+    def value_and_grad(self, N: np.ndarray, c: np.ndarray,
+                       handle: None = None) -> tuple[float, np.ndarray, np.ndarray]:
+        CN = self.C @ N
+        dc = c - self.ybar
+        f = 0.5 * (float(np.sum(N * CN)) - 2.0 * float(np.sum(N * self.D)) + self.c0)
+        return f + 0.5 * float(dc @ dc), CN - self.D, dc
+
+
 # ---------------------------------------------------------------- main entry
 
 
@@ -350,6 +444,7 @@ def refine(
     check_every: int = 5,
     should_stop: Callable[[], bool] | None = None,
     stall: float = 0.0,
+    progress: Callable[[ApgProgress], Any] | None = None,
 ) -> RefineResult:
     """Solve the refinement ``min f(XQ N + b) + lam ||N||_*`` on cached projections.
 
@@ -386,6 +481,9 @@ def refine(
         at most this fraction of the decrease since the start (0: never; the
         solver passes 0.5, see ``ranktide.solver.greedy._INNER_STALL``). Softmax and
         multilabel only.
+    progress : callable, optional
+        Called after every step with a :class:`ranktide.solver.apg.ApgProgress`
+        (step, objective, gap estimate, elapsed seconds, ETA).
 
     Returns
     -------
@@ -419,10 +517,11 @@ def refine(
     growth factors 1.5 and 2 were no better. The sufficient-decrease test has no slack: a slack of
     even 1e-14 |f| let the step grow past the curvature near the optimum and
     the iterates wandered at the 1e-7 level, which stalls the certificate.
-    The squared loss eliminates ``b`` exactly
-    (``b = ybar - N^T abar``), then runs FISTA with the exact step
+    The squared loss runs the same loop with the exact step
     ``1 / lambda_max(C)`` on the statistics ``C = A^T W A - abar abar^T`` and
-    ``D = A^T W Y - abar ybar^T``: no ``n x k`` work per step.
+    ``D = A^T W Y - abar ybar^T`` (:class:`SquaredOracle`; its intercept lands on
+    the closed form ``b = ybar - N^T abar`` at the first step): no ``n x k``
+    work per step.
 
     Stopping: every ``check_every`` steps, either the subproblem's own gap
     bound ``<G_N, N> + lam ||N||_* + (F / lam) max(0, ||G_N||_2 - lam)``
@@ -447,8 +546,34 @@ def refine(
     N0 = np.array(N0, dtype=np.float64, ndmin=2)
     b0 = np.array(b0, dtype=np.float64).reshape(-1)
     _validate(A, N0, b0, lam, tol, max_iter, loss)
-    n, q = A.shape
-    k = N0.shape[1]
+    Y, w = rows_for_loss(A.shape[0], N0.shape[1], targets, weights, loss, class_weights)
+    with _blas_one_thread():
+        oracle = make_oracle(A, Y, w, loss, N0.shape[1])
+        out = apg(oracle, lam, N0, b0 + N0.T @ oracle.abar, tol=tol, max_iter=int(max_iter),
+                  check_every=check_every, should_stop=should_stop, progress=progress,
+                  stall=0.0 if loss == "squared" else float(stall))
+    return refine_result(out, oracle)
+
+
+def rows_for_loss(n: int, k: int, targets, weights, loss: str,
+                  class_weights: np.ndarray | None) -> tuple[Any, np.ndarray]:
+    """Targets as the loss needs them and the row weights normalized to sum 1.
+
+    Parameters
+    ----------
+    n, k : int
+        Rows and outputs.
+    targets, weights :
+        As :func:`refine` takes them (per block or concatenated).
+    loss : {"softmax", "squared", "multilabel"}
+    class_weights : (k,) array or None
+        Softmax only: folded into the row weights.
+
+    Returns
+    -------
+    Y : int64 (n,), CSR (n, k) or float64 (n, k)
+    w : float64 (n,), summing to 1
+    """
     Y = _dense_targets(_as_array(targets, "targets"), n, k, loss)
     wraw = _as_array(weights, "weights")
     w = np.ones(n) if wraw is None else np.asarray(wraw, dtype=np.float64).reshape(-1)
@@ -461,189 +586,25 @@ def refine(
     total = float(w.sum())
     if not total > 0:
         raise ConfigError("refine: the row weights sum to zero; give some rows positive weight")
-    w = w / total
-    with _blas_one_thread():
-        if loss == "squared":
-            return _refine_squared(A, Y, w, lam, N0, b0, tol, int(max_iter), check_every,
-                                   should_stop)
-        return _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, int(max_iter), check_every,
-                              should_stop, float(stall))
+    return Y, w / total
 
 
-def _lipschitz_bound(A: np.ndarray, w: np.ndarray, curvature: float) -> float:
-    """``curvature * lambda_max([A, 1]^T diag(w) [A, 1])`` (w sums to 1)."""
-    q = A.shape[1]
-    M = np.empty((q + 1, q + 1))
-    Aw = A * w[:, None]
-    M[:q, :q] = A.T @ Aw
-    M[:q, q] = M[q, :q] = Aw.sum(axis=0)
-    M[q, q] = 1.0
-    return curvature * float(np.linalg.eigvalsh(M)[-1]) * (1.0 + 1e-12)
+def make_oracle(A: np.ndarray, Y, w: np.ndarray, loss: str,
+                k: int) -> DenseOracle | SquaredOracle:
+    """The in-memory oracle of a loss: statistics for squared, scores otherwise.
+
+    ``w`` sums to 1 (see :func:`rows_for_loss`).
+    """
+    if loss == "squared":
+        return SquaredOracle.from_rows(A, Y, w)
+    return DenseOracle(A, Y, w, loss, k)
 
 
-def _check_stop(should_stop: Callable[[], bool] | None, it: int) -> None:
-    if should_stop is not None and should_stop():
-        raise StopRequested(f"stop requested at refinement step {it}")
-
-
-def _centered(A: np.ndarray, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Weighted column means ``abar = A^T w`` and the centered copy ``A - 1 abar^T``."""
-    abar = A.T @ w
-    Ac = A - abar
-    return Ac, abar
-
-
-def _refine_smooth(A, Y, w, loss, lam, N0, b0, tol, max_iter, check_every,
-                   should_stop=None, stall=0.0) -> RefineResult:
-    # Work with centered projections: A N + 1 b^T = Ac N + 1 c^T with c = b + N^T abar.
-    # The trace norm is untouched (same N) and the curvature bound becomes block diagonal,
-    # c * diag(Ac^T W Ac, 1) (sum_i w_i ac_i = 0), so N and the intercept get steps of their
-    # own; with the raw A the intercept's eigenvalue (about 1, against ~1e-3 for the A block)
-    # set the one common step and N crawled.
-    Ac, abar = _centered(A, w)
-    curv = _CURVATURE[loss]
-    q = A.shape[1]
-    lmax = float(np.linalg.eigvalsh(Ac.T @ (Ac * w[:, None]))[-1]) if q else 0.0
-    LN_max = curv * lmax * (1.0 + 1e-12)
-    Lc_max = curv * (1.0 + 1e-12)
-    LN_max = max(LN_max, 1e-12 * Lc_max)
-    ratio = Lc_max / LN_max  # the intercept's step length is 1 / (ratio * L)
-    n, k = A.shape[0], N0.shape[1]
-    # tiny score matrices: the parallel kernels' start-up costs more than the arithmetic
-    ev = (_KernelLoss if n * k >= _KERNEL_MIN_ENTRIES else _NumpyLoss)(loss, Y, w, k)
-    L = LN_max
-    Ux, sx, Bx = svt(N0, 0.0)
-    N_x = N0.copy()
-    c_x = b0 + N0.T @ abar
-    # four n x k buffers, reused: scores of x, of the previous x, of the trial point, and
-    # the residual (the extrapolated scores are formed in it and overwritten)
-    bufs = [np.empty((n, k)) for _ in range(3)]
-    R_buf = np.empty((n, k))
-    Z_x = np.matmul(Ac, N_x, out=bufs[0])
-    ev.add_row(Z_x, c_x)
-    f_x = ev.value(Z_x)
-    F_x = f_x + lam * float(sx.sum())
-    F_start = F_check = F_x
-    N_p, c_p, Z_p = N_x, c_x, Z_x
-    t = 1.0
-    evals = 1
-    it = 0
-    gap_rel, gb = np.inf, np.inf
-    converged = False
-    while it < max_iter:
-        _check_stop(should_stop, it)
-        it += 1
-        t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
-        beta = (t - 1.0) / t_next
-        if beta > 0:
-            N_y = N_x + beta * (N_x - N_p)
-            c_y = c_x + beta * (c_x - c_p)
-            ev.extrapolate(Z_x, Z_p, beta, R_buf)
-        else:
-            N_y, c_y = N_x, c_x
-            np.copyto(R_buf, Z_x)
-        Z_y = R_buf
-        f_y, R, g_c = ev.residual(Z_y)  # Z_y becomes the residual
-        G_N = Ac.T @ R
-        evals += 1
-        L = max(L / _SHRINK, 1e-12 * LN_max)
-        while True:
-            Lc = ratio * L
-            Un, sn, Bn = svt(N_y - G_N / L, lam / L)
-            N_n = (Un * sn) @ Bn.T
-            c_n = c_y - g_c / Lc
-            Z_n = np.matmul(Ac, N_n, out=next(b for b in bufs if b is not Z_x and b is not Z_p))
-            ev.add_row(Z_n, c_n)
-            evals += 1
-            f_n = ev.value(Z_n)
-            dN, dc = N_n - N_y, c_n - c_y
-            model = (f_y + np.sum(G_N * dN) + g_c @ dc
-                     + 0.5 * (L * np.sum(dN * dN) + Lc * (dc @ dc)))
-            if f_n <= model + _SLACK * abs(f_y) or L >= LN_max:
-                break
-            L = min(2.0 * L, LN_max)
-        F_n = f_n + lam * float(sn.sum())
-        if F_n > F_x and beta > 0:
-            # function-value restart: drop momentum, retry from x (monotone step)
-            t = 1.0
-            N_p, c_p, Z_p = N_x, c_x, Z_x
-            continue
-        N_p, c_p, Z_p = N_x, c_x, Z_x
-        N_x, c_x, Z_x, f_x, F_x = N_n, c_n, Z_n, f_n, F_n
-        Ux, sx, Bx = Un, sn, Bn
-        t = t_next
-        if it % check_every == 0 or it >= max_iter:
-            np.copyto(R_buf, Z_x)
-            _, R_x, gb_x = ev.residual(R_buf)
-            evals += 1
-            gap_rel = _certificate(Ac.T @ R_x, N_x, float(sx.sum()), F_x, lam)
-            gb = float(np.abs(gb_x).max())
-            if gap_rel <= tol and gb <= tol:
-                converged = True
-                break
-            if stall > 0 and F_check - F_x <= stall * (F_start - F_x):
-                converged = True
-                break
-            F_check = F_x
+def refine_result(out: ApgResult, oracle: Any) -> RefineResult:
+    """The loop's result in the caller's parametrization (``b = c - N^T abar``)."""
     return RefineResult(
-        N=N_x, b=c_x - N_x.T @ abar, A=Ux, s=sx, B=Bx, objective=float(F_x), loss=float(f_x),
-        iterations=it, converged=converged, gap_estimate=float(gap_rel),
-        grad_b_norm=float(gb), evaluations=evals,
-    )
-
-
-def _refine_squared(A, Y, w, lam, N0, b0, tol, max_iter, check_every,
-                    should_stop=None) -> RefineResult:
-    abar = A.T @ w
-    ybar = Y.T @ w
-    Aw = A * w[:, None]
-    C = A.T @ Aw - np.outer(abar, abar)
-    D = Aw.T @ Y - np.outer(abar, ybar)
-    c0 = float(w @ (Y * Y).sum(axis=1) - ybar @ ybar)
-    L = float(np.linalg.eigvalsh(C)[-1]) * (1.0 + 1e-12) if C.size else 1.0
-    L = max(L, 1e-300)
-
-    def smooth(N):
-        CN = C @ N
-        return 0.5 * (float(np.sum(N * CN)) - 2.0 * float(np.sum(N * D)) + c0), CN - D
-
-    Ux, sx, Bx = svt(N0, 0.0)
-    N_x = N0.copy()
-    f_x, _ = smooth(N_x)
-    F_x = f_x + lam * float(sx.sum())
-    N_p = N_x
-    t = 1.0
-    it = 0
-    gap_rel = np.inf
-    converged = False
-    while it < max_iter:
-        _check_stop(should_stop, it)
-        it += 1
-        t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
-        beta = (t - 1.0) / t_next
-        N_y = N_x + beta * (N_x - N_p) if beta > 0 else N_x
-        _, G = smooth(N_y)
-        Un, sn, Bn = svt(N_y - G / L, lam / L)
-        N_n = (Un * sn) @ Bn.T
-        f_n, G_n = smooth(N_n)
-        F_n = f_n + lam * float(sn.sum())
-        if F_n > F_x and beta > 0:
-            t = 1.0
-            N_p = N_x
-            continue
-        N_p, N_x, f_x, F_x, G_x = N_x, N_n, f_n, F_n, G_n
-        Ux, sx, Bx = Un, sn, Bn
-        t = t_next
-        if it % check_every == 0 or it >= max_iter:
-            gap_rel = _certificate(G_x, N_x, float(sx.sum()), F_x, lam)
-            if gap_rel <= tol:
-                converged = True
-                break
-    b = ybar - N_x.T @ abar
-    # intercept exact => grad_b = 0 up to rounding; recompute the loss exactly from data-free
-    # statistics (the trace form above equals the weighted mean squared loss at this b)
-    return RefineResult(
-        N=N_x, b=b, A=Ux, s=sx, B=Bx, objective=float(F_x), loss=float(f_x),
-        iterations=it, converged=converged, gap_estimate=float(gap_rel),
-        grad_b_norm=0.0, evaluations=0,
+        N=out.N, b=out.c - out.N.T @ oracle.abar, A=out.A, s=out.s, B=out.B,
+        objective=out.objective, loss=out.loss, iterations=out.iterations,
+        converged=out.converged, gap_estimate=out.gap_estimate,
+        grad_b_norm=out.grad_c_norm, evaluations=int(oracle.evaluations),
     )

@@ -10,20 +10,17 @@ keeping only q x k iterates: every evaluation streams over the blocks of the
 cached projections ``A = X Q`` (held in memory, or in scratch files written
 by the gradient pass, see :class:`ScratchProjections`), forms one block's
 scores ``A_b N + b``, its loss and residual ``R_b``, and adds ``A_b^T R_b``.
-The scheme is accelerated proximal gradient with backtracking and singular
-value thresholding (Beck & Teboulle 2009; Cai, Candès & Shen 2010) with a
-function-value restart (O'Donoghue & Candès 2015) on the centered problem
-(as :func:`ranktide.solver.refine.refine`: separate steps for N and the intercept),
-started from ``L`` = curvature bound x largest eigenvalue of the weighted
-covariance of ``A``, which one stream over the blocks gives. Peak memory:
-one block's scores.
+The loop is :func:`ranktide.solver.apg.apg`, the same as the in-memory
+refinement's, driven by :class:`StreamOracle` (one stream per evaluation,
+centered as the in-memory oracle: separate steps for N and the intercept) or,
+for the squared loss, by the sufficient statistics that one stream gives
+(:func:`squared_oracle`). Peak memory: one block's scores.
 """
 
 from __future__ import annotations
 
 import os
 from collections.abc import Callable, Iterable, Iterator, Sequence
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -31,13 +28,11 @@ import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, StoreError
 from ranktide.losses import get_loss
-from ranktide.signals import StopRequested
-from ranktide.solver.refine import _CURVATURE, RefineResult, _certificate, svt
+from ranktide.solver.apg import ApgProgress, Curvature, apg
+from ranktide.solver.refine import CURVATURE, RefineResult, SquaredOracle, refine_result
 
-__all__ = ["refine_streamed", "ScratchProjections", "MemoryProjections",
-           "write_projection_block"]
-
-_SHRINK = 1.25  # L shrinks by this factor before each step (then backtracking doubles it)
+__all__ = ["refine_streamed", "StreamOracle", "squared_oracle", "ScratchProjections",
+           "MemoryProjections", "write_projection_block"]
 
 
 # ---------------------------------------------------------------- projection sources
@@ -153,16 +148,22 @@ def write_projection_block(directory: str | os.PathLike, start: int, XQ: np.ndar
     return path
 
 
-# ---------------------------------------------------------------- streamed evaluations
-@dataclass
-class _Eval:
-    f: float
-    G: np.ndarray | None  # (q, k) A^T R
-    gb: np.ndarray | None  # (k,)
+# ---------------------------------------------------------------- the streamed oracle
+class StreamOracle:
+    """The smooth part on projection blocks, one stream per evaluation (softmax, multilabel).
 
+    Centered as :class:`ranktide.solver.refine.DenseOracle` (``c = b + N^T abar``,
+    curvature ``curv * lambda_max(cov A)`` in ``N`` and ``curv`` in ``c``); the
+    weighted means and covariance come from one stream at construction.
+    Handles are None: nothing of size n is kept.
 
-class _Streamer:
-    """Streams the blocks for loss values and gradients at ``(N, b)``."""
+    Parameters
+    ----------
+    blocks : re-iterable of (XQ_b, targets_b, weights_b)
+    loss : {"softmax", "multilabel"}
+    k : int
+    class_weights : (k,) array, optional
+    """
 
     def __init__(self, blocks: Iterable, loss: str, k: int,
                  class_weights: np.ndarray | None) -> None:
@@ -171,37 +172,31 @@ class _Streamer:
         self.k = k
         self.cw = class_weights
         self.evaluations = 0
-        self.total = 0.0
-        self.abar = np.zeros(0)  # weighted column means of A (set below)
-        gram = None
-        for XQ, targets, w in blocks:  # total weight and the Lipschitz Gram in one stream
-            ww = self._weights(XQ.shape[0], targets, w)
-            A1 = np.hstack([XQ, np.ones((XQ.shape[0], 1))])
-            g = A1.T @ (A1 * ww[:, None])
-            gram = g if gram is None else gram + g
-            self.total += float(ww.sum())
-        if not self.total > 0:
-            raise ConfigError("refine: the row weights sum to zero; give some rows positive weight")
-        self.gram = gram / self.total
-        q = self.gram.shape[0] - 1
-        self.abar = self.gram[:q, q].copy()
+        self.total, gram, _ = _moments(blocks, class_weights, None)
+        q = gram.shape[0] - 1
+        self.abar = gram[:q, q].copy()
         # weighted covariance of A: the curvature of the centered problem in N
-        self.cov = self.gram[:q, :q] - np.outer(self.abar, self.abar)
+        cov = gram[:q, :q] - np.outer(self.abar, self.abar)
+        lmax = float(np.linalg.eigvalsh(cov)[-1]) if cov.size else 0.0
+        cv = CURVATURE[loss]
+        self._curv = Curvature(LN=cv * lmax * (1.0 + 1e-12), Lc=cv * (1.0 + 1e-12))
 
-    def _weights(self, n: int, targets: Any, w: np.ndarray | None) -> np.ndarray:
-        ww = np.ones(n) if w is None else np.asarray(w, dtype=np.float64)
-        if self.cw is not None:
-            ww = ww * np.asarray(self.cw, dtype=np.float64)[np.asarray(targets, dtype=np.int64)]
-        return ww
+    def curvature(self) -> Curvature:
+        return self._curv
 
-    def centered(self, N: np.ndarray, c: np.ndarray, *, grad: bool) -> _Eval:
-        """Loss (and gradients) of the centered problem ``(A - 1 abar^T) N + 1 c^T``."""
-        e = self(N, c - N.T @ self.abar, grad=grad)
-        if grad:
-            e.G -= np.outer(self.abar, e.gb)
-        return e
+    def value(self, N: np.ndarray, c: np.ndarray) -> tuple[float, None]:
+        return self._stream(N, c - N.T @ self.abar, grad=False)[0], None
 
-    def __call__(self, N: np.ndarray, b: np.ndarray, *, grad: bool) -> _Eval:
+    def extrapolate(self, hx: None, hp: None, beta: float) -> None:
+        return None
+
+    def value_and_grad(self, N: np.ndarray, c: np.ndarray,
+                       handle: None = None) -> tuple[float, np.ndarray, np.ndarray]:
+        f, G, gb = self._stream(N, c - N.T @ self.abar, grad=True)
+        G -= np.outer(self.abar, gb)  # (A - 1 abar^T)^T R
+        return f, G, gb
+
+    def _stream(self, N: np.ndarray, b: np.ndarray, *, grad: bool):
         self.evaluations += 1
         f = 0.0
         G = np.zeros_like(N) if grad else None
@@ -219,7 +214,49 @@ class _Streamer:
         if grad:
             G *= inv
             gb *= inv
-        return _Eval(f * inv, G, gb)
+        return f * inv, G, gb
+
+
+def _block_weights(n: int, targets: Any, w: np.ndarray | None,
+                   cw: np.ndarray | None) -> np.ndarray:
+    ww = np.ones(n) if w is None else np.asarray(w, dtype=np.float64)
+    if cw is not None:
+        ww = ww * np.asarray(cw, dtype=np.float64)[np.asarray(targets, dtype=np.int64)]
+    return ww
+
+
+def _moments(blocks: Iterable, cw: np.ndarray | None, k: int | None):
+    """One stream: total weight, ``[A, 1]^T W [A, 1] / total`` and (with ``k``) the
+    squared loss's target moments ``(A^T W Y, Y^T w, sum w ||y||^2) / total``."""
+    total, gram, AY, Ysum, YY = 0.0, None, None, None, 0.0
+    for XQ, targets, w in blocks:
+        ww = _block_weights(XQ.shape[0], targets, w, cw)
+        A1 = np.hstack([XQ, np.ones((XQ.shape[0], 1))])
+        g = A1.T @ (A1 * ww[:, None])
+        gram = g if gram is None else gram + g
+        total += float(ww.sum())
+        if k is not None:
+            Y = targets.toarray() if sp.issparse(targets) else np.asarray(targets, np.float64)
+            Y = Y.reshape(XQ.shape[0], k)
+            Yw = Y * ww[:, None]
+            AY = XQ.T @ Yw if AY is None else AY + XQ.T @ Yw
+            Ysum = Yw.sum(axis=0) if Ysum is None else Ysum + Yw.sum(axis=0)
+            YY += float((Yw * Y).sum())
+    if gram is None:
+        raise ConfigError("refine: no projection blocks; the pass kept none")
+    if not total > 0:
+        raise ConfigError("refine: the row weights sum to zero; give some rows positive weight")
+    gram = gram / total
+    if k is None:
+        return total, gram, None
+    return total, gram, (AY / total, Ysum / total, YY / total)
+
+
+def squared_oracle(blocks: Iterable, k: int) -> SquaredOracle:
+    """The squared loss's statistics from one stream over the blocks."""
+    _, gram, (M_AY, m_Y, m_YY) = _moments(blocks, None, k)
+    q = gram.shape[0] - 1
+    return SquaredOracle(gram[:q, :q], gram[:q, q].copy(), M_AY, m_Y, m_YY)
 
 
 def refine_streamed(
@@ -235,6 +272,7 @@ def refine_streamed(
     check_every: int = 5,
     should_stop: Callable[[], bool] | None = None,
     stall: float = 0.0,
+    progress: Callable[[ApgProgress], Any] | None = None,
 ) -> RefineResult:
     """Solve the refinement subproblem streaming over projection blocks.
 
@@ -263,12 +301,15 @@ def refine_streamed(
     stall : float
         As in :func:`ranktide.solver.refine.refine`: also stop once the decrease over the
         last ``check_every`` steps is at most this fraction of the whole
-        decrease so far (0 turns it off).
+        decrease so far (0 turns it off; softmax and multilabel only).
+    progress : callable, optional
+        As in :func:`ranktide.solver.refine.refine`.
 
     Returns
     -------
     RefineResult
-        As :func:`ranktide.solver.refine.refine`; ``evaluations`` counts streams.
+        As :func:`ranktide.solver.refine.refine`; ``evaluations`` counts streams
+        (the squared loss streams once, for its statistics, and reports 0).
     """
     if not lam > 0:
         raise ConfigError(f"refine: lam must be > 0, got {lam!r}")
@@ -277,68 +318,11 @@ def refine_streamed(
     N0 = np.array(N0, dtype=np.float64, ndmin=2)
     b0 = np.array(b0, dtype=np.float64).reshape(-1)
     k = N0.shape[1]
-    ev = _Streamer(blocks, loss, k, class_weights)
-    # centered, as in ranktide.solver.refine: A N + 1 b^T = (A - 1 abar^T) N + 1 c^T with
-    # c = b + N^T abar, so N and the intercept get step sizes of their own
-    curv = _CURVATURE[loss]
-    lmax = float(np.linalg.eigvalsh(ev.cov)[-1]) if ev.cov.size else 0.0
-    Lc_max = curv * (1.0 + 1e-12)
-    LN_max = max(curv * lmax * (1.0 + 1e-12), 1e-12 * Lc_max)
-    ratio = Lc_max / LN_max
-    L = LN_max
-    Ux, sx, Bx = svt(N0, 0.0)
-    N_x, c_x = N0.copy(), b0 + N0.T @ ev.abar
-    f_x = ev.centered(N_x, c_x, grad=False).f
-    F_x = f_x + lam * float(sx.sum())
-    F_start = F_check = F_x
-    N_p, c_p = N_x, c_x
-    t, it = 1.0, 0
-    gap_rel, gb_norm, converged = np.inf, np.inf, False
-    while it < int(max_iter):
-        if should_stop is not None and should_stop():
-            raise StopRequested(f"stop requested at refinement step {it}")
-        it += 1
-        t_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * t * t))
-        beta = (t - 1.0) / t_next
-        N_y = N_x + beta * (N_x - N_p) if beta > 0 else N_x
-        c_y = c_x + beta * (c_x - c_p) if beta > 0 else c_x
-        e_y = ev.centered(N_y, c_y, grad=True)
-        L = max(L / _SHRINK, 1e-12 * LN_max)
-        while True:
-            Lc = ratio * L
-            Un, sn, Bn = svt(N_y - e_y.G / L, lam / L)
-            N_n = (Un * sn) @ Bn.T
-            c_n = c_y - e_y.gb / Lc
-            f_n = ev.centered(N_n, c_n, grad=False).f
-            dN, dc = N_n - N_y, c_n - c_y
-            model = (e_y.f + float(np.sum(e_y.G * dN)) + float(e_y.gb @ dc)
-                     + 0.5 * (L * float(np.sum(dN * dN)) + Lc * float(dc @ dc)))
-            if f_n <= model or L >= LN_max:
-                break
-            L = min(2.0 * L, LN_max)
-        F_n = f_n + lam * float(sn.sum())
-        if F_n > F_x and beta > 0:  # function-value restart: retry from x without momentum
-            t = 1.0
-            N_p, c_p = N_x, c_x
-            continue
-        N_p, c_p = N_x, c_x
-        N_x, c_x, f_x, F_x = N_n, c_n, f_n, F_n
-        Ux, sx, Bx = Un, sn, Bn
-        t = t_next
-        if it % check_every == 0 or it >= int(max_iter):
-            e_x = ev.centered(N_x, c_x, grad=True)
-            gap_rel = _certificate(e_x.G, N_x, float(sx.sum()), F_x, lam)
-            gb_norm = float(np.abs(e_x.gb).max())
-            if gap_rel <= tol and gb_norm <= tol:
-                converged = True
-                break
-            if stall > 0 and F_check - F_x <= stall * (F_start - F_x):
-                converged = True
-                break
-            F_check = F_x
-    b_x = c_x - N_x.T @ ev.abar
-    return RefineResult(
-        N=N_x, b=b_x, A=Ux, s=sx, B=Bx, objective=float(F_x), loss=float(f_x),
-        iterations=it, converged=converged, gap_estimate=float(gap_rel),
-        grad_b_norm=float(gb_norm), evaluations=ev.evaluations,
-    )
+    if loss == "squared":
+        oracle: Any = squared_oracle(blocks, k)
+    else:
+        oracle = StreamOracle(blocks, loss, k, class_weights)
+    out = apg(oracle, lam, N0, b0 + N0.T @ oracle.abar, tol=tol, max_iter=int(max_iter),
+              check_every=check_every, should_stop=should_stop, progress=progress,
+              stall=0.0 if loss == "squared" else float(stall))
+    return refine_result(out, oracle)
