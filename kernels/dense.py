@@ -10,6 +10,8 @@ from __future__ import annotations
 
 from numba import njit, prange
 
+from .threads import kernel_guard
+
 __all__ = ["extrapolate", "add_row"]
 
 
@@ -47,8 +49,6 @@ def extrapolate(X, P, beta: float, out):
     -------
     out : ndarray, shape (n, k)
     """
-    from .threads import kernel_guard
-
     with kernel_guard():
         extrapolate_kernel(X, P, float(beta), out)
     return out
@@ -56,8 +56,6 @@ def extrapolate(X, P, beta: float, out):
 
 def add_row(Z, c):
     """``Z += c`` (broadcast over rows) for a (n, k) float64 C array; returns ``Z``."""
-    from .threads import kernel_guard
-
     with kernel_guard():
         add_row_kernel(Z, c)
     return Z
