@@ -16,30 +16,24 @@ multilabel  tags (tags)          sum_j log(1 + exp(z_j)) - y_j z_j
 Class weights ``c`` (k,) apply to softmax only: a row's weight becomes
 ``w_i c_{y_i}`` and the total weight sums those (as in :mod:`kernels.products`).
 
-:func:`best_intercept` streams over a source once and returns the intercept
-that minimizes ``f(0, b)``: log class frequencies (mean-centred), the weighted
-mean of the values, or the logit of the tag frequencies.
+:func:`intercept_from_sums` turns weighted target sums into the intercept that
+minimizes ``f(0, b)``: log class frequencies (mean-centred), the weighted mean of
+the values, or the logit of the tag frequencies
+(:func:`ranktide.passes.intercept.best_intercept` streams the sums in one pass).
 """
 
 from __future__ import annotations
 
-import os
-from dataclasses import dataclass
+from abc import ABC, abstractmethod
 from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError
 from ranktide.kernels import losses as kl
-from ranktide.passes.engine import run_pass
-from ranktide.store.memory_source import as_source
 
-__all__ = ["Loss", "get_loss", "LOSS_NAMES", "TARGET_KIND", "best_intercept",
-           "check_loss_source", "row_weights"]
-
-#: target kind each loss needs
-TARGET_KIND: dict[str, str] = {"softmax": "classes", "squared": "values", "multilabel": "tags"}
-LOSS_NAMES: tuple[str, ...] = tuple(TARGET_KIND)
+__all__ = ["Loss", "SoftmaxLoss", "SquaredLoss", "MultilabelLoss", "get_loss", "loss_for_kind",
+           "LOSS_NAMES", "TARGET_KIND", "check_loss_source", "row_weights"]
 
 #: frequencies are clipped to [FREQ_CLIP, 1 - FREQ_CLIP] before log / logit
 FREQ_CLIP = 1e-9
@@ -52,16 +46,67 @@ def row_weights(n: int, weights: np.ndarray | None) -> np.ndarray:
     return np.asarray(weights, dtype=np.float64)
 
 
-@dataclass(frozen=True)
-class Loss:
-    """One loss: its name and the target kind it needs.
+class Loss(ABC):
+    """One loss of DESIGN §2 and everything the rest of ranktide asks of it.
 
-    Use :meth:`value_residual` on a block of dense scores; the arithmetic is
-    the fused kernels of :mod:`kernels.losses`.
+    Attributes
+    ----------
+    name : str
+        ``"softmax"``, ``"squared"`` or ``"multilabel"``.
+    target_kind : str
+        The store's target kind it needs (``"classes"``, ``"values"``, ``"tags"``).
+    names_key : str
+        Key under which ``model.json`` lists the output names.
+    curvature : float
+        Bound on the second derivative of ``loss(z; y)`` along any unit direction
+        of ``z`` (the Lipschitz constant of its gradient): 1/2 for softmax (the
+        Hessian ``diag(p) - p p^T`` has norm <= 1/2), 1/4 for the logistic terms,
+        1 for squared. The refinement's first step size comes from it.
+    metric : str
+        The validation metric that picks the best lam on a path.
+    higher_is_better : bool
+        Direction of ``metric``.
+    has_probabilities : bool
+        Whether scores map to probabilities.
+    class_weights_ok : bool
+        Whether per-class weights apply.
     """
 
     name: str
     target_kind: str
+    names_key: str
+    curvature: float
+    metric: str
+    higher_is_better: bool
+    has_probabilities: bool = True
+    class_weights_ok: bool = False
+
+    def __repr__(self) -> str:
+        return f"<loss {self.name}>"
+
+    def check_class_weights_allowed(self) -> None:
+        """Raise unless per-class weights apply to this loss."""
+        if not self.class_weights_ok:
+            raise ConfigError(f"class weights apply to the softmax loss only; drop them for "
+                              f"loss {self.name!r}")
+
+    @abstractmethod
+    def residual_kernel(self, R: np.ndarray, targets: Any, w: np.ndarray | None,
+                        loss: np.ndarray, gradb: np.ndarray, where: str) -> None:
+        """Overwrite scores ``R`` (n, k) by the raw weighted residual; add the loss sum to
+        ``loss[0]`` and the column sums of the residual to ``gradb`` (k,)."""
+
+    @abstractmethod
+    def target_sums(self, targets: Any, w: np.ndarray, k: int) -> np.ndarray:
+        """Weighted sums (k,) of a block's targets (class counts, values, tag counts)."""
+
+    @abstractmethod
+    def intercept_link(self, mean: np.ndarray, clip: float = FREQ_CLIP) -> np.ndarray:
+        """The best intercept alone from the weighted mean target (k,)."""
+
+    @abstractmethod
+    def probabilities(self, Z: np.ndarray, top: np.ndarray | None = None) -> np.ndarray:
+        """Probabilities from all scores ``Z`` (n, k); of ``top`` (n, K) scores when given."""
 
     def value_residual(
         self,
@@ -112,32 +157,118 @@ class Loss:
                 R[...] = Z
         w = None if weights is None else np.asarray(weights, dtype=np.float64)
         if class_weights is not None:
-            if self.name != "softmax":
-                raise ConfigError("class weights apply to the softmax loss only; drop them "
-                                  f"for loss {self.name!r}")
+            self.check_class_weights_allowed()
             y = np.asarray(targets, dtype=np.int32)
             w = kl.fold_class_weights(y, np.asarray(class_weights, dtype=np.float64), w,
                                       where=where)
         loss = np.zeros(1)
         gradb = np.zeros(k)
-        if self.name == "softmax":
-            kl.softmax_residual(R, np.asarray(targets, dtype=np.int32), w, loss, gradb,
-                                where=where)
-        elif self.name == "squared":
-            kl.squared_residual(R, np.ascontiguousarray(targets, dtype=np.float64), w, loss,
-                                gradb, where=where)
-        else:
-            T = sp.csr_matrix(targets)
-            kl.multilabel_residual(R, T.indptr, T.indices, w, loss, gradb, where=where)
+        self.residual_kernel(R, targets, w, loss, gradb, where)
         wsum = float(n) if w is None else float(np.sum(w))
         return float(loss[0]), wsum, R
 
 
-_LOSSES = {name: Loss(name, kind) for name, kind in TARGET_KIND.items()}
+class SoftmaxLoss(Loss):
+    """Multinomial logistic loss over k classes: ``logsumexp(z) - z_y``."""
+
+    name = "softmax"
+    target_kind = "classes"
+    names_key = "classes"
+    curvature = 0.5
+    metric = "accuracy"
+    higher_is_better = True
+    class_weights_ok = True
+
+    def residual_kernel(self, R, targets, w, loss, gradb, where):
+        kl.softmax_residual(R, np.asarray(targets, dtype=np.int32), w, loss, gradb, where=where)
+
+    def target_sums(self, targets, w, k):
+        return np.bincount(np.asarray(targets), weights=w, minlength=k).astype(np.float64)
+
+    def intercept_link(self, mean, clip=FREQ_CLIP):
+        # log frequencies, centred: softmax(b0) = freq, so grad_b f(0, b0) = 0
+        b = np.log(np.clip(mean, clip, None))
+        return b - b.mean()
+
+    def probabilities(self, Z, top=None):
+        zmax = Z.max(axis=1, keepdims=True)
+        lse = zmax + np.log(np.exp(Z - zmax).sum(axis=1, keepdims=True))
+        return np.exp((Z if top is None else top) - lse)
 
 
-def get_loss(name: str) -> Loss:
+class SquaredLoss(Loss):
+    """Half the squared error over k real outputs: ``0.5 ||z - y||^2``."""
+
+    name = "squared"
+    target_kind = "values"
+    names_key = "outputs"
+    curvature = 1.0
+    metric = "rmse"
+    higher_is_better = False
+    has_probabilities = False
+
+    def residual_kernel(self, R, targets, w, loss, gradb, where):
+        kl.squared_residual(R, np.ascontiguousarray(targets, dtype=np.float64), w, loss, gradb,
+                            where=where)
+
+    def target_sums(self, targets, w, k):
+        return w @ np.asarray(targets, dtype=np.float64)
+
+    def intercept_link(self, mean, clip=FREQ_CLIP):
+        return np.asarray(mean, dtype=np.float64)
+
+    def probabilities(self, Z, top=None):
+        raise ConfigError("model: the squared loss predicts values, not probabilities; "
+                          "use predict()")
+
+
+class MultilabelLoss(Loss):
+    """Independent logistic losses over k tags: ``sum_j log(1 + exp(z_j)) - y_j z_j``."""
+
+    name = "multilabel"
+    target_kind = "tags"
+    names_key = "tags"
+    curvature = 0.25
+    metric = "micro_f1"
+    higher_is_better = True
+
+    def residual_kernel(self, R, targets, w, loss, gradb, where):
+        T = sp.csr_matrix(targets)
+        kl.multilabel_residual(R, T.indptr, T.indices, w, loss, gradb, where=where)
+
+    def target_sums(self, targets, w, k):
+        T = sp.csr_matrix(targets)
+        return np.asarray(T.T @ w, dtype=np.float64).ravel()
+
+    def intercept_link(self, mean, clip=FREQ_CLIP):
+        p = np.clip(mean, clip, 1.0 - clip)
+        return np.log(p) - np.log1p(-p)
+
+    def probabilities(self, Z, top=None):
+        # sigmoid, written to avoid overflow for large |z|
+        return 0.5 * (1.0 + np.tanh(0.5 * (Z if top is None else top)))
+
+
+_LOSSES: dict[str, Loss] = {c.name: c() for c in (SoftmaxLoss, SquaredLoss, MultilabelLoss)}
+#: the loss names, in the order the command line lists them
+LOSS_NAMES: tuple[str, ...] = tuple(_LOSSES)
+#: target kind each loss needs
+TARGET_KIND: dict[str, str] = {name: loss.target_kind for name, loss in _LOSSES.items()}
+
+
+def loss_for_kind(kind: str) -> Loss:
+    """The loss that fits targets of ``kind`` (``classes``, ``values`` or ``tags``)."""
+    for loss in _LOSSES.values():
+        if loss.target_kind == kind:
+            return loss
+    raise ConfigError(f"target kind {kind!r}: unknown; expected one of "
+                      f"{', '.join(TARGET_KIND.values())}")
+
+
+def get_loss(name: str | Loss) -> Loss:
     """Return the loss called ``name`` (``softmax``, ``squared`` or ``multilabel``)."""
+    if isinstance(name, Loss):
+        return name
     loss = _LOSSES.get(name)
     if loss is None:
         raise ConfigError(f"loss {name!r}: unknown; choose one of {', '.join(LOSS_NAMES)}")
@@ -157,116 +288,10 @@ def check_loss_source(loss: str, source: Any) -> Loss:
     return spec
 
 
-# ---------------------------------------------------------------------------
-# the best intercept alone, streamed
-# ---------------------------------------------------------------------------
-@dataclass(frozen=True)
-class _InterceptState:
-    loss: str
-    k: int
-    class_weights: np.ndarray | None
-
-
-def _intercept_block(block: Any, state: _InterceptState) -> tuple[float, np.ndarray]:
-    n = block.stop - block.start
-    w = row_weights(n, block.weights)
-    if state.loss == "softmax":
-        y = np.asarray(block.targets)
-        if state.class_weights is not None:
-            w = w * state.class_weights[y]
-        return float(w.sum()), np.bincount(y, weights=w, minlength=state.k).astype(np.float64)
-    if state.loss == "squared":
-        Y = np.asarray(block.targets, dtype=np.float64)
-        return float(w.sum()), w @ Y
-    T = sp.csr_matrix(block.targets)
-    return float(w.sum()), np.asarray(T.T @ w, dtype=np.float64).ravel()
-
-
-def _intercept_combine(parts: list) -> tuple[float, np.ndarray]:
-    wsum = parts[0][0]
-    sums = parts[0][1].copy()
-    for p in parts[1:]:
-        wsum += p[0]
-        sums += p[1]
-    return wsum, sums
-
-
 def intercept_from_sums(loss: str, weight_total: float, sums: np.ndarray, *,
                         clip: float = FREQ_CLIP) -> np.ndarray:
     """The best intercept alone from weighted target sums (see :func:`best_intercept`)."""
     if not weight_total > 0:
         raise InputError("every row has weight 0; give some rows a positive weight")
     mean = np.asarray(sums, dtype=np.float64) / weight_total
-    if loss == "softmax":
-        b = np.log(np.clip(mean, clip, None))
-        return b - b.mean()
-    if loss == "squared":
-        return mean
-    p = np.clip(mean, clip, 1.0 - clip)
-    return np.log(p) - np.log1p(-p)
-
-
-def best_intercept(
-    source: Any,
-    *,
-    loss: str,
-    class_weights: np.ndarray | None = None,
-    backend: str = "serial",
-    block_rows: int | None = None,
-    block_bytes: int | None = None,
-    clip: float = FREQ_CLIP,
-    progress: bool = False,
-) -> np.ndarray:
-    """The intercept ``b0`` minimizing ``f(0, b)``, in one pass.
-
-    Parameters
-    ----------
-    source : Store, path, CSR tuple or source
-        The data (see :func:`ranktide.store.memory_source.as_source`).
-    loss : {"softmax", "squared", "multilabel"}
-    class_weights : (k,) array, optional
-        Per-class weights (softmax only).
-    clip : float
-        Frequencies are clipped to ``[clip, 1 - clip]`` so that an absent
-        class or tag gets a finite intercept.
-
-    Returns
-    -------
-    (k,) float64 array
-        softmax: ``log(freq) - mean(log(freq))`` with weighted class
-        frequencies ``freq`` (then ``softmax(b0) = freq``, the stationarity
-        condition ``grad_b f = 0``); squared: the weighted mean of ``Y``;
-        multilabel: ``logit(freq)`` of the weighted tag frequencies.
-    """
-    opened = isinstance(source, (str, os.PathLike))
-    src = as_source(source)
-    try:
-        return _best_intercept(src, loss=loss, class_weights=class_weights, backend=backend,
-                               block_rows=block_rows, block_bytes=block_bytes, clip=clip,
-                               progress=progress)
-    finally:
-        if opened:
-            src.close()
-
-
-def _best_intercept(src: Any, *, loss: str, class_weights: Any, backend: str,
-                    block_rows: int | None, block_bytes: int | None, clip: float,
-                    progress: bool) -> np.ndarray:
-    check_loss_source(loss, src)
-    k = int(src.n_outputs)
-    cw = None
-    if class_weights is not None:
-        cw = np.asarray(class_weights, dtype=np.float64)
-        if loss != "softmax":
-            raise ConfigError("class weights apply to the softmax loss only; drop them "
-                              f"for loss {loss!r}")
-        if cw.shape != (k,) or not np.all(np.isfinite(cw)) or np.any(cw < 0):
-            raise ConfigError(f"class weights: expected {k} finite values >= 0, "
-                              f"got shape {cw.shape}")
-    state = _InterceptState(loss=loss, k=k, class_weights=cw)
-    out = run_pass(src, _intercept_block, _intercept_combine, state=state, backend=backend,
-                   block_rows=block_rows, block_bytes=block_bytes, progress=progress,
-                   desc="intercept")
-    if out is None:
-        raise InputError(f"{getattr(src, 'path', None) or 'in-memory source'}: has no rows")
-    return intercept_from_sums(loss, out[0], out[1], clip=clip)
+    return get_loss(loss).intercept_link(mean, clip)

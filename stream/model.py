@@ -30,6 +30,7 @@ from ranktide.errors import ConfigError, InputError, ModelError
 from ranktide.jsondata import json_data
 from ranktide.kernels.sparse import csr_matmul_dense
 from ranktide.kernels.svd import svd
+from ranktide.losses import LOSS_NAMES, get_loss
 
 __all__ = ["Model", "save_model", "load_model", "MODEL_FORMAT", "MODEL_VERSION", "NAMES_KEY"]
 
@@ -37,8 +38,8 @@ MODEL_FORMAT = "ranktide-model"
 MODEL_VERSION = 1
 FACTORS_FILE = "factors.npz"
 META_FILE = "model.json"
-#: key under which model.json lists the output names, by loss
-NAMES_KEY: dict[str, str] = {"softmax": "classes", "multilabel": "tags", "squared": "outputs"}
+#: key under which model.json lists the output names, by loss (the loss object's names_key)
+NAMES_KEY: dict[str, str] = {name: get_loss(name).names_key for name in LOSS_NAMES}
 _ARRAYS = ("U", "s", "V", "b")
 # keys of model.json that save_model owns; everything else comes from the metadata
 _STRUCTURAL = ("format", "format_version", "loss", "d", "k", "rank", "versions",
@@ -152,18 +153,10 @@ class Model:
         ConfigError
             For the squared loss, which has no probabilities.
         """
-        if self.loss == "squared":
-            raise ConfigError(
-                "model: the squared loss predicts values, not probabilities; use predict()"
-            )
-        Z = self.scores(X)
-        if self.loss == "softmax":
-            Z -= Z.max(axis=1, keepdims=True)
-            np.exp(Z, out=Z)
-            Z /= Z.sum(axis=1, keepdims=True)
-            return Z
-        # sigmoid, written to avoid overflow for large |z|
-        return 0.5 * (1.0 + np.tanh(0.5 * Z))
+        loss = get_loss(self.loss)
+        if not loss.has_probabilities:
+            return loss.probabilities(np.empty((0, 0)))  # raises: values, not probabilities
+        return loss.probabilities(self.scores(X))
 
     def predict(self, X: Any) -> Any:
         """Predictions: class ids (n,) int64 (softmax), a CSR (n, k) tag indicator of the

@@ -11,6 +11,7 @@ from typing import Any
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
 from ranktide.errors import ConfigError
 from ranktide.jsondata import json_data
+from ranktide.losses import LOSS_NAMES
 from ranktide.runs.train import train
 from ranktide.signals import interrupted_message, stop_on_signals
 
@@ -31,7 +32,7 @@ COLUMNS: tuple[tuple[str, str, int, str], ...] = (
 
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("store", metavar="STORE", help="training store (zarr directory or HDF5)")
-    parser.add_argument("--loss", required=True, choices=("softmax", "squared", "multilabel"),
+    parser.add_argument("--loss", required=True, choices=LOSS_NAMES,
                         help="loss matching the store's targets")
     which = parser.add_mutually_exclusive_group(required=True)
     which.add_argument("--lam", type=float, metavar="X", help="trace-norm penalty")

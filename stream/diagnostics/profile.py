@@ -23,10 +23,11 @@ from typing import Any
 import numpy as np
 from ranktide.atomic import atomic_write_bytes, atomic_write_json, load_npz
 from ranktide.errors import ConfigError, ModelError
-from ranktide.losses import LOSS_NAMES, best_intercept
+from ranktide.losses import LOSS_NAMES, TARGET_KIND
 from ranktide.passes.budget import format_bytes, plan_blocks
 from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
+from ranktide.passes.intercept import best_intercept
 from ranktide.store.memory_source import MemorySource, as_source
 
 __all__ = ["profile_store", "ProfileReport", "summarize", "write_profile", "format_report",
@@ -40,7 +41,7 @@ VERDICT_RULE = (
     "read-ahead a pass lasts about the larger of the two."
 )
 
-_LOSS_OF_KIND = {"classes": "softmax", "values": "squared", "tags": "multilabel"}
+_LOSS_OF_KIND = {kind: name for name, kind in TARGET_KIND.items()}
 
 #: a block computing in less than this is dominated by per-block overhead
 #: (common practice, no source)

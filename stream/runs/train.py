@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 from ranktide.errors import ConfigError, InputError
 from ranktide.jsondata import json_data
-from ranktide.losses import check_loss_source, get_loss
+from ranktide.losses import LOSS_NAMES, check_loss_source, get_loss
 from ranktide.model import Model, save_model
 from ranktide.passes.engine import run_pass
 from ranktide.runs.checkpoint import CheckpointSchedule
@@ -34,9 +34,7 @@ __all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDA
 
 #: validation metric per loss: (key in the metrics dict, True when higher is better)
 VALIDATION_METRIC: dict[str, tuple[str, bool]] = {
-    "softmax": ("accuracy", True),
-    "squared": ("rmse", False),
-    "multilabel": ("micro_f1", True),
+    name: (get_loss(name).metric, get_loss(name).higher_is_better) for name in LOSS_NAMES
 }
 
 

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.losses import TARGET_KIND
 from ranktide.model import load_model
 from ranktide.passes.dask_backend import map_blocks_ordered
 from ranktide.scoring.metrics import make_metrics
@@ -36,7 +37,7 @@ __all__ = [
 SCORE_BUDGET = 64 * 2**20
 
 #: Store target kind that each loss needs.
-KIND_OF_LOSS = {"softmax": "classes", "multilabel": "tags", "squared": "values"}
+KIND_OF_LOSS = TARGET_KIND
 
 
 @dataclass(frozen=True)

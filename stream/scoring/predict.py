@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 from ranktide.atomic import atomic_dir
 from ranktide.errors import ConfigError, OutputExistsError
+from ranktide.losses import get_loss
 from ranktide.scoring.evaluate import (
     as_model,
     check_compatible,
@@ -297,9 +298,5 @@ def _predict_block(blk: Any, state: tuple) -> tuple[np.ndarray | None, np.ndarra
 
 def _probabilities(top: np.ndarray, Z: np.ndarray, loss: str) -> np.ndarray:
     """Probabilities of the top scores ``top`` (n, K) given all scores ``Z`` (n, k)."""
-    if loss == "softmax":
-        zmax = Z.max(axis=1, keepdims=True)
-        lse = zmax + np.log(np.exp(Z - zmax).sum(axis=1, keepdims=True))
-        return np.exp(top - lse)
-    return 0.5 * (1.0 + np.tanh(0.5 * top))  # sigmoid without overflow
+    return get_loss(loss).probabilities(Z, top)
 

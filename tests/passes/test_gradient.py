@@ -13,9 +13,10 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError, ModelError
-from ranktide.losses import best_intercept, get_loss
+from ranktide.losses import get_loss
 from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
+from ranktide.passes.intercept import best_intercept
 from ranktide.store.memory_source import MemorySource
 from scipy.optimize import approx_fprime, minimize
 from scipy.special import expit, log_expit, log_softmax, softmax
