@@ -21,6 +21,7 @@ from ranktide.solver.refine_sample import (
     refine_sampled,
 )
 from ranktide.solver.refine_stream import MemoryProjections, ScratchProjections, refine_streamed
+from ranktide.solver.refinement import RefineSettings, refine_projections
 
 LOSSES = ["softmax", "squared", "multilabel"]
 ORACLES = ["memory", "blocks", "scratch"]
@@ -167,3 +168,35 @@ def test_gather_rows_and_full_objective_match_numpy():
     nuc = float(np.linalg.svd(N, compute_uv=False).sum())
     got = full_objective(blocks, "multilabel", 0.05, N, b, nuc)
     assert got == pytest.approx(f + 0.05 * nuc, rel=1e-12)
+
+
+@pytest.mark.parametrize("loss", ["softmax", "multilabel"])
+def test_refine_projections_keeps_falls_back_and_grows(loss):
+    """The driver keeps a sampled answer whose full objective went down, and otherwise
+    runs the exact refinement (its result equals refine's own) and grows the sample."""
+    A, Y, w = _sub(loss, seed=9)
+    n, q, k, lam = A.shape[0], A.shape[1], 4, 0.03
+    N0, b0 = np.zeros((q, k)), np.zeros(k)
+    blocks = MemoryProjections(_blocks(A, Y, w, loss))
+    GN, gb = _full_gradient(A, Y, w, loss, N0, b0, k)
+    F0 = full_objective(blocks, loss, lam, N0, b0, 0.0)
+    cfg = RefineSettings(loss=loss, lam=lam, tol=1e-9, max_iter=3000, stall=0.0)
+    kw = dict(n=n, full_grad_N=GN, full_grad_b=gb)
+    res, info = refine_projections(blocks, "memory", N0, b0, cfg, rows=80,
+                                   rng=np.random.default_rng(0), objective=F0, **kw)
+    assert info["refine_sample_rows"] == 80 and not info["refine_fallback"]
+    nuc = float(res.s.sum())
+    # the objective it reports is the full one at its answer (reference: numpy, below)
+    assert res.objective == pytest.approx(full_objective(blocks, loss, lam, res.N, res.b, nuc))
+    assert res.objective < F0
+    # told that the start was better than it is, the sampled answer looks like an increase:
+    # the exact refinement replaces it and the sample grows four-fold
+    res2, info2 = refine_projections(blocks, "blocks", N0, b0, cfg, rows=80,
+                                     rng=np.random.default_rng(0), objective=-1.0, **kw)
+    exact = refine(A, Y, w, loss, lam, N0, b0, tol=1e-9, max_iter=3000)
+    assert info2["refine_fallback"] and info2["refine_sample_next"] == 320
+    assert res2.objective == pytest.approx(exact.objective, rel=1e-9)
+    res3, info3 = refine_projections(blocks, "memory", N0, b0, cfg, rows=0,
+                                     rng=np.random.default_rng(0), objective=F0, **kw)
+    assert info3 == {"refine_sample_rows": 0}
+    assert res3.objective == exact.objective

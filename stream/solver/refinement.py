@@ -1,0 +1,208 @@
+"""One refinement of the outer loop: exact, or on a row sample with the full-gradient correction.
+
+:func:`sample_rows` decides from shapes and the memory budget; :func:`refine_projections`
+runs the chosen refinement on the pass's cached projections and, for the
+sampled one, checks the full objective at its answer: the answer is kept when
+the full objective went down; the sample grows for the next outer iterations
+when less than half of the surrogate's predicted decrease carried over, and
+when the objective did not go down at all the exact refinement runs instead
+(from the same warm start) and the sample grows four-fold. A sample that
+would hold half the rows or more means the exact refinement from then on.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+from typing import Any
+
+import numpy as np
+from ranktide.solver.apg import ApgProgress
+from ranktide.solver.refine import RefineResult, refine
+from ranktide.solver.refine_sample import draw_sample, full_objective, gather_rows, refine_sampled
+from ranktide.solver.refine_stream import refine_streamed
+from tqdm import tqdm
+
+__all__ = ["DEFAULT_SAMPLE_ROWS", "MIN_SAMPLE_ROWS", "sample_rows", "RefineSettings",
+           "refine_projections", "RefineBar"]
+
+#: Most rows of the automatic sample. Each inner step then costs ``m q k`` whatever ``n`` is;
+#: see tools/bench_refine.py for the measured trade-off.
+DEFAULT_SAMPLE_ROWS = 20_000
+#: Fewest rows of the automatic sample (a budget too small for more keeps the exact refinement).
+MIN_SAMPLE_ROWS = 2_000
+# The automatic sample is used only when the data has at least this many times its rows:
+# below that the exact refinement costs little more (common practice, no source).
+_MIN_RATIO = 4
+# The sample's in-memory refinement may take this fraction of the memory budget.
+_BUDGET_SHARE = 0.25
+
+
+def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: int | None,
+                grown: int) -> int:
+    """Rows of the refinement's sample (0: the exact refinement).
+
+    Parameters
+    ----------
+    n, q, k : int
+        Rows, subspace width, outputs.
+    loss : str
+        The squared loss refines exactly from its sufficient statistics (one
+        ``n q (q + k)`` stream, no per-step cost), so it samples only when
+        ``configured`` asks.
+    budget : int
+        Memory budget in bytes: the sample's scores (five ``m x k`` arrays)
+        and projections take at most a quarter of it.
+    configured : int or None
+        ``SolverConfig.refine_sample_rows``: None chooses automatically, 0
+        turns sampling off, ``m > 0`` asks for ``m`` rows.
+    grown : int
+        The size the sample has grown to (``SolverState.refine_sample_rows``;
+        0: not grown yet).
+
+    Returns
+    -------
+    int
+    """
+    if configured is not None and int(configured) <= 0:
+        return 0
+    if configured is None:
+        if loss == "squared":
+            return 0
+        fit = int(_BUDGET_SHARE * budget) // (8 * (q + 5 * k))
+        m = min(DEFAULT_SAMPLE_ROWS, fit)
+        if m < MIN_SAMPLE_ROWS or n < _MIN_RATIO * m:
+            return 0
+    else:
+        m = int(configured)
+    m = max(m, int(grown))
+    return 0 if 2 * m > n else m
+
+
+@dataclass(frozen=True)
+class RefineSettings:
+    """What every refinement of one solver shares (see :func:`ranktide.solver.refine.refine`)."""
+
+    loss: str
+    lam: float
+    tol: float
+    max_iter: int
+    stall: float
+    class_weights: np.ndarray | None = None
+    should_stop: Callable[[], bool] | None = None
+    progress: Callable[[ApgProgress], Any] | None = None
+
+
+def _exact(blocks: Any, mode: str, N0: np.ndarray, b0: np.ndarray,
+           cfg: RefineSettings) -> RefineResult:
+    kw = dict(tol=cfg.tol, max_iter=cfg.max_iter, class_weights=cfg.class_weights,
+              should_stop=cfg.should_stop, stall=cfg.stall, progress=cfg.progress)
+    if mode == "memory":
+        parts = list(blocks)
+        A = np.concatenate([p[0] for p in parts], axis=0)
+        return refine(A, [p[1] for p in parts], [p[2] for p in parts], cfg.loss, cfg.lam,
+                      N0, b0, **kw)
+    return refine_streamed(blocks, cfg.loss, cfg.lam, N0, b0, **kw)
+
+
+def refine_projections(
+    blocks: Any,
+    mode: str,
+    N0: np.ndarray,
+    b0: np.ndarray,
+    cfg: RefineSettings,
+    *,
+    rows: int,
+    n: int,
+    rng: np.random.Generator,
+    objective: float,
+    full_grad_N: np.ndarray,
+    full_grad_b: np.ndarray,
+) -> tuple[RefineResult, dict]:
+    """Refine on the pass's projections, exactly (``rows == 0``) or on a sample.
+
+    Parameters
+    ----------
+    blocks : re-iterable of (XQ_b, targets_b, weights_b)
+        :class:`ranktide.solver.refine_stream.MemoryProjections` or
+        :class:`ranktide.solver.refine_stream.ScratchProjections`, in row order.
+    mode : {"memory", "blocks", "scratch"}
+        Where the exact refinement works (``"memory"``: on the concatenated
+        projections and the scores of its iterates; otherwise streamed).
+    N0, b0 : (q, k), (k,) arrays
+        The current model in the basis ``Q``.
+    cfg : RefineSettings
+    rows : int
+        Sample rows (from :func:`sample_rows`); 0 for the exact refinement.
+    n : int
+        Rows of the data.
+    rng : numpy.random.Generator
+        Draws the sample (the solver's generator, so a resumed run draws the same).
+    objective : float
+        The full objective at ``(N0, b0)`` (the pass's).
+    full_grad_N : (q, k) array
+        ``Q^T G`` at ``(N0, b0)``, i.e. ``[Gt_U, Gt_Psi]^T`` of the pass.
+    full_grad_b : (k,) array
+
+    Returns
+    -------
+    result : RefineResult
+        With the full objective (and loss) at its answer.
+    info : dict
+        ``refine_sample_rows`` (0: exact), and for a sample ``refine_sample_ratio``
+        (full decrease / predicted), ``refine_fallback`` (the exact refinement
+        replaced it) and ``refine_sample_next`` (the size to use next).
+    """
+    if rows <= 0:
+        return _exact(blocks, mode, N0, b0, cfg), {"refine_sample_rows": 0}
+    idx = draw_sample(n, rows, rng)
+    XQ, T, W = gather_rows(blocks, idx)
+    out = refine_sampled(XQ, T, W, cfg.loss, cfg.lam, N0, b0, full_grad_N, full_grad_b,
+                         tol=cfg.tol, max_iter=cfg.max_iter, class_weights=cfg.class_weights,
+                         should_stop=cfg.should_stop, stall=cfg.stall, progress=cfg.progress)
+    res = out.result
+    nuc = float(res.s.sum())
+    F = full_objective(blocks, cfg.loss, cfg.lam, res.N, res.b, nuc,
+                       class_weights=cfg.class_weights)
+    decrease = objective - F
+    ratio = decrease / out.predicted if out.predicted > 0 else (1.0 if decrease >= 0 else 0.0)
+    info = {"refine_sample_rows": rows, "refine_sample_ratio": float(ratio),
+            "refine_fallback": False, "refine_sample_next": rows}
+    if decrease >= 0:
+        if ratio < 0.5:
+            info["refine_sample_next"] = 2 * rows
+        return replace(res, objective=F, loss=F - cfg.lam * nuc), info
+    info.update(refine_fallback=True, refine_sample_next=4 * rows)
+    exact = _exact(blocks, mode, N0, b0, cfg)
+    return replace(exact, iterations=exact.iterations + res.iterations), info
+
+
+class RefineBar:
+    """A progress line for a long refinement on a terminal (the passes' bar style).
+
+    Shows the inner step, the objective, the relative gap estimate and the
+    estimated seconds left (:class:`ranktide.solver.apg.ApgProgress`); drawn
+    only when ``enabled``, stderr is a terminal, and the refinement lasts more
+    than half a second.
+    """
+
+    def __init__(self, enabled: bool, pass_index: int) -> None:
+        self.bar = None
+        stream = sys.stderr
+        if enabled and hasattr(stream, "isatty") and stream.isatty():
+            self.bar = tqdm(total=None, unit="step", desc=f"refine after pass {pass_index}",
+                            file=stream, delay=0.5, dynamic_ncols=True, leave=False)
+
+    def update(self, p: ApgProgress) -> None:
+        if self.bar is None:
+            return
+        gap = f"{p.gap:.1e}" if math.isfinite(p.gap) else "-"
+        self.bar.set_postfix_str(f"F {p.objective:.6g}  gap {gap}  ETA {p.eta:.0f}s",
+                                 refresh=False)
+        self.bar.update(p.step - self.bar.n)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
