@@ -17,7 +17,7 @@ at >= 50% of the raw floor.
 
 ``--sweep-zstd`` also measures zstd variants (levels; plain zstd vs blosc zstd
 with byte or bit shuffle) on the zarr backend, the measurement that picks the
-form and level used by codec ``"zstd"`` (see ``ranktide.store.ZSTD_LEVEL``).
+form and level used by codec ``"zstd"`` (see ``ranktide.store.format.ZSTD_LEVEL``).
 
 If ``tools/bench_ingest.py`` exists and defines ``run(out_dir) -> dict``, it is
 called and its figures are merged under ``"ingest"``.
@@ -49,6 +49,7 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
+import ranktide.store.format as store_format  # noqa: E402
 from ranktide import store as store_mod  # noqa: E402
 from ranktide.atomic import atomic_write_json  # noqa: E402
 from ranktide.store.format import DEFAULT_CODEC  # noqa: E402
@@ -360,7 +361,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--nnz", type=int, default=20_000_000, help="nonzeros of the test matrix")
     ap.add_argument("--repeat", type=int, default=3, help="round-robin repetitions (best kept)")
     ap.add_argument("--passes", type=int, default=3, help="passes per measurement process")
-    ap.add_argument("--block-bytes", type=int, default=store_mod.DEFAULT_BLOCK_BYTES)
+    ap.add_argument("--block-bytes", type=int, default=store_format.DEFAULT_BLOCK_BYTES)
     ap.add_argument("--workdir", default=None, help="where the stores go (default: a temp dir)")
     ap.add_argument("--sweep-zstd", action="store_true", help="also measure zstd variants")
     ap.add_argument("--no-ingest", action="store_true", help="skip tools/bench_ingest.py")
@@ -450,7 +451,7 @@ def _run(args: argparse.Namespace, out_dir: Path, work: Path) -> int:
         "n_blocks": floor["n_blocks"],
         "repeat": args.repeat,
         "passes": args.passes,
-        "zstd_level": store_mod.ZSTD_LEVEL,
+        "zstd_level": store_format.ZSTD_LEVEL,
         "cpu_count": os.cpu_count(),
         "rows": [{k: v for k, v in c.items() if k not in ("path", "mode")} for c in configs],
         "verdict": verdict,

@@ -44,31 +44,23 @@ This module is the public face of the store; the code lives in
 * :mod:`ranktide.store.from_arrays` — :func:`write_store` (in-memory input);
 
 and ``ranktide.store._zarr`` / ``ranktide.store._hdf5`` implement the backends.
-Every name is re-exported here, so ``from ranktide.store import ...`` keeps
-working. Assigning a tunable on this module (``CHUNK_ELEMENTS``,
-``_INDPTR_PIECE``, ..., see :data:`ranktide.store.format.TUNABLES`), e.g. with
-``mock.patch.object(ranktide.store, "CHUNK_ELEMENTS", n)``, also assigns it in
-:mod:`ranktide.store.format`, where the writer and reader read it at call time.
+The public names are re-exported here. The tunables (``CHUNK_ELEMENTS``,
+``DEFAULT_BLOCK_BYTES``, ``ZSTD_LEVEL`` and the private piece and buffer
+sizes, see :data:`ranktide.store.format.TUNABLES`) live in
+:mod:`ranktide.store.format` only, where the writer and reader read them at call
+time: assign them there (``mock.patch.object(ranktide.store.format,
+"CHUNK_ELEMENTS", n)``). They are not re-exported, so that an assignment here
+cannot silently change nothing.
 """
 
 from __future__ import annotations
 
-from ranktide.store.format import (  # noqa: F401  (re-exported names and tunables)
-    _FREE_REFS,
-    _INDPTR_PIECE,
-    _INT32_LIMIT,
-    _SLAB_CHUNKS,
-    _SPARE_BUFFERS,
-    ATTRS_KEY,
+from ranktide.store.format import (
     BACKENDS,
-    CHUNK_ELEMENTS,
     CODECS,
-    DEFAULT_BLOCK_BYTES,
     FORMAT_NAME,
     FORMAT_VERSION,
     KINDS,
-    ZSTD_LEVEL,
-    ChunkCheck,
     StoreBackend,
 )
 from ranktide.store.from_arrays import write_store
@@ -83,8 +75,9 @@ __all__ = [
     "open_store",
     "write_store",
     "create_store",
+    "BACKENDS",
+    "CODECS",
     "FORMAT_NAME",
     "FORMAT_VERSION",
-    "CHUNK_ELEMENTS",
-    "DEFAULT_BLOCK_BYTES",
+    "KINDS",
 ]

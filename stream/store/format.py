@@ -7,8 +7,8 @@ them back; :mod:`ranktide.store.backends` is the one module that imports both ba
 
 The tunables (:data:`CHUNK_ELEMENTS`, :data:`DEFAULT_BLOCK_BYTES`,
 :data:`ZSTD_LEVEL` and the private piece and buffer sizes) are read from this
-module at call time, so setting one here (or on :mod:`ranktide.store`, which
-forwards the assignment) takes effect for the next store written or read.
+module at call time, so setting one here takes effect for the next store written
+or read. They live here only (:mod:`ranktide.store` does not re-export them).
 """
 
 from __future__ import annotations

@@ -16,15 +16,14 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import ranktide.store.format as _fmt
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError
 from ranktide.store.reader import Block as _StoreBlock
 from ranktide.store.reader import open_store
 
-__all__ = ["MemorySource", "as_source", "DEFAULT_BLOCK_BYTES", "split_ranges"]
-
-#: Default decoded CSR bytes per block (the store uses the same default).
-DEFAULT_BLOCK_BYTES = 64 * 2**20
+__all__ = ["MemorySource", "as_source", "split_ranges", "infer_kind", "standard_matrix",
+           "standard_targets", "standard_weights"]
 
 _KINDS = ("classes", "values", "tags")
 
@@ -62,7 +61,7 @@ def split_ranges(
         At most about this many decoded CSR bytes (``bytes_per_entry`` per
         nonzero plus 8 per row pointer) per range; a single row larger than
         the budget forms a range alone. Defaults to
-        :data:`DEFAULT_BLOCK_BYTES` when ``rows`` is not given either.
+        :data:`ranktide.store.format.DEFAULT_BLOCK_BYTES` when ``rows`` is not given either.
     bytes_per_entry : int
         Decoded bytes per nonzero (4 for float32 data + 4 or 8 for indices).
 
@@ -80,7 +79,7 @@ def split_ranges(
     if block_bytes is not None and int(block_bytes) < 1:
         raise ConfigError(f"block bytes = {block_bytes}: must be positive; pass a larger budget")
     if rows is None and block_bytes is None:
-        block_bytes = DEFAULT_BLOCK_BYTES
+        block_bytes = _fmt.DEFAULT_BLOCK_BYTES
     if block_bytes is None:
         step = int(rows)
         starts = np.arange(0, n, step, dtype=np.int64)
@@ -104,19 +103,31 @@ def split_ranges(
     return [(int(a), int(b)) for a, b in zip(starts, stops, strict=True)]
 
 
-def _infer_kind(targets: Any) -> str | None:
+def infer_kind(targets: Any, kind: str | None = None) -> str | None:
+    """The target kind of in-memory ``targets`` (``kind`` when given, checked).
+
+    A scipy sparse matrix holds tags (its nonzero entries); a 1-D integer array
+    holds class ids; any other numeric array, 1-D or 2-D, holds values (a 1-D
+    array is one output).
+    """
     if targets is None:
+        if kind is not None:
+            raise ConfigError(f"kind={kind!r} given without targets; pass targets or drop kind")
         return None
+    if kind is not None:
+        if kind not in _KINDS:
+            raise ConfigError(f"target kind {kind!r} is unknown; use one of {', '.join(_KINDS)}")
+        return kind
     if sp.issparse(targets):
         return "tags"
     arr = np.asarray(targets)
     if arr.ndim == 1 and np.issubdtype(arr.dtype, np.integer):
         return "classes"
-    if arr.ndim == 2:
+    if arr.ndim in (1, 2) and np.issubdtype(arr.dtype, np.number):
         return "values"
     raise InputError(
-        "in-memory targets: expected class ids (1-D integers), values (2-D) or tags "
-        f"(sparse 2-D), got shape {arr.shape} dtype {arr.dtype}; pass kind= explicitly"
+        "in-memory targets: expected class ids (1-D integers), values (1-D or 2-D numbers) or "
+        f"tags (sparse 2-D), got shape {arr.shape} dtype {arr.dtype}; pass kind= explicitly"
     )
 
 
@@ -155,13 +166,11 @@ class MemorySource:
         n_outputs: int | None = None,
         names: list[str] | None = None,
     ) -> None:
-        self.X = _standard_csr(X)
+        self.X = standard_matrix(X)
         n, d = self.X.shape
-        self.kind = kind if kind is not None else _infer_kind(targets)
-        if self.kind is not None and self.kind not in _KINDS:
-            raise ConfigError(f"target kind {self.kind!r}: must be one of {', '.join(_KINDS)}")
-        self.targets, self._k = _standard_targets(targets, self.kind, n, n_outputs)
-        self.weights = _standard_weights(weights, n)
+        self.kind = infer_kind(targets, kind)
+        self.targets, self._k = standard_targets(targets, self.kind, n, n_outputs)
+        self.weights = standard_weights(weights, n)
         self.output_names = list(names) if names is not None else None
         if self.output_names is not None and len(self.output_names) != self._k:
             raise InputError(
@@ -256,28 +265,46 @@ class MemorySource:
         self.close()
 
 
-def _standard_csr(X: Any) -> sp.csr_matrix:
-    if not sp.issparse(X):
-        raise InputError(
-            f"in-memory features: expected a scipy sparse matrix, got {type(X).__name__}; "
-            "wrap dense arrays with scipy.sparse.csr_matrix"
-        )
-    X = sp.csr_matrix(X)
+def standard_matrix(X: Any) -> sp.csr_matrix:
+    """In-memory features as canonical CSR (float32 data, sorted, duplicates summed).
+
+    Accepts a scipy sparse matrix or a dense 2-D numeric array (converted to CSR;
+    nothing sparse is ever densified). Values must be finite.
+    """
+    if sp.issparse(X):
+        X = sp.csr_matrix(X)
+    else:
+        a = np.asarray(X)
+        if a.ndim != 2 or not np.issubdtype(a.dtype, np.number):
+            raise InputError(
+                f"in-memory features: expected a 2-D numeric matrix (scipy sparse or dense), "
+                f"got {a.dtype} of shape {a.shape}"
+            )
+        X = sp.csr_matrix(a)
+    if X.shape[1] < 1:
+        raise InputError(f"in-memory features: {X.shape[1]} columns; at least one is needed")
     if X.data.dtype != np.float32:
         X = X.astype(np.float32)
-    if not X.has_sorted_indices:
-        X = X.sorted_indices()
+    if not X.has_canonical_format:
+        X = X.copy()
+        X.sum_duplicates()
     if not np.all(np.isfinite(X.data)):
         bad = int(np.flatnonzero(~np.isfinite(X.data))[0])
         row = int(np.searchsorted(X.indptr, bad, side="right") - 1)
         raise InputError(
-            f"in-memory features: row {row} has a non-finite value; "
-            "remove or replace NaN/inf entries"
+            f"in-memory features: row {row + 1}, column {int(X.indices[bad]) + 1}: value "
+            f"{float(X.data[bad])} is not finite; remove or replace NaN/inf entries"
         )
     return X
 
 
-def _standard_targets(targets: Any, kind: str | None, n: int, n_outputs: int | None):
+def standard_targets(targets: Any, kind: str | None, n: int, n_outputs: int | None = None):
+    """Targets of ``kind`` for ``n`` rows in the form blocks carry, and the output count.
+
+    Class ids become int32 (n,); values float32 (n, k) (a 1-D array is one
+    output column); tags a canonical float32 CSR (n, k) of ones without explicit
+    zeros.
+    """
     if kind is None or targets is None:
         if targets is not None or kind is not None:
             raise InputError("in-memory targets: kind given without targets; pass both or neither")
@@ -293,12 +320,15 @@ def _standard_targets(targets: Any, kind: str | None, n: int, n_outputs: int | N
         if n and (y.min() < 0 or y.max() >= k):
             row = int(np.flatnonzero((y < 0) | (y >= k))[0])
             raise InputError(
-                f"in-memory class ids: row {row} has class {int(y[row])} outside "
+                f"in-memory class ids: row {row + 1} has class {int(y[row])} outside "
                 f"0..{k - 1}; fix the id or raise n_outputs"
             )
         return y.astype(np.int32), k
     if kind == "values":
-        Y = np.asarray(targets, dtype=np.float32)
+        Y = np.asarray(targets.toarray() if sp.issparse(targets) else targets,
+                       dtype=np.float32)
+        if Y.ndim == 1:
+            Y = Y[:, None]
         if Y.ndim != 2 or Y.shape[0] != n:
             raise InputError(
                 f"in-memory values: expected shape ({n}, k), got {Y.shape}; "
@@ -306,19 +336,23 @@ def _standard_targets(targets: Any, kind: str | None, n: int, n_outputs: int | N
             )
         if not np.all(np.isfinite(Y)):
             row = int(np.flatnonzero(~np.isfinite(Y).all(axis=1))[0])
-            raise InputError(f"in-memory values: row {row} has a non-finite value; replace it")
+            raise InputError(f"in-memory values: row {row + 1} has a non-finite value; replace it")
         return np.ascontiguousarray(Y), int(Y.shape[1])
     T = sp.csr_matrix(targets, dtype=np.float32)
     if T.shape[0] != n:
         raise InputError(
             f"in-memory tags: expected {n} rows, got {T.shape[0]}; pass one tag row per row"
         )
-    T.sum_duplicates()
+    if not T.has_canonical_format:
+        T = T.copy()
+        T.sum_duplicates()
+    T.eliminate_zeros()
     T.data[:] = 1.0
     return T, int(T.shape[1])
 
 
-def _standard_weights(weights: Any, n: int) -> np.ndarray | None:
+def standard_weights(weights: Any, n: int) -> np.ndarray | None:
+    """Row weights as float32 (n,), finite and >= 0 (None stays None)."""
     if weights is None:
         return None
     w = np.asarray(weights, dtype=np.float32)
@@ -330,7 +364,7 @@ def _standard_weights(weights: Any, n: int) -> np.ndarray | None:
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
         raise InputError(
-            f"in-memory weights: row {row} has weight {float(w[row])}; "
+            f"in-memory weights: row {row + 1} has weight {float(w[row])}; "
             "weights must be finite and >= 0"
         )
     return w

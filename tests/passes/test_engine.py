@@ -270,16 +270,23 @@ def test_split_ranges_rows_only():
 
 def test_memsource_rejects_bad_input():
     X, y, w = _data(n=10)
-    with pytest.raises(InputError, match="row 3 has weight -1.0"):
+    # rows counted from 1 in messages (index 3 is row 4), as Matrix Market counts them
+    with pytest.raises(InputError, match="row 4 has weight -1.0"):
         MemorySource(X, y, weights=np.where(np.arange(10) == 3, -1.0, 1.0))
-    with pytest.raises(InputError, match="row 2 has class 9"):
+    with pytest.raises(InputError, match="row 3 has class 9"):
         MemorySource(X, np.where(np.arange(10) == 2, 9, 0), n_outputs=5)
     bad = X.copy()
     bad.data[0] = np.nan
-    with pytest.raises(InputError, match="non-finite"):
+    with pytest.raises(InputError, match="not finite"):
         MemorySource(bad)
-    with pytest.raises(InputError, match="expected a scipy sparse matrix"):
-        MemorySource(np.zeros((3, 3)))
+    with pytest.raises(InputError, match="expected a 2-D numeric matrix"):
+        MemorySource(np.zeros(3))
+    # a dense 2-D array is accepted, as write_store and evaluate accept it (one standardizer)
+    dense = MemorySource(X.toarray(), y)
+    assert (dense.X != X).nnz == 0 and dense.target_kind == "classes"
+    # 1-D float targets are one column of values everywhere
+    vals = MemorySource(X, np.linspace(0.0, 1.0, 10))
+    assert vals.target_kind == "values" and vals.n_outputs == 1
     with pytest.raises(ConfigError, match="expected a store"):
         as_source(42)
 
