@@ -2,14 +2,25 @@
 
 A write that matters goes to a temporary sibling, is flushed and fsynced, and
 is renamed over the final name; a failure removes the temporary and leaves the
-final name untouched.
+final name untouched. An existing output is replaced by exchanging the two
+directory entries in one step (Linux ``renameat2(RENAME_EXCHANGE)``), so a
+kill at any moment leaves the complete old or the complete new output; where
+the exchange is unavailable the old one is renamed aside first and the next
+run restores it if the process died between the two renames
+(:func:`clean_stale_siblings`).
+
+Temporary siblings are named ``.NAME.TAG-PID-HEX``: a sibling whose process
+is gone is stale and is removed by the next command writing ``NAME``.
 """
 
 from __future__ import annotations
 
 import contextlib
+import ctypes
+import errno
 import json
 import os
+import re
 import shutil
 import uuid
 from collections.abc import Iterator, Mapping
@@ -29,13 +40,131 @@ __all__ = [
     "save_npz",
     "load_npz",
     "remove_path",
+    "exchange_paths",
+    "replace_with",
+    "stale_siblings",
+    "clean_stale_siblings",
 ]
+
+#: ``.NAME.TAG-PID-HEX`` (and ``.NAME.TAG-HEX`` written by earlier versions)
+_SIBLING_RE = re.compile(r"^(?P<tag>[a-z]+)-(?:(?P<pid>\d+)-)?(?P<hex>[0-9a-f]{8,10})$")
+
+_AT_FDCWD = -100
+_RENAME_EXCHANGE = 2
+try:  # glibc >= 2.28 exports renameat2; elsewhere the fallback below is used
+    _renameat2 = ctypes.CDLL(None, use_errno=True).renameat2
+    _renameat2.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p,
+                           ctypes.c_uint]
+    _renameat2.restype = ctypes.c_int
+except (AttributeError, OSError):
+    _renameat2 = None
 
 
 def temp_sibling(path: str | os.PathLike, tag: str = "tmp") -> Path:
-    """Return an unused temporary path next to ``path`` (same file system)."""
+    """Return an unused temporary path next to ``path`` (same file system).
+
+    The name carries this process's id, so a later run can tell a sibling
+    left by a killed process (stale) from one being written right now.
+    """
     p = Path(path)
-    return p.with_name(f".{p.name}.{tag}-{uuid.uuid4().hex[:10]}")
+    return p.with_name(f".{p.name}.{tag}-{os.getpid()}-{uuid.uuid4().hex[:10]}")
+
+
+def _alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # someone else's live process
+        return True
+    return True
+
+
+def stale_siblings(path: str | os.PathLike) -> list[Path]:
+    """Temporary siblings of ``path`` left by processes that no longer run."""
+    p = Path(path)
+    parent = p.parent if str(p.parent) else Path(".")
+    prefix = f".{p.name}."
+    found = []
+    try:
+        entries = list(parent.iterdir())
+    except OSError:
+        return []
+    for entry in entries:
+        if not entry.name.startswith(prefix):
+            continue
+        m = _SIBLING_RE.match(entry.name[len(prefix):])
+        if m is None:
+            continue
+        pid = m.group("pid")
+        if pid is None or not _alive(int(pid)):
+            found.append(entry)
+    return sorted(found)
+
+
+def clean_stale_siblings(path: str | os.PathLike) -> list[str]:
+    """Remove stale temporary siblings of ``path``; return their names.
+
+    When ``path`` itself is missing and a stale ``old`` sibling exists (a
+    replacement by rename-aside was killed between its two renames), the old
+    output is renamed back first, so the user gets back what they had.
+    """
+    p = Path(path)
+    stale = stale_siblings(p)
+    if not os.path.lexists(p):
+        olds = [s for s in stale if _SIBLING_RE.match(s.name[len(p.name) + 2:]).group("tag")
+                == "old"]
+        if olds:
+            newest = max(olds, key=lambda s: s.lstat().st_mtime)
+            os.rename(newest, p)
+            stale.remove(newest)
+    for s in stale:
+        remove_path(s)
+    if stale:
+        fsync_dir(p.parent if str(p.parent) else ".")
+    return [s.name for s in stale]
+
+
+def exchange_paths(a: str | os.PathLike, b: str | os.PathLike) -> bool:
+    """Swap two existing directory entries in one atomic step.
+
+    Returns False where the system cannot (no ``renameat2``, or a file
+    system without ``RENAME_EXCHANGE``); the caller then falls back.
+    """
+    if _renameat2 is None:
+        return False
+    rc = _renameat2(_AT_FDCWD, os.fsencode(os.fspath(a)), _AT_FDCWD,
+                    os.fsencode(os.fspath(b)), _RENAME_EXCHANGE)
+    if rc == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.EINVAL, errno.ENOSYS, errno.EOPNOTSUPP):
+        return False
+    raise OSError(err, os.strerror(err), os.fspath(a))
+
+
+def replace_with(tmp: str | os.PathLike, final: str | os.PathLike) -> None:
+    """Put the complete ``tmp`` at ``final``, replacing what is there.
+
+    The old ``final`` stays whole until the new one has its name: the two are
+    exchanged in one step, then the old one (now at ``tmp``) is removed.
+    Without the exchange the old one is renamed aside, the new one renamed
+    in, and the old one removed; a kill between the two renames is repaired
+    by :func:`clean_stale_siblings` on the next run.
+    """
+    tmp_p, fin = Path(tmp), Path(final)
+    if not os.path.lexists(fin):
+        os.rename(tmp_p, fin)
+    elif exchange_paths(tmp_p, fin):
+        remove_path(tmp_p)
+    else:
+        old = temp_sibling(fin, "old")
+        os.rename(fin, old)
+        os.rename(tmp_p, fin)
+        remove_path(old)
+    fsync_dir(fin.parent if str(fin.parent) else ".")
 
 
 def fsync_dir(path: str | os.PathLike) -> None:
@@ -117,6 +246,7 @@ def atomic_dir(final: str | os.PathLike, *, overwrite: bool = False) -> Iterator
         ``final``; on an exception it is removed.
     """
     fin = Path(final)
+    clean_stale_siblings(fin)
     if fin.exists() and not overwrite:
         raise OutputExistsError(f"{fin}: already exists; pass --overwrite to replace it")
     tmp = temp_sibling(fin)
@@ -124,14 +254,7 @@ def atomic_dir(final: str | os.PathLike, *, overwrite: bool = False) -> Iterator
         yield tmp
         if tmp.exists():
             fsync_tree(tmp)
-        old = None
-        if fin.exists():
-            old = temp_sibling(fin, "old")
-            os.replace(fin, old)
-        os.replace(tmp, fin)
-        if old is not None:
-            remove_path(old)
-        fsync_dir(fin.parent)
+        replace_with(tmp, fin)
     except BaseException:
         remove_path(tmp)
         raise

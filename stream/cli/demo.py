@@ -6,6 +6,7 @@ import argparse
 import json
 
 from ranktide.cli.demo_workflow import run_demo
+from ranktide.outputs import check_output
 
 HELP = "Run the whole workflow on invented data: ingest, split, train a path, evaluate, report"
 EXAMPLE = "ranktide demo --size small --out demo-out"
@@ -25,6 +26,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    # the demo decides itself what it may replace (an earlier demo); here: a writable place
+    check_output(args.out, overwrite=True, kind="dir")
     made = run_demo(args.out, size=args.size, seed=args.seed, quiet=args.quiet or args.json,
                     overwrite=args.overwrite)
     if args.json:

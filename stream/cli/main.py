@@ -14,10 +14,13 @@ line on stderr and the command exits with status 2.
 from __future__ import annotations
 
 import argparse
+import errno
 import importlib
+import os
 import sys
 from collections.abc import Sequence
 
+from ranktide import __version__
 from ranktide.errors import KernelError, RanktideError
 
 COMMANDS: tuple[str, ...] = (
@@ -38,7 +41,33 @@ class _Parser(argparse.ArgumentParser):
     """Argument parser whose usage errors are one line and exit status 2."""
 
     def error(self, message: str) -> None:  # type: ignore[override]
-        self.exit(2, f"ranktide {self.prog.split()[-1]}: {message} (see --help)\n")
+        words = self.prog.split()
+        who = "ranktide" if len(words) < 2 else f"ranktide {words[-1]}"
+        self.exit(2, f"{who}: {message} (see --help)\n")
+
+
+#: what to do after an operating-system error, by errno
+_OS_HINTS: dict[int, str] = {
+    errno.ENOSPC: "the disk is full: free space or write to another file system; nothing "
+                  "half-written was kept",
+    errno.EDQUOT: "the disk quota is exceeded: free space or write elsewhere",
+    errno.EROFS: "the file system is read-only: choose a writable directory",
+    errno.EACCES: "permission denied: choose a directory you can write to",
+    errno.EPERM: "not permitted: choose a directory you can write to",
+    errno.ENOENT: "check the path",
+    errno.ENOTDIR: "a part of the path is a file, not a directory: check the path",
+    errno.EISDIR: "it is a directory; give a file",
+    errno.ELOOP: "a symbolic-link loop: point the link at a real file",
+    errno.ENAMETOOLONG: "use a shorter path",
+}
+
+
+def os_error_line(exc: OSError) -> str:
+    """One line for an operating-system error: the path, the reason, what to do."""
+    where = exc.filename if exc.filename is not None else "ranktide"
+    reason = exc.strerror or (os.strerror(exc.errno) if exc.errno else type(exc).__name__)
+    hint = _OS_HINTS.get(exc.errno or 0, "fix the problem and run the command again")
+    return f"{where}: {reason}; {hint}"
 
 
 def _load(name: str):
@@ -51,6 +80,7 @@ def build_parser() -> argparse.ArgumentParser:
         prog="ranktide",
         description="Out-of-core trace-norm regularized linear models for large sparse data.",
     )
+    parser.add_argument("--version", action="version", version=f"ranktide {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for name in COMMANDS:
         try:
@@ -84,16 +114,22 @@ def main(argv: Sequence[str] | None = None) -> int:
         msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         print(f"ranktide {args.command}: error: {msg}", file=sys.stderr)
         return 2
+    except MemoryError:
+        print(f"ranktide {args.command}: error: out of memory; give a smaller --memory budget "
+              "(or --block-rows) so the command plans within it, or free memory",
+              file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print(f"ranktide {args.command}: interrupted", file=sys.stderr)
         return 130
     except BrokenPipeError:
         # the reader of stdout went away (e.g. `| head`): stop quietly, as shell tools do
-        import os
-
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 141
+    except OSError as exc:
+        print(f"ranktide {args.command}: error: {os_error_line(exc)}", file=sys.stderr)
+        return 2
 
 
 if __name__ == "__main__":

@@ -7,6 +7,7 @@ import json
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
 from ranktide.errors import ConfigError
+from ranktide.outputs import check_output, check_source
 from ranktide.scoring.predict import predict_to_file
 
 HELP = "Predict every row of a store (streamed) into CSV, .npy or zarr"
@@ -34,6 +35,13 @@ def configure(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     if args.top < 1:
         raise ConfigError(f"--top {args.top}: must be at least 1")
+    if args.block_rows is not None and args.block_rows < 1:
+        raise ConfigError(f"--block-rows {args.block_rows}: must be at least 1")
+    check_source(args.model, "model")
+    check_source(args.store, "store")
+    kind = "dir" if str(args.out).endswith(".zarr") else "file"
+    check_output(args.out, {"the model": args.model, "the store": args.store},
+                 overwrite=args.overwrite, kind=kind)
     with cluster_backend(args) as backend:
         info = predict_to_file(args.model, args.store, args.out, top_k=args.top,
                                proba=args.proba, block_rows=args.block_rows,

@@ -5,11 +5,14 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from pathlib import Path
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
 from ranktide.diagnostics.profile import format_report, jsonable, profile_store, write_profile
-from ranktide.errors import ConfigError
+from ranktide.errors import ConfigError, InputError
+from ranktide.outputs import check_output, check_source, files_into
 from ranktide.passes.budget import parse_memory
+from ranktide.store.reader import open_store
 
 HELP = "Profile solver-style passes over a store: I/O vs compute per block and phase"
 EXAMPLE = "ranktide profile data.zarr --passes 3 --rank 16 --out prof"
@@ -46,13 +49,28 @@ def run(args: argparse.Namespace) -> int:
     if args.block_rows is not None and args.block_rows < 1:
         raise ConfigError(f"--block-rows {args.block_rows}: must be at least 1")
     budget = parse_memory(args.memory) if args.memory is not None else None
+    check_source(args.store, "store")
+    if args.model is not None:
+        check_source(args.model, "--model")
+    if args.out:
+        check_output(args.out, {"the store": args.store, "--model": args.model},
+                     overwrite=True, kind="dir")
+    with open_store(args.store) as st:
+        if st.target_kind is None:
+            raise InputError(f"{args.store}: the store has no targets; profile times "
+                             "solver-style passes, which need them: ingest it with --labels, "
+                             "--values or --tags")
     with cluster_backend(args) as backend:
         report = profile_store(
             args.store, model=args.model, passes=args.passes, rank=args.rank,
             backend=backend, block_rows=args.block_rows, memory=budget,
             n_threads=args.threads, seed=args.seed, progress=not args.quiet,
         )
-    paths = write_profile(report, args.out) if args.out else {}
+    paths = {}
+    if args.out:
+        with files_into(args.out) as tmp:
+            made = write_profile(report, tmp)
+        paths = {k: Path(args.out) / p.name for k, p in made.items()}
     if args.json:
         print(json.dumps(jsonable(report.summary), indent=2, sort_keys=True))
     elif not args.quiet:

@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import argparse
 import json
+from pathlib import Path
 
 from ranktide.diagnostics.report import write_report
+from ranktide.outputs import check_output, check_source, files_into
 
 HELP = "Plot a run (objective, gap, rank, singular values, path, profile) into PNGs + HTML"
 EXAMPLE = "ranktide report run --out run/report"
@@ -20,8 +22,18 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    page = write_report(args.run_dir, args.out)
-    figures = sorted(str(p) for p in page.parent.glob("*.png"))
+    run = check_source(args.run_dir, "run directory")
+    out = run / "report" if args.out is None else Path(args.out)
+    parts = {f"the run's {name}": run / name
+             for name in ("model", "checkpoints", "config.json", "history.jsonl")}
+    # the report may live inside the run (its default), but never over the run's own files
+    check_output(out, {"the run": run, **parts}, overwrite=True, kind="dir",
+                 may_lie_inside=("the run",))
+    with files_into(out) as tmp:
+        made = write_report(run, tmp)
+        names = sorted(p.name for p in tmp.glob("*.png"))
+    page = out / made.name
+    figures = [str(out / n) for n in names]
     if args.json:
         print(json.dumps({"report": str(page), "figures": figures}))
     elif not args.quiet:

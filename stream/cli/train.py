@@ -153,7 +153,9 @@ def run(args: argparse.Namespace) -> int:
             checkpoint_seconds=args.checkpoint_seconds, checkpoint_passes=args.checkpoint_passes,
         )
     if res.status == "interrupted":
-        print(interrupted_message(args.out), file=sys.stderr, flush=True)
+        # a discarded replacement run (--overwrite) has no run directory to resume
+        print(interrupted_message(args.out) if res.run_dir else f"ranktide: {res.message}",
+              file=sys.stderr, flush=True)
         return stop.exit_code or 130
     if args.json:
         print(json.dumps(_summary(res), indent=2, sort_keys=True))

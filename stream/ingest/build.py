@@ -21,14 +21,14 @@ import shutil
 import sys
 import threading
 import time
-import uuid
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from ranktide.errors import ConfigError, InputError, OutputExistsError
+from ranktide.atomic import temp_sibling
+from ranktide.errors import ConfigError, InputError
 from ranktide.ingest.mmio import (
     CHUNK_BYTES,
     EntryChunk,
@@ -39,6 +39,7 @@ from ranktide.ingest.mmio import (
 )
 from ranktide.ingest.targets import TargetSource, WeightSource, open_targets, open_weights
 from ranktide.kernels import parse as kp
+from ranktide.outputs import check_output, check_source
 from ranktide.passes.budget import parse_memory
 from ranktide.store import create_store
 from ranktide.store.format import DEFAULT_CODEC
@@ -405,16 +406,6 @@ def _parse_memory(memory: Any) -> int:
     return int(parse_memory(memory))
 
 
-def _check_output(out: Path, overwrite: bool) -> None:
-    if out.exists() and not overwrite:
-        raise OutputExistsError(f"{out}: already exists; pass --overwrite to replace it")
-    parent = out.parent if str(out.parent) else Path(".")
-    if not parent.is_dir():
-        raise InputError(f"{out}: the directory {parent} does not exist; create it first")
-    if not os.access(parent, os.W_OK | os.X_OK):
-        raise InputError(f"{out}: cannot write in {parent} (permission denied); pick another path")
-
-
 class _Progress:
     """A tqdm bar over file bytes with entries/s; silent when disabled."""
 
@@ -556,14 +547,14 @@ def _ingest_npz(hdr, out, tsrc, memory, a) -> tuple[Any, _RowSink, int, int]:
     return writer, sink, int(M.nnz), 0
 
 
-def _validate(source, out, duplicates, fmt, overwrite) -> tuple[Path, Path]:
+def _validate(source, out, duplicates, fmt, overwrite, files) -> tuple[Path, Path]:
     if duplicates not in DUPLICATES:
         raise ConfigError(f"duplicates={duplicates!r} is unknown; use 'sum' or 'error'")
-    out_p = Path(out)
-    _check_output(out_p, overwrite)
-    src = Path(source)
-    if src.resolve() == out_p.resolve():
-        raise ConfigError(f"{out_p}: the output would overwrite the source; pick another path")
+    src = check_source(source, "source")
+    for what, path in files.items():
+        if path is not None:
+            check_source(path, f"{what} file")
+    out_p = check_output(out, {"the source": src, **files}, overwrite=overwrite)
     return src, out_p
 
 
@@ -624,7 +615,9 @@ def ingest(
         ``out`` exists and ``overwrite`` is false.
     """
     t0 = time.perf_counter()
-    src, out_p = _validate(source, out, duplicates, fmt, overwrite)
+    src, out_p = _validate(source, out, duplicates, fmt, overwrite,
+                           {"--labels": labels, "--values": values, "--tags": tags,
+                            "--weights": weights})
     budget = _parse_memory(memory)
     plan = _plan(budget)
     hdr = read_header(src, fmt=fmt, one_based=one_based)
@@ -634,7 +627,7 @@ def ingest(
         tsrc.check_rows(hdr.n_rows)
     a = {"backend": backend, "codec": codec, "overwrite": overwrite, "duplicates": duplicates}
     bar = _Progress(progress, hdr.file_bytes, f"ingest {src.name}")
-    scratch = out_p.parent / f".{out_p.name}.scratch-{uuid.uuid4().hex[:8]}"
+    scratch = temp_sibling(out_p, "scratch")
     writer = None
     try:
         streamed = hdr.fmt == "mm"

@@ -13,10 +13,11 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from ranktide.errors import CheckpointError, ConfigError
+from ranktide.errors import CheckpointError, ConfigError, ModelError
+from ranktide.model import load_model
 from ranktide.runs.checkpoint import CheckpointSchedule
 from ranktide.runs.rundir import RESUME_MUTABLE, RunDir, RunRecorder, check_resume_compatible
-from ranktide.runs.train import train
+from ranktide.runs.train import TrainResult, train
 from ranktide.signals import StopFlag
 from ranktide.solver.greedy import SolverState
 from ranktide.store import open_store
@@ -112,6 +113,42 @@ def load_resume_point(
     )
 
 
+def _num(meta: Mapping[str, Any], key: str) -> float:
+    v = meta.get(key)
+    return float(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else float("nan")
+
+
+def finished_result(point: ResumePoint) -> TrainResult | None:
+    """The result of a run that already converged, from its model; None otherwise.
+
+    A finished run whose solver state is ``done`` (and that a tightened
+    tolerance did not reopen) has nothing left to do: its model, with the
+    gap certificate it was written with, is kept as it is.
+    """
+    if not point.context.get("finished") or getattr(point.state, "phase", None) != "done":
+        return None
+    try:
+        model = load_model(point.run.model_dir)
+    except ModelError:
+        return None  # killed between the last checkpoint and the model: train on
+    meta = dict(model.meta)
+    rel = meta.get("rel_gap")
+    tol = point.run.settings.get("tol")
+    how = f"relative gap estimate {rel:.2e} <= tol {tol}" if isinstance(rel, float) else \
+        "converged"
+    passes = meta.get("passes")
+    return TrainResult(
+        model=model, objective=_num(meta, "objective"), gap=_num(meta, "gap"),
+        sigma_ratio=_num(meta, "sigma_ratio"), rank=int(len(model.s)),
+        passes=int(passes) if isinstance(passes, int) else int(point.state.passes),
+        seconds=_num(meta, "seconds"), status=str(meta.get("status") or "converged"),
+        message=f"already finished ({how}); nothing to resume, model kept",
+        history=[h for h in point.run.read_history() if h.get("kind") == "pass"],
+        lam=_num(meta, "lam"), lam_max=meta.get("lam_max"), run_dir=str(point.run.path),
+        grad_b_norm=_num(meta, "grad_b_norm"),
+    )
+
+
 def _resume_backend(saved: str) -> str:
     """The saved backend, or ``"serial"`` for one that needs a cluster session."""
     return "serial" if saved == "dask" else saved
@@ -189,6 +226,9 @@ def resume(
     _check_changes(changes)
     with open_store(where) as src:
         point = load_resume_point(run.path, fingerprint=src.fingerprint, changes=changes)
+        done = finished_result(point)
+        if done is not None:  # converged and not reopened: keep its model and certificate
+            return done
         s = point.run.settings
         cw = s.get("class_weights")
         return train(

@@ -9,6 +9,13 @@ Layout::
       checkpoints/     see :mod:`ranktide.runs.checkpoint`
       model/           the final model (written by the trainer)
 
+A new run is built under a temporary sibling (``.RUN.run-PID-HEX``) and gets
+its name only once there is something to resume: at its first checkpoint
+(:meth:`RunDir.publish`). A run replacing an older one (``--overwrite``) keeps
+the temporary name until it is complete (:meth:`RunDir.complete`), when the
+two are exchanged in one step; until then the old run is untouched. A run
+that fails before it has a name is removed (:meth:`RunDir.discard`).
+
 Resume rules: the store must have the fingerprint recorded in ``config.json``
 and every setting must be unchanged except those in :data:`RESUME_MUTABLE`
 (budgets, tolerance, checkpoint cadence, output verbosity).
@@ -25,7 +32,14 @@ from typing import Any
 
 import numpy as np
 from ranktide import __version__
-from ranktide.atomic import atomic_write_bytes, atomic_write_json, fsync_dir, remove_path
+from ranktide.atomic import (
+    atomic_write_bytes,
+    atomic_write_json,
+    fsync_dir,
+    remove_path,
+    replace_with,
+    temp_sibling,
+)
 from ranktide.errors import CheckpointError, ConfigError, OutputExistsError
 from ranktide.runs.checkpoint import CheckpointManager, CheckpointSchedule, canonical_json
 from ranktide.signals import StopFlag
@@ -151,11 +165,64 @@ class RunDir:
     Use :meth:`create` for a new run and :meth:`open` for an existing one.
     """
 
-    def __init__(self, path: str | os.PathLike, config: dict[str, Any]) -> None:
+    def __init__(self, path: str | os.PathLike, config: dict[str, Any], *,
+                 final: str | os.PathLike | None = None, replaces: bool = False) -> None:
         self.path = Path(path)
         self.config = config
         self.checkpoints = CheckpointManager(self.path)
         self._history_len: int | None = None
+        #: the name the run gets (None: it already has it)
+        self.final: Path | None = None if final is None else Path(final)
+        #: it replaces an older run at ``final`` (swapped in only when complete)
+        self.replaces = bool(replaces)
+
+    # ----------------------------------------------------------------- naming
+    @property
+    def published(self) -> bool:
+        """The run has its final name."""
+        return self.final is None
+
+    def _move_to(self, final: Path) -> None:
+        self.path = final
+        ck = self.checkpoints
+        ck.run_dir, ck.dir = final, final / "checkpoints"
+        if ck._last is not None:
+            ck._last = ck.dir / ck._last.name
+        self.final = None
+
+    def publish(self) -> None:
+        """Give a new run its name (after its first checkpoint); no-op otherwise.
+
+        A run replacing an older one waits for :meth:`complete`.
+        """
+        if self.final is None or self.replaces:
+            return
+        fin = self.final
+        if fin.is_dir() and not fin.is_symlink() and not any(fin.iterdir()):
+            fin.rmdir()  # an empty directory given as the run counts as absent
+        if os.path.lexists(fin):
+            raise OutputExistsError(
+                f"{fin}: appeared while the run was being built; the new run is kept at "
+                f"{self.path}"
+            )
+        os.rename(self.path, fin)
+        fsync_dir(fin.parent)
+        self._move_to(fin)
+
+    def complete(self) -> None:
+        """The run is finished: give it its name, replacing an older run in one step."""
+        if self.final is None:
+            return
+        if self.replaces:
+            replace_with(self.path, self.final)
+            self._move_to(self.final)
+        else:
+            self.publish()
+
+    def discard(self) -> None:
+        """Remove a run that never got its name (failed or abandoned); no-op otherwise."""
+        if self.final is not None:
+            remove_path(self.path)
 
     # --------------------------------------------------------------- locations
     @property
@@ -197,7 +264,11 @@ class RunDir:
         fingerprint: str,
         overwrite: bool = False,
     ) -> RunDir:
-        """Create a new run directory with its ``config.json``.
+        """Create a new run directory with its ``config.json``, under a temporary name.
+
+        The run gets the name ``path`` at its first checkpoint
+        (:meth:`publish`), or, when it replaces an existing run, once it is
+        complete (:meth:`complete`); :meth:`discard` removes it before then.
 
         Raises
         ------
@@ -205,14 +276,12 @@ class RunDir:
             When ``path`` already holds something and ``overwrite`` is false.
         """
         p = Path(path)
-        if p.exists() and (not p.is_dir() or any(p.iterdir())):
-            if not overwrite:
-                raise OutputExistsError(
-                    f"{p}: already exists; pass --overwrite to replace it, or continue it with "
-                    f"ranktide resume {p}"
-                )
-
-            remove_path(p)
+        occupied = os.path.lexists(p) and (not p.is_dir() or any(p.iterdir()))
+        if occupied and not overwrite:
+            raise OutputExistsError(
+                f"{p}: already exists; pass --overwrite to replace it, or continue it with "
+                f"ranktide resume {p}"
+            )
         try:
             settings_doc = json.loads(canonical_json(dict(settings)))
         except (TypeError, ValueError) as exc:
@@ -228,12 +297,17 @@ class RunDir:
                 "fingerprint": fingerprint,
             },
         }
-        p.mkdir(parents=True, exist_ok=True)
-        (p / "checkpoints").mkdir(exist_ok=True)
-        atomic_write_json(p / "config.json", config)
-        atomic_write_bytes(p / "history.jsonl", b"")
-        fsync_dir(p)
-        return cls(p, config)
+        stage = temp_sibling(p, "run")
+        try:
+            stage.mkdir()
+            (stage / "checkpoints").mkdir()
+            atomic_write_json(stage / "config.json", config)
+            atomic_write_bytes(stage / "history.jsonl", b"")
+            fsync_dir(stage)
+        except BaseException:
+            remove_path(stage)
+            raise
+        return cls(stage, config, final=p, replaces=occupied)
 
     @classmethod
     def open(cls, path: str | os.PathLike) -> RunDir:
@@ -378,6 +452,8 @@ class RunRecorder:
             "settings": self.run.settings,
         }
         path = self.run.checkpoints.save(arrays, doc)
+        self.run.publish()  # a new run gets its name once there is something to resume
+        path = self.run.checkpoints.dir / path.name
         self.schedule.reset()
         self.checkpoints_written += 1
         self.last_checkpoint = path

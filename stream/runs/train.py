@@ -19,12 +19,14 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from ranktide.atomic import temp_sibling
 from ranktide.errors import ConfigError, InputError
 from ranktide.jsondata import json_data
 from ranktide.losses import LOSS_NAMES, check_loss_source, get_loss
 from ranktide.model import Model, save_model
 from ranktide.passes.engine import run_pass
 from ranktide.runs.checkpoint import CheckpointSchedule
+from ranktide.runs.checks import check_train_inputs, check_train_output
 from ranktide.runs.rundir import RunDir, RunRecorder
 from ranktide.scoring.evaluate import evaluate
 from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverResult
@@ -396,11 +398,16 @@ def train(
 
     CheckpointSchedule(seconds=checkpoint_seconds, passes=checkpoint_passes)  # validates them
 
+    if out is not None:  # before anything is read or made (ranktide.outputs)
+        check_train_output(out, source, valid, class_weight, overwrite=overwrite)
     opened = isinstance(source, (str, os.PathLike))
     src = as_source(source, targets=targets, weights=weights)
-    solver = None
+    solver = run = None
     try:
         check_loss_source(loss, src)
+        check_train_inputs(src, loss, valid, memory=memory, power_size=power_size,
+                           expand_size=expand_size, dense_gradient=dense_gradient,
+                           backend=backend, block_rows=block_rows)
         cw = resolve_class_weights(class_weight, src, backend=backend, block_rows=block_rows)
         cfg = SolverConfig(loss=loss, lam=lam, lam_frac=lam_frac, tol=tol,
                            max_passes=int(max_passes), seed=int(seed), memory=memory,
@@ -411,7 +418,7 @@ def train(
             cfg = resume_point.solver_config(cfg)
         scratch = None
         if out is not None:
-            scratch = Path(out) / "scratch"
+            scratch = temp_sibling(out, "scratch")  # the run has no name yet
         elif resume_point is not None:
             scratch = Path(resume_point.run.path) / "scratch"
         solver = GreedySolver(src, cfg, progress=progress,
@@ -442,6 +449,10 @@ def train(
             result = _train_path(solver, rec, deadline, fingerprint, src, loss, int(path),
                                  float(path_min_frac), valid, block_rows, ctx)
         if stop is not None and stop:
+            if run is not None and not run.published:  # it would replace an older run
+                run.discard()
+                return _with(result, status="interrupted", run_dir=None,
+                             message=f"interrupted by {stop.signal_name}; {out} is unchanged")
             return _with(result, status="interrupted",
                          run_dir=None if run is None else str(run.path),
                          message=f"interrupted by {stop.signal_name}; checkpoint written"
@@ -451,9 +462,12 @@ def train(
             ckpt.checkpoint(solver.state)
         if run is not None:
             save_model(run.model_dir, result.model, overwrite=True)
+            run.complete()  # the run gets its name (replacing an older one) only now
             result = _with(result, run_dir=str(run.path))
         return result
     finally:
+        if run is not None:
+            run.discard()  # a run that never got its name (failed): nothing is left
         if solver is not None:
             solver.remove_scratch()
         if opened:

@@ -11,6 +11,7 @@ shared with a prefetch thread. The layout is documented in :mod:`ranktide.store`
 
 from __future__ import annotations
 
+import errno
 import os
 import sys
 import threading
@@ -451,6 +452,12 @@ def _sniff_backend(p: Path) -> str:
         return "zarr"
     if p.is_file():
         return "hdf5"
+    if p.is_symlink():
+        try:
+            os.stat(p)
+        except OSError as exc:
+            why = "a symbolic-link loop" if exc.errno == errno.ELOOP else "a broken symbolic link"
+            raise StoreError(f"{p}: the store path is {why}; point it at a store") from None
     raise StoreError(f"{p}: no such store; check the path or create it with `ranktide ingest`")
 
 

@@ -14,7 +14,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from ranktide.errors import ConfigError, OutputExistsError
+from ranktide.errors import ConfigError
+from ranktide.outputs import check_not_overlapping, check_output, real_path
 from ranktide.store.reader import open_store
 from ranktide.store.writer import create_store
 
@@ -94,13 +95,13 @@ def _append_rows(writer: Any, b: Any, rows: np.ndarray, kind: str | None) -> Non
 def _check(store_path: Path, out_train: Path, out_hold: Path, holdout: float, overwrite: bool):
     if not (0.0 < float(holdout) < 1.0):
         raise ConfigError(f"holdout={holdout}: must be a fraction strictly between 0 and 1")
-    if out_train.resolve() == out_hold.resolve():
+    if real_path(out_train) == real_path(out_hold):
         raise ConfigError(f"{out_train}: the train and holdout outputs must differ")
-    for p in (out_train, out_hold):
-        if p.resolve() == store_path.resolve():
-            raise ConfigError(f"{p}: an output would overwrite the input store; pick another path")
-        if p.exists() and not overwrite:
-            raise OutputExistsError(f"{p}: already exists; pass --overwrite to replace it")
+    check_not_overlapping(out_hold, {"the train output": out_train}, option="--out-holdout")
+    check_not_overlapping(out_train, {"the holdout output": out_hold}, option="--out")
+    check_output(out_train, {"the input store": store_path}, overwrite=overwrite)
+    check_output(out_hold, {"the input store": store_path}, overwrite=overwrite,
+                 option="--out-holdout")
 
 
 def split_store(

@@ -316,9 +316,11 @@ def test_schedule_by_passes_and_seconds():
 def _run(tmp_path, **settings):
     base = {"loss": "softmax", "lam": 0.1, "seed": 7, "max_passes": 20, "tol": 1e-6}
     base.update(settings)
-    return RunDir.create(
+    run = RunDir.create(
         tmp_path / "run", settings=base, store_path=tmp_path / "s.zarr", fingerprint="ab" * 32
     )
+    run.publish()  # a new run takes its name at its first checkpoint; here at once
+    return run
 
 
 def test_rundir_layout_and_reopen(tmp_path):
