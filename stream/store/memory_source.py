@@ -19,6 +19,7 @@ import numpy as np
 import ranktide.store.format as _fmt
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError
+from ranktide.store.blocking import cut_ranges
 from ranktide.store.reader import Block as _StoreBlock
 from ranktide.store.reader import open_store
 
@@ -71,36 +72,8 @@ def split_ranges(
         Consecutive, non-empty ranges covering ``0..n``.
     """
     indptr = np.asarray(indptr, dtype=np.int64)
-    n = indptr.size - 1
-    if n <= 0:
-        return []
-    if rows is not None and int(rows) < 1:
-        raise ConfigError(f"block rows = {rows}: must be at least 1; pass a positive --block-rows")
-    if block_bytes is not None and int(block_bytes) < 1:
-        raise ConfigError(f"block bytes = {block_bytes}: must be positive; pass a larger budget")
-    if rows is None and block_bytes is None:
-        block_bytes = _fmt.DEFAULT_BLOCK_BYTES
-    if block_bytes is None:
-        step = int(rows)
-        starts = np.arange(0, n, step, dtype=np.int64)
-    else:
-        # cumulative decoded bytes at each row boundary; greedy cut points found
-        # with searchsorted (one call per block, never a loop over rows)
-        cum = indptr * int(bytes_per_entry) + 8 * np.arange(n + 1, dtype=np.int64)
-        starts_list = [0]
-        a = 0
-        cap_rows = int(rows) if rows is not None else n
-        while a < n:
-            limit = cum[a] + int(block_bytes)
-            b = int(np.searchsorted(cum, limit, side="right")) - 1
-            b = max(b, a + 1)
-            b = min(b, a + cap_rows, n)
-            if b < n:
-                starts_list.append(b)
-            a = b
-        starts = np.asarray(starts_list, dtype=np.int64)
-    stops = np.append(starts[1:], n)
-    return [(int(a), int(b)) for a, b in zip(starts, stops, strict=True)]
+    return cut_ranges([(0, indptr)], indptr.size - 1, rows=rows, block_bytes=block_bytes,
+                      bytes_per_entry=bytes_per_entry, default_bytes=_fmt.DEFAULT_BLOCK_BYTES)
 
 
 def infer_kind(targets: Any, kind: str | None = None) -> str | None:

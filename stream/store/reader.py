@@ -26,6 +26,7 @@ import ranktide.store.format as _fmt
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, StoreError
 from ranktide.store.backends import backend_class
+from ranktide.store.blocking import cut_ranges
 from ranktide.store.checksums import n_segments, segment_checksum
 from ranktide.store.format import (
     FORMAT_NAME,
@@ -330,41 +331,18 @@ class Store:
         -------
         list of (int, int)
         """
-        n = self.n_rows
         if rows is not None and block_bytes is not None:
             raise ConfigError("give rows= or block_bytes=, not both")
-        if rows is not None:
-            rows = int(rows)
-            if rows < 1:
-                raise ConfigError(f"rows per block must be >= 1, got {rows}")
-            cuts = list(range(0, n, rows)) + [n]
-            return [(a, b) for a, b in zip(cuts[:-1], cuts[1:], strict=True) if b > a]
-        budget = _fmt.DEFAULT_BLOCK_BYTES if block_bytes is None else int(block_bytes)
-        if budget < 1:
-            raise ConfigError(f"block_bytes must be >= 1, got {block_bytes}")
-        return self._byte_cuts(budget)
-
-    def _byte_cuts(self, budget: int) -> list[tuple[int, int]]:
         n = self.n_rows
-        if n == 0:
-            return []
         per_entry = np.dtype(self.attrs["arrays"]["indices"]["dtype"]).itemsize + 4
-        cuts = [0]
-        a_cost = 0
+        return cut_ranges(self._indptr_pieces(), n, rows=rows, block_bytes=block_bytes,
+                          bytes_per_entry=per_entry, default_bytes=_fmt.DEFAULT_BLOCK_BYTES)
+
+    def _indptr_pieces(self) -> Iterator[tuple[int, np.ndarray]]:
+        """The row pointers in pieces of :data:`ranktide.store.format._INDPTR_PIECE` rows."""
+        n = self.n_rows
         for p0 in range(0, n, _fmt._INDPTR_PIECE):
-            p1 = min(n, p0 + _fmt._INDPTR_PIECE)
-            ip = self.indptr_range(p0, p1)
-            cost = ip * per_entry + 8 * np.arange(p0, p1 + 1, dtype=np.int64)
-            while True:
-                j = int(np.searchsorted(cost, a_cost + budget, side="right")) - 1
-                if j == cost.shape[0] - 1 and p1 < n:
-                    break  # the cut lies beyond this piece
-                b = max(p0 + j, cuts[-1] + 1)
-                cuts.append(b)
-                a_cost = int(cost[b - p0])
-                if b == n:
-                    break
-        return list(zip(cuts[:-1], cuts[1:], strict=True))
+            yield p0, self.indptr_range(p0, min(n, p0 + _fmt._INDPTR_PIECE))
 
     def read_block(self, start: int, stop: int) -> Block:
         """Decode rows ``start:stop`` (touches only the chunks they overlap)."""
