@@ -43,6 +43,7 @@ import numpy as np
 from numba import njit, prange
 
 from .errors import KernelInputError
+from .sparse import _check_dense
 from .threads import kernel_guard
 
 __all__ = ["compensated_add", "compensated_combine", "csc_t_matmul_compensated"]
@@ -215,8 +216,6 @@ def csc_t_matmul_compensated(T, D: np.ndarray, S: np.ndarray, C: np.ndarray, *,
     where : str
         Data source name for error messages.
     """
-    from .sparse import _check_dense
-
     n, d = T.shape
     _check_dense("D", D, n, where)
     D = np.ascontiguousarray(D, dtype=np.float64)

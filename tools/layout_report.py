@@ -14,6 +14,10 @@ with ``--out DIR``.
 Usage::
 
     .venv/bin/python tools/layout_report.py [--out DIR]
+    # an older commit, whose packages were installed as `stream` and `kernels`:
+    git worktree add /tmp/old 8a29293
+    .venv/bin/python tools/layout_report.py --tree /tmp/old --package stream=stream \
+        --package kernels=kernels
 """
 
 from __future__ import annotations
@@ -29,10 +33,10 @@ ROOT = Path(__file__).resolve().parent.parent
 FOLDERS = {"ranktide": ROOT / "stream", "ranktide.kernels": ROOT / "kernels"}
 
 
-def module_files() -> dict[str, Path]:
+def module_files(folders: dict[str, Path] | None = None) -> dict[str, Path]:
     """Map each project module name to its file."""
     out: dict[str, Path] = {}
-    for prefix, folder in FOLDERS.items():
+    for prefix, folder in (folders or FOLDERS).items():
         for path in sorted(folder.rglob("*.py")):
             rel = path.relative_to(folder).with_suffix("")
             parts = [p for p in rel.parts if p != "__init__"]
@@ -48,8 +52,10 @@ def _resolve(node: ast.ImportFrom, name: str, is_pkg: bool) -> str:
     return ".".join(base + ([node.module] if node.module else []))
 
 
-def imports_of(name: str, path: Path, known: set[str]) -> tuple[set[str], list[str]]:
-    """(modules imported at module level, descriptions of imports inside functions)."""
+def imports_of(name: str, path: Path, known: set[str],
+               include_inner: bool = False) -> tuple[set[str], list[str]]:
+    """(modules imported at module level — and inside functions with ``include_inner`` —,
+    descriptions of imports inside functions)."""
     tree = ast.parse(path.read_text(), filename=str(path))
     top: set[str] = set()
     inner: list[str] = []
@@ -71,7 +77,9 @@ def imports_of(name: str, path: Path, known: set[str]) -> tuple[set[str], list[s
         if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)):
             for sub in ast.walk(node):
                 for t in targets(sub):
-                    inner.append(f"{path.relative_to(ROOT)}:{sub.lineno} -> {t}")
+                    inner.append(f"{path.name}:{sub.lineno} -> {t}")
+                    if include_inner:
+                        top.add(t)
     top.discard(name)
     return top, inner
 
@@ -146,21 +154,24 @@ def levels(graph: dict[str, set[str]], groups: list[list[str]]) -> dict[str, int
     return {m: level(m, frozenset()) for m in graph}
 
 
-def report() -> dict:
-    files = module_files()
+def report(folders: dict[str, Path] | None = None, root: Path = ROOT,
+           include_inner: bool = False) -> dict:
+    """The figures of the module docstring for the packages in ``folders`` (name -> folder);
+    ``include_inner`` counts imports inside functions as edges too (loops they hide show)."""
+    files = module_files(folders)
     known = set(files)
     graph: dict[str, set[str]] = {}
     inner: list[str] = []
     for name, path in files.items():
-        graph[name], found = imports_of(name, path, known)
+        graph[name], found = imports_of(name, path, known, include_inner)
         inner.extend(found)
     groups = strongly_connected(graph)
     lev = levels(graph, groups)
     per_folder: dict[str, int] = defaultdict(int)
     lines = {}
     for path in files.values():
-        per_folder[str(path.parent.relative_to(ROOT))] += 1
-        lines[str(path.relative_to(ROOT))] = sum(1 for _ in path.open())
+        per_folder[str(path.parent.relative_to(root))] += 1
+        lines[str(path.relative_to(root))] = sum(1 for _ in path.open())
     longest = sorted(lines.items(), key=lambda kv: -kv[1])[:5]
     return {
         "modules": len(files),
@@ -176,14 +187,26 @@ def report() -> dict:
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--out", type=Path, help="write layout.json into this directory")
+    ap.add_argument("--tree", type=Path, default=ROOT,
+                    help="another checkout (e.g. an older commit's `git worktree`)")
+    ap.add_argument("--package", action="append", default=[], metavar="NAME=FOLDER",
+                    help="import name and folder of a package in --tree (repeatable; default "
+                    "ranktide=stream and ranktide.kernels=kernels)")
+    ap.add_argument("--all-imports", action="store_true",
+                    help="count imports inside functions as edges too")
     args = ap.parse_args(argv)
-    rep = report()
+    pairs = [p.split("=", 1) for p in args.package] or [["ranktide", "stream"],
+                                                       ["ranktide.kernels", "kernels"]]
+    rep = report({name: args.tree / folder for name, folder in pairs}, args.tree.resolve(),
+                 args.all_imports)
     print(f"modules          {rep['modules']}")
     print(f"import levels    {rep['import_levels']}")
     print(f"loops            {len(rep['loops'])} {rep['loops'] or ''}")
     print(f"imports inside functions  {len(rep['imports_inside_functions'])}")
-    for item in rep["imports_inside_functions"]:
+    for item in rep["imports_inside_functions"][:20]:
         print(f"  {item}")
+    if len(rep["imports_inside_functions"]) > 20:
+        print(f"  ... {len(rep['imports_inside_functions']) - 20} more in the JSON")
     print("modules per folder")
     for folder, n in rep["modules_per_folder"].items():
         print(f"  {folder:24s} {n:3d}")
