@@ -43,7 +43,7 @@ from ranktide.kernels.sparse import csr_t_matmul_accumulate
 from ranktide.losses import check_loss_source, get_loss
 from ranktide.passes.engine import PassProfile, phase, run_pass
 from ranktide.passes.kernel_path import CHOOSER
-from ranktide.solver.refine_stream import write_projection_block
+from ranktide.passes.projections import write_projection_block
 from ranktide.store.memory_source import as_source
 
 __all__ = [
@@ -92,7 +92,7 @@ class PassRequest:
     projections_dir : str, optional
         With ``keep_projections``: write each block's projections to a
         scratch ``.npz`` file in this directory (see
-        :class:`ranktide.solver.refine_stream.ScratchProjections`) instead of keeping
+        :class:`ranktide.passes.projections.ScratchProjections`) instead of keeping
         them in memory; the result's projections then name the files.
     dense_gradient : bool
         Also accumulate the dense ``G`` (d x k).

@@ -47,11 +47,8 @@ from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
 from ranktide.signals import StopRequested
 from ranktide.solver.refine import _blas_one_thread, refine
-from ranktide.solver.refine_stream import (
-    MemoryProjections,
-    ScratchProjections,
-    refine_streamed,
-)
+from ranktide.passes.projections import MemoryProjections, ScratchProjections
+from ranktide.solver.refine_stream import refine_streamed
 from ranktide.solver.subspace import orth_against
 from ranktide.store.memory_source import as_source
 

@@ -8,7 +8,7 @@ solves the same subproblem (DESIGN §7 step 3)::
 
 keeping only q x k iterates: every evaluation streams over the blocks of the
 cached projections ``A = X Q`` (held in memory, or in scratch files written
-by the gradient pass, see :class:`ScratchProjections`), forms one block's
+by the gradient pass, see :mod:`ranktide.passes.projections`), forms one block's
 scores ``A_b N + b``, its loss and residual ``R_b``, and adds ``A_b^T R_b``.
 The loop is :func:`ranktide.solver.apg.apg`, the same as the in-memory
 refinement's, driven by :class:`StreamOracle` (one stream per evaluation,
@@ -19,133 +19,17 @@ for the squared loss, by the sufficient statistics that one stream gives
 
 from __future__ import annotations
 
-import os
-from collections.abc import Callable, Iterable, Iterator, Sequence
-from pathlib import Path
+from collections.abc import Callable, Iterable
 from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-from ranktide.errors import ConfigError, StoreError
+from ranktide.errors import ConfigError
 from ranktide.losses import get_loss
 from ranktide.solver.apg import ApgProgress, Curvature, apg
 from ranktide.solver.refine import CURVATURE, RefineResult, SquaredOracle, refine_result
 
-__all__ = ["refine_streamed", "StreamOracle", "squared_oracle", "ScratchProjections",
-           "MemoryProjections", "write_projection_block"]
-
-
-# ---------------------------------------------------------------- projection sources
-class MemoryProjections:
-    """Projection blocks held in memory: ``(XQ_b, targets_b, weights_b)`` triples."""
-
-    def __init__(self, blocks: Sequence[tuple[np.ndarray, Any, np.ndarray | None]]) -> None:
-        if not blocks:
-            raise ConfigError("refine: no projection blocks; the pass kept none")
-        self._blocks = list(blocks)
-
-    def __iter__(self) -> Iterator[tuple[np.ndarray, Any, np.ndarray | None]]:
-        return iter(self._blocks)
-
-    @property
-    def q(self) -> int:
-        return int(self._blocks[0][0].shape[1])
-
-
-class ScratchProjections:
-    """Projection blocks written to a scratch directory, one ``.npz`` per block.
-
-    Each file holds ``XQ`` (n_b x q float64), the block's targets (``y``,
-    ``Y``, or ``tag_indptr``/``tag_indices``) and optionally ``w``; files are
-    written with ``allow_pickle=False`` and read back the same way. The
-    directory is the caller's (the solver makes one per pass and removes it).
-    """
-
-    def __init__(self, directory: str | os.PathLike, k: int) -> None:
-        self.dir = Path(directory)
-        self.k = int(k)
-        self.files: list[Path] = []
-
-    @classmethod
-    def from_files(cls, paths: Sequence[str | os.PathLike], k: int) -> ScratchProjections:
-        """The blocks that :func:`write_projection_block` wrote, in row order."""
-        if not paths:
-            raise ConfigError("refine: no scratch projection files; the pass wrote none")
-        obj = cls(Path(paths[0]).parent, k)
-        obj.files = [Path(p) for p in paths]
-        return obj
-
-    def add(self, start: int, XQ: np.ndarray, targets: Any, weights: np.ndarray | None) -> None:
-        """Write one block (blocks must be added in row order)."""
-        self.files.append(write_projection_block(self.dir, start, XQ, targets, weights))
-        self._q = int(XQ.shape[1])
-
-    def __iter__(self) -> Iterator[tuple[np.ndarray, Any, np.ndarray | None]]:
-        for path in self.files:
-            with np.load(path, allow_pickle=False) as z:
-                XQ = z["XQ"]
-                if "y" in z:
-                    targets: Any = z["y"]
-                elif "Y" in z:
-                    targets = z["Y"]
-                else:
-                    ip, ix = z["tag_indptr"], z["tag_indices"]
-                    targets = sp.csr_matrix((np.ones(ix.shape[0], np.float32), ix, ip),
-                                            shape=(XQ.shape[0], self.k))
-                w = z["w"] if "w" in z else None
-            yield XQ, targets, w
-
-    def nbytes(self) -> int:
-        return int(sum(p.stat().st_size for p in self.files))
-
-    def remove(self) -> None:
-        """Delete the scratch files (and the directory when it is left empty)."""
-        for p in self.files:
-            p.unlink(missing_ok=True)
-        self.files = []
-        try:
-            self.dir.rmdir()
-        except OSError:
-            pass
-
-
-def write_projection_block(directory: str | os.PathLike, start: int, XQ: np.ndarray,
-                           targets: Any, weights: np.ndarray | None) -> Path:
-    """Write one block's projections, targets and weights to ``DIR/xq-START.npz``.
-
-    Parameters
-    ----------
-    directory : path
-        The scratch directory (created if missing).
-    start : int
-        The block's first row (names the file, so files sort in row order).
-    XQ : (n_b, q) array
-    targets : (n_b,) class ids, (n_b, k) values, or (n_b, k) sparse tags
-    weights : (n_b,) raw row weights or None
-
-    Returns
-    -------
-    Path
-    """
-    arrays: dict[str, np.ndarray] = {"XQ": np.ascontiguousarray(XQ, dtype=np.float64)}
-    if sp.issparse(targets):
-        T = sp.csr_matrix(targets)
-        arrays["tag_indptr"] = T.indptr.astype(np.int64)
-        arrays["tag_indices"] = T.indices.astype(np.int64)
-    else:
-        t = np.asarray(targets)
-        arrays["y" if t.ndim == 1 else "Y"] = t
-    if weights is not None:
-        arrays["w"] = np.asarray(weights)
-    d = Path(directory)
-    path = d / f"xq-{int(start):012d}.npz"
-    try:
-        d.mkdir(parents=True, exist_ok=True)
-        np.savez(path, **arrays)
-    except OSError as exc:
-        raise StoreError(f"{path}: cannot write the refinement's scratch file ({exc}); "
-                         "free disk space or point the scratch directory elsewhere") from exc
-    return path
+__all__ = ["refine_streamed", "StreamOracle", "squared_oracle"]
 
 
 # ---------------------------------------------------------------- the streamed oracle

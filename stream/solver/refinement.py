@@ -126,8 +126,8 @@ def refine_projections(
     Parameters
     ----------
     blocks : re-iterable of (XQ_b, targets_b, weights_b)
-        :class:`ranktide.solver.refine_stream.MemoryProjections` or
-        :class:`ranktide.solver.refine_stream.ScratchProjections`, in row order.
+        :class:`ranktide.passes.projections.MemoryProjections` or
+        :class:`ranktide.passes.projections.ScratchProjections`, in row order.
     mode : {"memory", "blocks", "scratch"}
         Where the exact refinement works (``"memory"``: on the concatenated
         projections and the scores of its iterates; otherwise streamed).

@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from conic import solve_conic
+from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopFlag, StopRequested
 from ranktide.solver.refine import loss_and_residual, refine, rows_for_loss
 from ranktide.solver.refine_sample import (
@@ -20,7 +21,7 @@ from ranktide.solver.refine_sample import (
     gather_rows,
     refine_sampled,
 )
-from ranktide.solver.refine_stream import MemoryProjections, ScratchProjections, refine_streamed
+from ranktide.solver.refine_stream import refine_streamed
 from ranktide.solver.refinement import RefineSettings, refine_projections
 
 LOSSES = ["softmax", "squared", "multilabel"]

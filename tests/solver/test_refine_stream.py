@@ -13,7 +13,8 @@ from conic import solve_conic
 from ranktide.errors import ConfigError
 from ranktide.signals import StopFlag, StopRequested
 from ranktide.solver.refine import refine
-from ranktide.solver.refine_stream import MemoryProjections, ScratchProjections, refine_streamed
+from ranktide.passes.projections import MemoryProjections, ScratchProjections
+from ranktide.solver.refine_stream import refine_streamed
 
 
 def _sub(loss, seed=1, n=150, q=5, k=4):

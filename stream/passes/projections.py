@@ -1,0 +1,132 @@
+"""The cached projections ``X Q`` of a pass, per row block: in memory or in scratch files.
+
+The gradient pass keeps each block's projections (with the block's targets and
+weights) for the refinement; when the memory budget cannot hold them it writes
+them here, one ``.npz`` file per block, and the refinement streams them back.
+The pass writes them, so this module owns their file format.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+from ranktide.errors import ConfigError, StoreError
+
+__all__ = ["MemoryProjections", "ScratchProjections", "write_projection_block"]
+
+
+class MemoryProjections:
+    """Projection blocks held in memory: ``(XQ_b, targets_b, weights_b)`` triples."""
+
+    def __init__(self, blocks: Sequence[tuple[np.ndarray, Any, np.ndarray | None]]) -> None:
+        if not blocks:
+            raise ConfigError("refine: no projection blocks; the pass kept none")
+        self._blocks = list(blocks)
+
+    def __iter__(self) -> Iterator[tuple[np.ndarray, Any, np.ndarray | None]]:
+        return iter(self._blocks)
+
+    @property
+    def q(self) -> int:
+        return int(self._blocks[0][0].shape[1])
+
+
+class ScratchProjections:
+    """Projection blocks written to a scratch directory, one ``.npz`` per block.
+
+    Each file holds ``XQ`` (n_b x q float64), the block's targets (``y``,
+    ``Y``, or ``tag_indptr``/``tag_indices``) and optionally ``w``; files are
+    written with ``allow_pickle=False`` and read back the same way. The
+    directory is the caller's (the solver makes one per pass and removes it).
+    """
+
+    def __init__(self, directory: str | os.PathLike, k: int) -> None:
+        self.dir = Path(directory)
+        self.k = int(k)
+        self.files: list[Path] = []
+
+    @classmethod
+    def from_files(cls, paths: Sequence[str | os.PathLike], k: int) -> ScratchProjections:
+        """The blocks that :func:`write_projection_block` wrote, in row order."""
+        if not paths:
+            raise ConfigError("refine: no scratch projection files; the pass wrote none")
+        obj = cls(Path(paths[0]).parent, k)
+        obj.files = [Path(p) for p in paths]
+        return obj
+
+    def add(self, start: int, XQ: np.ndarray, targets: Any, weights: np.ndarray | None) -> None:
+        """Write one block (blocks must be added in row order)."""
+        self.files.append(write_projection_block(self.dir, start, XQ, targets, weights))
+        self._q = int(XQ.shape[1])
+
+    def __iter__(self) -> Iterator[tuple[np.ndarray, Any, np.ndarray | None]]:
+        for path in self.files:
+            with np.load(path, allow_pickle=False) as z:
+                XQ = z["XQ"]
+                if "y" in z:
+                    targets: Any = z["y"]
+                elif "Y" in z:
+                    targets = z["Y"]
+                else:
+                    ip, ix = z["tag_indptr"], z["tag_indices"]
+                    targets = sp.csr_matrix((np.ones(ix.shape[0], np.float32), ix, ip),
+                                            shape=(XQ.shape[0], self.k))
+                w = z["w"] if "w" in z else None
+            yield XQ, targets, w
+
+    def nbytes(self) -> int:
+        return int(sum(p.stat().st_size for p in self.files))
+
+    def remove(self) -> None:
+        """Delete the scratch files (and the directory when it is left empty)."""
+        for p in self.files:
+            p.unlink(missing_ok=True)
+        self.files = []
+        try:
+            self.dir.rmdir()
+        except OSError:
+            pass
+
+
+def write_projection_block(directory: str | os.PathLike, start: int, XQ: np.ndarray,
+                           targets: Any, weights: np.ndarray | None) -> Path:
+    """Write one block's projections, targets and weights to ``DIR/xq-START.npz``.
+
+    Parameters
+    ----------
+    directory : path
+        The scratch directory (created if missing).
+    start : int
+        The block's first row (names the file, so files sort in row order).
+    XQ : (n_b, q) array
+    targets : (n_b,) class ids, (n_b, k) values, or (n_b, k) sparse tags
+    weights : (n_b,) raw row weights or None
+
+    Returns
+    -------
+    Path
+    """
+    arrays: dict[str, np.ndarray] = {"XQ": np.ascontiguousarray(XQ, dtype=np.float64)}
+    if sp.issparse(targets):
+        T = sp.csr_matrix(targets)
+        arrays["tag_indptr"] = T.indptr.astype(np.int64)
+        arrays["tag_indices"] = T.indices.astype(np.int64)
+    else:
+        t = np.asarray(targets)
+        arrays["y" if t.ndim == 1 else "Y"] = t
+    if weights is not None:
+        arrays["w"] = np.asarray(weights)
+    d = Path(directory)
+    path = d / f"xq-{int(start):012d}.npz"
+    try:
+        d.mkdir(parents=True, exist_ok=True)
+        np.savez(path, **arrays)
+    except OSError as exc:
+        raise StoreError(f"{path}: cannot write the refinement's scratch file ({exc}); "
+                         "free disk space or point the scratch directory elsewhere") from exc
+    return path
