@@ -45,9 +45,9 @@ from ranktide.losses import get_loss, intercept_from_sums
 from ranktide.passes.budget import plan_blocks
 from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
+from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopRequested
 from ranktide.solver.refine import _blas_one_thread, refine
-from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.solver.refine_stream import refine_streamed
 from ranktide.solver.subspace import orth_against
 from ranktide.store.memory_source import as_source

@@ -11,9 +11,9 @@ import pytest
 import scipy.sparse as sp
 from conic import solve_conic
 from ranktide.errors import ConfigError
+from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopFlag, StopRequested
 from ranktide.solver.refine import refine
-from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.solver.refine_stream import refine_streamed
 
 
