@@ -12,6 +12,7 @@ from ranktide.diagnostics.profile import format_report, jsonable, profile_store,
 from ranktide.errors import ConfigError, InputError
 from ranktide.outputs import check_output, check_source, files_into
 from ranktide.passes.budget import parse_memory
+from ranktide.runs.checks import check_memory
 from ranktide.store.reader import open_store
 
 HELP = "Profile solver-style passes over a store: I/O vs compute per block and phase"
@@ -60,6 +61,7 @@ def run(args: argparse.Namespace) -> int:
             raise InputError(f"{args.store}: the store has no targets; profile times "
                              "solver-style passes, which need them: ingest it with --labels, "
                              "--values or --tags")
+        check_memory(st, budget, rank=args.rank, backend=args.backend)
     with cluster_backend(args) as backend:
         report = profile_store(
             args.store, model=args.model, passes=args.passes, rank=args.rank,

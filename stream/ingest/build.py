@@ -39,7 +39,7 @@ from ranktide.ingest.mmio import (
 )
 from ranktide.ingest.targets import TargetSource, WeightSource, open_targets, open_weights
 from ranktide.kernels import parse as kp
-from ranktide.outputs import check_output, check_source
+from ranktide.outputs import check_disk_space, check_output, check_source
 from ranktide.passes.budget import parse_memory
 from ranktide.store import create_store
 from ranktide.store.format import DEFAULT_CODEC
@@ -547,6 +547,36 @@ def _ingest_npz(hdr, out, tsrc, memory, a) -> tuple[Any, _RowSink, int, int]:
     return writer, sink, int(M.nnz), 0
 
 
+def declared_store_bytes(hdr: MatrixHeader, tsrc: TargetSource | None,
+                         wsrc: WeightSource | None) -> int:
+    """Uncompressed bytes of the store a header promises: row pointers, entries, targets.
+
+    Row pointers are int64 (n + 1), each entry a column index (int32, int64 past
+    2**31 columns) and a float32 value; class targets int32, value targets
+    float32 (n x k), weights float32 (n). Compression usually writes less.
+    """
+    n, d, nnz = int(hdr.n_rows or 0), int(hdr.n_cols or 0), int(hdr.nnz or 0)
+    idx = 4 if d < 2**31 else 8
+    need = 8 * (n + 1) + nnz * (idx + 4)
+    if tsrc is not None:
+        k = int(tsrc.n_outputs or 1)
+        need += 4 * n * (k if tsrc.kind == "values" else 1)
+    if wsrc is not None:
+        need += 4 * n
+    return need
+
+
+def _check_declared(hdr: MatrixHeader, out: Path, tsrc: TargetSource | None,
+                    wsrc: WeightSource | None) -> None:
+    """Refuse a header that promises a store larger than the free disk space."""
+    if hdr.fmt != "mm" or hdr.n_rows is None or hdr.nnz is None:
+        return
+    need = declared_store_bytes(hdr, tsrc, wsrc)
+    check_disk_space(out, need, what=f"the header of {hdr.path.name} declares {hdr.n_rows} "
+                     f"rows and {hdr.nnz} entries: the store needs",
+                     fix="free space, write the store to another disk, or fix the size line")
+
+
 def _validate(source, out, duplicates, fmt, overwrite, files) -> tuple[Path, Path]:
     if duplicates not in DUPLICATES:
         raise ConfigError(f"duplicates={duplicates!r} is unknown; use 'sum' or 'error'")
@@ -625,6 +655,7 @@ def ingest(
     wsrc = open_weights(weights)
     if tsrc is not None and hdr.n_rows is not None:
         tsrc.check_rows(hdr.n_rows)
+    _check_declared(hdr, out_p, tsrc, wsrc)
     a = {"backend": backend, "codec": codec, "overwrite": overwrite, "duplicates": duplicates}
     bar = _Progress(progress, hdr.file_bytes, f"ingest {src.name}")
     scratch = temp_sibling(out_p, "scratch")

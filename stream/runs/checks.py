@@ -19,7 +19,7 @@ from ranktide.outputs import check_output, check_source, format_size
 from ranktide.passes.budget import parse_memory, plan_blocks
 from ranktide.store.reader import open_store
 
-__all__ = ["check_train_output", "check_train_inputs", "fixed_memory"]
+__all__ = ["check_train_output", "check_train_inputs", "check_memory", "fixed_memory"]
 
 #: a budget no machine has, to read the planner's fixed figures without a refusal
 _UNBOUNDED = 2**62
@@ -57,14 +57,14 @@ def check_train_output(out: str | os.PathLike, source: Any, valid: Any, class_we
 
 
 def fixed_memory(src: Any, *, power_size: int, expand_size: int, backend: str = "serial",
-                 dense_gradient: bool | None = None) -> tuple[int, dict[str, int]]:
+                 dense_gradient: bool | None = None, rank: int = 1) -> tuple[int, dict[str, int]]:
     """Bytes a pass holds whatever the block size (model, accumulators, partials).
 
-    Computed by the memory planner from the shapes at the smallest rank (1)
-    and without the dense gradient unless it is forced. Returns the total and
-    its parts.
+    Computed by the memory planner from the shapes at rank ``rank`` (the
+    smallest, 1, for a fit that starts from zero) and without the dense
+    gradient unless it is forced. Returns the total and its parts.
     """
-    plan = plan_blocks(src, budget=_UNBOUNDED, rank=1, omega_cols=int(power_size),
+    plan = plan_blocks(src, budget=_UNBOUNDED, rank=int(rank), omega_cols=int(power_size),
                        psi_cols=int(expand_size), keep_projections=False,
                        dense_gradient=bool(dense_gradient), backend=backend)
     parts = {k: v for k, v in plan.breakdown.items() if k not in ("blocks", "projections")}
@@ -96,15 +96,34 @@ def check_train_inputs(src: Any, loss: str, valid: Any, *, memory: Any, power_si
                          "nothing to learn from: re-ingest the data")
     if valid is not None:
         _check_valid(valid, src, loss, d)
+    check_memory(src, memory, power_size=power_size, expand_size=expand_size,
+                 backend=backend, dense_gradient=dense_gradient)
+
+
+def check_memory(src: Any, memory: Any, *, power_size: int = 6, expand_size: int = 6,
+                 backend: str = "serial", dense_gradient: bool | None = None,
+                 rank: int = 1) -> None:
+    """Refuse at once when the fixed arrays of a pass exceed the memory budget.
+
+    Raises
+    ------
+    ConfigError
+        Naming the shapes, the need (and its largest part), the budget and
+        what to change.
+    """
+    where = _where(src) or "in-memory data"
+    n, d = (int(x) for x in src.shape)
     budget = parse_memory(memory)
     need, parts = fixed_memory(src, power_size=power_size, expand_size=expand_size,
-                               backend=backend, dense_gradient=dense_gradient)
+                               backend=backend, dense_gradient=dense_gradient, rank=rank)
     if need >= budget:
         k = int(src.n_outputs or 0)
         biggest = max(parts, key=parts.get)
         fix = "raise --memory, or use fewer columns (hash the features into fewer)"
         if dense_gradient:
             fix = "turn the dense gradient off, " + fix
+        elif rank > 1:
+            fix = "lower --rank, " + fix
         raise ConfigError(
             f"{where}: {n} rows x {d} columns with {k} outputs need at least "
             f"{format_size(need)} before any block is read (mostly {biggest}: "

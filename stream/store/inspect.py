@@ -13,6 +13,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import ranktide.store.format as _fmt
+from ranktide.errors import ConfigError
+from ranktide.outputs import format_size
 from ranktide.store import open_store
 
 __all__ = ["inspect_store", "QUANTILES", "format_inspection"]
@@ -148,7 +151,21 @@ def _targets_summary(acc: _Acc, store: Any) -> dict[str, Any] | None:
     return None
 
 
-def inspect_store(store: Any, *, block_bytes: int | None = None) -> dict[str, Any]:
+def inspect_need(store: Any, block_bytes: int | None = None) -> int:
+    """Bytes :func:`inspect_store` holds at its peak, from the store's shape.
+
+    Per column: the running counts, one block's ``bincount`` and their sum
+    (three int64 arrays of ``n_cols``); per output: six float64/int64 arrays;
+    and two decoded blocks (the one read and the one read ahead).
+    """
+    d = int(store.shape[1])
+    k = int(store.n_outputs or 0)
+    blocks = 2 * int(_fmt.DEFAULT_BLOCK_BYTES if block_bytes is None else block_bytes)
+    return 3 * 8 * d + 6 * 8 * k + blocks
+
+
+def inspect_store(store: Any, *, block_bytes: int | None = None,
+                  memory: int | None = None) -> dict[str, Any]:
     """Summarize a store in one streamed pass.
 
     Parameters
@@ -157,6 +174,9 @@ def inspect_store(store: Any, *, block_bytes: int | None = None) -> dict[str, An
         An open store, or the path of one (opened and closed here).
     block_bytes : int, optional
         Decoded bytes per block (the store's default when omitted).
+    memory : int, optional
+        Memory budget in bytes: refused at once (before any allocation) when
+        :func:`inspect_need` exceeds it.
 
     Returns
     -------
@@ -169,6 +189,14 @@ def inspect_store(store: Any, *, block_bytes: int | None = None) -> dict[str, An
     own = not hasattr(store, "blocks")
     st = open_store(store) if own else store
     try:
+        need = inspect_need(st, block_bytes)
+        if memory is not None and need > memory:
+            raise ConfigError(
+                f"{st.path}: inspecting {st.shape[1]} columns needs about "
+                f"{format_size(need)} (three 8-byte counts per column) but the memory budget "
+                f"is {format_size(memory)}; raise --memory, or re-ingest with fewer columns "
+                "(hash the features into fewer)"
+            )
         acc = _Acc(st)
         for b in st.blocks(block_bytes=block_bytes):
             acc.add(b)
