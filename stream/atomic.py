@@ -44,6 +44,7 @@ __all__ = [
     "replace_with",
     "stale_siblings",
     "clean_stale_siblings",
+    "user_path",
 ]
 
 #: ``.NAME.TAG-PID-HEX`` (and ``.NAME.TAG-HEX`` written by earlier versions)
@@ -68,6 +69,19 @@ def temp_sibling(path: str | os.PathLike, tag: str = "tmp") -> Path:
     """
     p = Path(path)
     return p.with_name(f".{p.name}.{tag}-{os.getpid()}-{uuid.uuid4().hex[:10]}")
+
+
+_SIBLING_IN_PATH = re.compile(
+    r"(^|[/\s(])\.([^/\s]+)\.[a-z]+-\d+-[0-9a-f]{10}(?=[/\s:;,)]|$)")
+
+
+def user_path(path: str | os.PathLike) -> str:
+    """``path`` with every temporary sibling named as the output it becomes.
+
+    ``d/.out.zarr.tmp-123-0a1b2c3d4e/c.json`` -> ``d/out.zarr/c.json``: what
+    the user asked for, for messages.
+    """
+    return _SIBLING_IN_PATH.sub(r"\1\2", os.fspath(path))
 
 
 def _alive(pid: int) -> bool:

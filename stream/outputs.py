@@ -69,18 +69,21 @@ def check_source(path: str | os.PathLike, what: str = "input") -> Path:
     Returns the path unchanged. Raises :class:`InputError` with one line.
     """
     p = Path(path)
+    the = what if what.startswith("the ") else f"the {what}"
+    if what.startswith("--") and " " not in what:
+        the = f"the {what} input"
     try:
         os.stat(p)
     except OSError as exc:
         if exc.errno == errno.ELOOP:
-            raise InputError(f"{p}: the {what} is a symbolic-link loop; point the link at a "
+            raise InputError(f"{p}: {the} is a symbolic-link loop; point the link at a "
                              "real file") from None
         if exc.errno == errno.ENOENT:
             if os.path.islink(p):
-                raise InputError(f"{p}: the {what} is a symbolic link to a missing file "
+                raise InputError(f"{p}: {the} is a symbolic link to a missing file "
                                  f"({os.readlink(p)})") from None
-            raise InputError(f"{p}: input file not found; check the {what} path") from None
-        raise InputError(f"{p}: cannot read the {what} ({os.strerror(exc.errno or 0)})") from None
+            raise InputError(f"{p}: input file not found; check {the} path") from None
+        raise InputError(f"{p}: cannot read {the} ({os.strerror(exc.errno or 0)})") from None
     return p
 
 

@@ -21,6 +21,7 @@ import sys
 from collections.abc import Sequence
 
 from ranktide import __version__
+from ranktide.atomic import user_path
 from ranktide.errors import KernelError, RanktideError
 
 COMMANDS: tuple[str, ...] = (
@@ -62,9 +63,14 @@ _OS_HINTS: dict[int, str] = {
 }
 
 
-def os_error_line(exc: OSError) -> str:
-    """One line for an operating-system error: the path, the reason, what to do."""
-    where = exc.filename if exc.filename is not None else "ranktide"
+def os_error_line(exc: OSError, output: str | None = None) -> str:
+    """One line for an operating-system error: the path, the reason, what to do.
+
+    Without a file name in the error (some libraries drop it) the command's
+    output is named.
+    """
+    name = exc.filename if exc.filename is not None else output
+    where = user_path(name) if name is not None else "ranktide"
     reason = exc.strerror or (os.strerror(exc.errno) if exc.errno else type(exc).__name__)
     hint = _OS_HINTS.get(exc.errno or 0, "fix the problem and run the command again")
     return f"{where}: {reason}; {hint}"
@@ -112,6 +118,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(args._run(args) or 0)
     except (RanktideError, KernelError) as exc:
         msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        msg = user_path(msg)  # name the outputs, not their temporary siblings
         print(f"ranktide {args.command}: error: {msg}", file=sys.stderr)
         return 2
     except MemoryError:
@@ -128,7 +135,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         os.dup2(devnull, sys.stdout.fileno())
         return 141
     except OSError as exc:
-        print(f"ranktide {args.command}: error: {os_error_line(exc)}", file=sys.stderr)
+        line = os_error_line(exc, getattr(args, "out", None))
+        print(f"ranktide {args.command}: error: {line}", file=sys.stderr)
         return 2
 
 

@@ -451,7 +451,19 @@ class RunRecorder:
             "history_len": self.run.history_len,
             "settings": self.run.settings,
         }
-        path = self.run.checkpoints.save(arrays, doc)
+        try:
+            path = self.run.checkpoints.save(arrays, doc)
+        except CheckpointError as exc:
+            if self.run.final is None:
+                raise
+            # nothing to resume yet: the run never got its name and is removed
+            reason = str(exc).split("(", 1)[-1].split(")", 1)[0]
+            fin = self.run.final
+            what = (f"it was discarded and the old {fin} is unchanged" if self.run.replaces
+                    else "nothing was kept")
+            raise CheckpointError(f"{fin}: could not write a checkpoint of the new run "
+                                  f"({reason}); {what}: free some disk space and train "
+                                  "again") from None
         self.run.publish()  # a new run gets its name once there is something to resume
         path = self.run.checkpoints.dir / path.name
         self.schedule.reset()
