@@ -47,6 +47,7 @@ from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
 from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopRequested
+from ranktide.solver.penalty import check_lam
 from ranktide.solver.refine import _blas_one_thread, refine
 from ranktide.solver.refine_stream import refine_streamed
 from ranktide.solver.subspace import orth_against
@@ -158,10 +159,7 @@ class SolverConfig:
         get_loss(self.loss)
         if self.lam is not None and self.lam_frac is not None:
             raise ConfigError("solver: give lam or lam_frac, not both")
-        if self.lam is not None and not (math.isfinite(self.lam) and self.lam > 0):
-            raise ConfigError(f"solver: lam = {self.lam!r}; it must be a positive number")
-        if self.lam_frac is not None and not (math.isfinite(self.lam_frac) and self.lam_frac > 0):
-            raise ConfigError(f"solver: lam_frac = {self.lam_frac!r}; it must be positive")
+        check_lam(self.lam, self.lam_frac, "solver")
         if not (0 < self.tol < 1):
             raise ConfigError(f"solver: tol = {self.tol!r}; it must lie in (0, 1)")
         for name in ("max_passes", "power_size", "expand_size", "lam_max_passes",
