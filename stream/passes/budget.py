@@ -1,5 +1,14 @@
 """The memory planner: block sizes from a budget, and what fits in memory.
 
+The budget is the whole process's resident memory. The default honours the
+memory limit of the process's cgroup (v2 ``memory.max``, v1
+``memory.limit_in_bytes``, each ancestor's too, and the container's own root):
+see :func:`available_memory`. The planner plans for what is left after the
+process floor (interpreter, libraries, compiled kernels, the data source's
+handles: the resident set measured before the first pass, :func:`process_floor`),
+and the solver re-plans before every pass with the rank, block widths and
+arrays it then holds.
+
 A pass holds, at its peak, the model (``U``, ``V``, ``Omega``, ``Psi``, ``b``
 and their concatenations), the accumulated partial sums (each d-row sum
 compensated: sum, compensation and a block-term buffer, three d-row arrays; see
@@ -22,11 +31,17 @@ from typing import Any
 from ranktide.errors import ConfigError
 from ranktide.kernels.csc import worth_transposing
 
-__all__ = ["parse_memory", "total_memory", "default_budget", "plan_blocks", "Plan",
-           "format_bytes", "MAX_BLOCK_CSR_BYTES"]
+__all__ = ["parse_memory", "total_memory", "available_memory", "cgroup_limit",
+           "process_floor", "default_budget", "plan_blocks", "Plan", "format_bytes",
+           "MAX_BLOCK_CSR_BYTES", "FLOOR_QUANTUM"]
 
 #: decoded CSR bytes above which bigger blocks stop paying (common practice, no source)
 MAX_BLOCK_CSR_BYTES = 64 * 2**20
+#: the measured floor is rounded up to a multiple of this, so small differences in the
+#: resident set between two runs do not change the plan (common practice, no source)
+FLOOR_QUANTUM = 8 * 2**20
+#: a cgroup limit at or above this means "no limit" (v1 writes 2^63 rounded to pages)
+_UNLIMITED = 2**60
 
 _UNITS = {"": 1, "b": 1, "k": 1024, "m": 1024**2, "g": 1024**3, "t": 1024**4,
           "kb": 1000, "mb": 1000**2, "gb": 1000**3, "tb": 1000**4,
@@ -44,9 +59,95 @@ def total_memory() -> int:
         return int(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
 
 
+def _read_limit(path: str) -> int | None:
+    try:
+        with open(path) as fh:
+            text = fh.read().strip()
+    except OSError:
+        return None
+    if not text or text == "max":
+        return None
+    try:
+        value = int(text)
+    except ValueError:
+        return None
+    return value if 0 < value < _UNLIMITED else None
+
+
+def cgroup_limit(*, root: str = "/sys/fs/cgroup", proc_cgroup: str = "/proc/self/cgroup"
+                 ) -> int | None:
+    """The tightest memory limit over this process's cgroups, in bytes (None: unlimited).
+
+    Reads ``proc_cgroup``: a v2 line ``0::/path`` gives ``root/path/memory.max``,
+    a v1 line ``N:memory:/path`` (or a controller list containing ``memory``)
+    gives ``root/memory/path/memory.limit_in_bytes``; every ancestor of the path
+    counts (a parent's limit binds its children), and so does the root as this
+    process sees it (inside a container, its own limit).
+    """
+    found: list[int] = []
+    candidates: list[str] = [os.path.join(root, "memory.max"),
+                             os.path.join(root, "memory", "memory.limit_in_bytes")]
+    try:
+        with open(proc_cgroup) as fh:
+            lines = fh.read().splitlines()
+    except OSError:
+        lines = []
+    for line in lines:
+        parts = line.split(":", 2)
+        if len(parts) != 3:
+            continue
+        _, controllers, rel = parts
+        rel = rel.strip().lstrip("/")
+        chain = [rel]
+        while chain[-1]:
+            chain.append(os.path.dirname(chain[-1]))
+        if controllers == "":
+            candidates += [os.path.join(root, c, "memory.max") for c in chain if c]
+        elif "memory" in controllers.split(","):
+            candidates += [os.path.join(root, "memory", c, "memory.limit_in_bytes")
+                           for c in chain if c]
+    for path in candidates:
+        value = _read_limit(path)
+        if value is not None:
+            found.append(value)
+    return min(found) if found else None
+
+
+def available_memory() -> int:
+    """Physical memory, or the cgroup / container limit when that is lower (bytes)."""
+    limit = cgroup_limit()
+    total = total_memory()
+    return total if limit is None else min(total, limit)
+
+
+def process_floor() -> int:
+    """This process's resident set now (bytes), rounded up to :data:`FLOOR_QUANTUM`.
+
+    Measured by the solver before its first pass: the interpreter, the
+    libraries, the compiled kernels and the data source's handles, which the
+    budget has to hold before any block is read.
+    """
+    rss = 0
+    try:
+        import psutil  # optional dependency (psutil may be missing)
+
+        rss = int(psutil.Process().memory_info().rss)
+    except Exception:  # psutil missing: /proc (Linux)
+        try:
+            with open("/proc/self/statm") as fh:
+                rss = int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+        except (OSError, ValueError, IndexError):
+            rss = 0
+    return -(-rss // FLOOR_QUANTUM) * FLOOR_QUANTUM
+
+
 def default_budget() -> int:
-    """The default memory budget: a quarter of the machine's RAM."""
-    return total_memory() // 4
+    """The default memory budget: a quarter of physical RAM, and at most three quarters
+    of a cgroup or container memory limit when one is set (the rest is left to the page
+    cache and to other processes in the group; common practice, no source)."""
+    limit = cgroup_limit()
+    quarter = total_memory() // 4
+    return quarter if limit is None else min(quarter, limit * 3 // 4)
 
 
 def parse_memory(text: str | int | float | None) -> int:
@@ -54,7 +155,8 @@ def parse_memory(text: str | int | float | None) -> int:
 
     ``"4GB"`` (powers of 1000: kB, MB, GB, TB), ``"512MiB"`` or ``"512M"``
     (powers of 1024: KiB/K, MiB/M, GiB/G, TiB/T), ``"25%"`` (of the machine's
-    RAM), a plain number of bytes, or None for :func:`default_budget`.
+    RAM, or of the cgroup limit when that is lower: :func:`available_memory`), a plain
+    number of bytes, or None for :func:`default_budget`.
     """
     if text is None:
         return default_budget()
@@ -69,7 +171,7 @@ def parse_memory(text: str | int | float | None) -> int:
     if unit == "%":
         if not 0 < value <= 100:
             raise ConfigError(f"memory size {text!r}: a percentage must be in (0, 100]")
-        return int(total_memory() * value / 100)
+        return int(available_memory() * value / 100)
     if unit not in _UNITS:
         raise ConfigError(f"memory size {text!r}: unknown unit {unit!r}; use B, kB, MB, GB, "
                           "TB, KiB, MiB, GiB, TiB or %")
@@ -95,7 +197,7 @@ class Plan:
     Attributes
     ----------
     budget : int
-        The budget planned for (bytes).
+        The budget (bytes): the whole process's resident set.
     block_rows : int
         Rows per block.
     block_csr_bytes : int
@@ -119,6 +221,9 @@ class Plan:
     projections_fit : bool
         They fit in memory beside everything else; otherwise they go to a
         scratch store.
+    floor : int
+        The process floor the plan left aside (bytes): ``peak_bytes + floor <=
+        budget``.
     """
 
     budget: int
@@ -132,10 +237,18 @@ class Plan:
     dense_gradient: bool = False
     projections_bytes: int = 0
     projections_fit: bool = False
+    floor: int = 0
+
+    @property
+    def work_bytes(self) -> int:
+        """What the budget leaves above the floor (bytes)."""
+        return self.budget - self.floor
 
     def describe(self) -> list[tuple[str, str]]:
         """``(name, value)`` rows for a table."""
-        rows = [("budget", format_bytes(self.budget)), ("block rows", str(self.block_rows)),
+        rows = [("budget", format_bytes(self.budget)),
+                ("process floor", format_bytes(self.floor)),
+                ("block rows", str(self.block_rows)),
                 ("block CSR", format_bytes(self.block_csr_bytes)),
                 ("blocks", str(self.n_blocks)), ("blocks in flight", str(self.in_flight))]
         rows += [(f"peak: {k}", format_bytes(v)) for k, v in self.breakdown.items()]
@@ -172,6 +285,8 @@ def plan_blocks(
     backend: str = "serial",
     n_threads: int | None = None,
     max_block_bytes: int = MAX_BLOCK_CSR_BYTES,
+    floor: int = 0,
+    extra_bytes: int = 0,
 ) -> Plan:
     """Choose block rows for a gradient pass from a memory budget.
 
@@ -194,14 +309,26 @@ def plan_blocks(
         The pass backend, which sets the blocks in flight.
     max_block_bytes : int
         Upper bound on a block's decoded CSR bytes.
+    floor : int
+        The process floor (:func:`process_floor`): the plan fits in ``budget -
+        floor``.
+    extra_bytes : int
+        Arrays the caller holds beside the model during the pass (e.g. the
+        solver's momentum factors or its ``lam_max`` products).
 
     Returns
     -------
     Plan
     """
-    B = parse_memory(budget) if not isinstance(budget, int) else int(budget)
-    if B <= 0:
+    B_total = parse_memory(budget) if not isinstance(budget, int) else int(budget)
+    if B_total <= 0:
         raise ConfigError(f"memory budget {budget!r}: must be positive")
+    floor = max(0, int(floor))
+    if floor >= B_total:
+        raise ConfigError(f"memory budget {format_bytes(B_total)}: below the process floor "
+                          f"{format_bytes(floor)} (interpreter, libraries, compiled kernels) "
+                          "measured before the first pass; raise --memory")
+    B = B_total - floor
     n, d = (int(x) for x in store.shape)
     k = int(store.n_outputs or 0)
     nnz = int(store.nnz)
@@ -211,7 +338,7 @@ def plan_blocks(
     f8 = 8
     idx = 4 if d < 2**31 else 8
 
-    model = f8 * (2 * d * q + 2 * k * (r + p) + k)
+    model = f8 * (2 * d * q + 2 * k * (r + p) + k) + max(0, int(extra_bytes))
     # each d-row accumulator (G [V, Omega], the dense G) is a compensated sum: its sum,
     # its compensation and the CSR path's block-term buffer (kernels.compensated; the
     # kernels need no per-thread copies); on dask the client also holds the range
@@ -233,16 +360,17 @@ def plan_blocks(
     proj_bytes = f8 * n * q
     fixed = model + accum + dense_total + inflight * partial
     if fixed >= B:
-        raise ConfigError(f"memory budget {format_bytes(B)}: below the "
-                          f"{format_bytes(fixed)} the model and its accumulators need; "
-                          "raise --memory or lower the rank")
+        raise ConfigError(f"memory budget {format_bytes(B_total)}: {format_bytes(B)} above "
+                          f"the process floor is below the {format_bytes(fixed)} the model "
+                          "and its accumulators need; raise --memory or lower the rank")
 
     nnz_row = nnz / n if n else 0.0
     csr_row = nnz_row * (4 + idx) + 8
     # decoded CSR, the read buffers (about as large again), dense temporaries
     per_row = 2 * csr_row + f8 * (q + 2 * k + r + p) + (f8 * k if use_dense else 0)
-    # the projections fit when they leave room for blocks of a thousand rows
-    min_rows = min(n, 1000) if n else 1
+    # the projections fit when they leave room for blocks of 128 rows (smaller blocks
+    # cost more per row in overhead than the scratch files would; common practice, no source)
+    min_rows = min(n, 128) if n else 1
     proj_fit = (fixed + proj_bytes + inflight * per_row * min_rows) <= B
     cache = keep_projections and proj_fit
     room = B - fixed - (proj_bytes if cache else 0)
@@ -269,7 +397,7 @@ def plan_blocks(
                  "partials": inflight * partial,
                  "dense_gradient": dense_total, "projections": proj_bytes if cache else 0}
     return Plan(
-        budget=B, block_rows=rows, block_csr_bytes=int(rows * csr_row),
+        budget=B_total, floor=floor, block_rows=rows, block_csr_bytes=int(rows * csr_row),
         n_blocks=int(math.ceil(n / rows)) if n else 0, in_flight=inflight,
         peak_bytes=int(sum(breakdown.values())), breakdown=breakdown,
         dense_gradient_fits=dense_fits, dense_gradient=use_dense,

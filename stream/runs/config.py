@@ -29,9 +29,11 @@ PATH_FLOOR = 0.05
 #: default cap on the values a path may add past its requested end while validation improves
 PATH_EXTEND = 5
 
-#: settings a resumed run may change; every other setting must stay as saved
+#: settings a resumed run may change (budgets, tolerance, cadence, backend, and how it
+#: reports); every other setting must stay as saved
 RESUME_MUTABLE: frozenset[str] = frozenset(
-    {"max_passes", "max_seconds", "tol", "checkpoint_seconds", "checkpoint_passes", "backend"}
+    {"max_passes", "max_seconds", "tol", "checkpoint_seconds", "checkpoint_passes", "backend",
+     "quiet", "json", "progress", "verbose"}
 )
 
 
@@ -193,7 +195,8 @@ class TrainConfig:
                 f"{run}: {', '.join(bad)} cannot change on resume; only "
                 f"{', '.join(sorted(RESUME_MUTABLE))} may (start a new run otherwise)"
             )
-        return replace(self, **dict(changes))
+        names = {f.name for f in fields(self)}  # how a run reports is not a setting here
+        return replace(self, **{k: v for k, v in changes.items() if k in names})
 
     def train_kwargs(self) -> dict[str, Any]:
         """The keywords of :func:`ranktide.runs.train.train` that this configuration sets."""

@@ -48,8 +48,10 @@ class ResumePoint:
     def solver_config(self, cfg: Any) -> Any:
         """``cfg`` with the planner's saved decisions (block rows, dense gradient) forced.
 
-        The planner sizes blocks from the rank at start-up; a resumed run must
-        read the same blocks as the uninterrupted one (sums in the same order).
+        A resumed run must read the same blocks as the uninterrupted one (sums in
+        the same order): older checkpoints saved one block size, forced here; newer
+        ones (``per_pass``) re-plan every pass from the solver state's rank, widths
+        and floor, which the checkpoint holds.
         """
         plan = self.context.get("plan") or {}
         changes: dict[str, Any] = {}

@@ -42,6 +42,7 @@ from ranktide.atomic import (
 )
 from ranktide.errors import CheckpointError, ConfigError, OutputExistsError
 from ranktide.runs.checkpoint import CheckpointManager, CheckpointSchedule, canonical_json
+from ranktide.runs.config import RESUME_MUTABLE
 from ranktide.signals import StopFlag
 
 __all__ = [
@@ -57,23 +58,6 @@ __all__ = [
 
 RUN_FORMAT = "ranktide-run"
 RUN_VERSION = 1
-
-#: Settings that may change on resume; every other setting must match.
-RESUME_MUTABLE: frozenset[str] = frozenset(
-    {
-        "max_passes",
-        "max_seconds",
-        "tol",
-        "checkpoint_seconds",
-        "checkpoint_passes",
-        "backend",
-        "quiet",
-        "json",
-        "progress",
-        "verbose",
-    }
-)
-
 
 def _show(value: Any) -> str:
     text = canonical_json(value)

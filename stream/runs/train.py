@@ -500,10 +500,12 @@ class _RunContext:
                  best: dict | None = None) -> None:
         saved = saved or {}
         rows = solver.config.block_rows
-        if rows is None and solver.config.block_bytes is None:
-            rows = solver.plan.block_rows
+        # without fixed rows the solver re-plans before every pass from its state (rank,
+        # widths, the floor it keeps), so a resumed run reads the same blocks: "per_pass";
+        # an older checkpoint's single block_rows is still forced on resume
         self.plan = saved.get("plan") or {"block_rows": None if rows is None else int(rows),
-                                          "dense_gradient": bool(solver.dense)}
+                                          "dense_gradient": bool(solver.dense),
+                                          "per_pass": rows is None}
         self.path: dict | None = saved.get("path")
         self.best: dict | None = best or None
         self.finished = False

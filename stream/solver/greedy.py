@@ -19,7 +19,18 @@ intercept ``b``. Each outer iteration (DESIGN section 7):
    directions of ``(I - V V^T) G^T Psi`` (two-sided subspace iteration, warm
    started across passes).
 
-``lam_max = sigma_1(G(0, b0))`` comes from the first passes at ``W = 0``. When
+``lam_max = sigma_1(G(0, b0))`` comes from the first passes at ``W = 0`` (at most
+``lam_max_passes``, default 3, the intercept's pass included): the Rayleigh-Ritz
+value over the union of every rank-0 pass's power products
+(:class:`ranktide.solver.subspace.KrylovUnion`, a block Krylov space grown across
+passes; the first pass, at ``b = 0``, still gives exact products of ``G(0, b0)`` on
+the directions orthogonal to ``link(b0) - link(0)``, since the two gradients
+differ by a rank-one term ``m (link(b0) - link(0))^T``). When it has not settled
+by then, fitting starts at ``lam_frac`` times the lower bound, the record and
+the result say so, and the bound keeps growing (lam with it) while the model is
+still ``W = 0``. The memory plan is redone before every pass, for the budget
+left above the process floor (measured once, kept in the state so a resumed
+run plans, and reads, the same blocks). When
 the dense ``d x k`` gradient's three arrays (compensated sum, compensation,
 block buffer; :mod:`kernels.compensated`) fit a third of the memory budget, the
 pass also accumulates ``G`` and every sigma_1 and new direction comes from an in-memory
@@ -38,28 +49,40 @@ from dataclasses import dataclass, field, fields
 from typing import Any
 
 import numpy as np
+import scipy.sparse as sp
 from ranktide.errors import CheckpointError, ConfigError
 from ranktide.jsondata import json_data
 from ranktide.kernels.svd import svd
 from ranktide.losses import get_loss, intercept_from_sums
-from ranktide.passes.budget import plan_blocks
+from ranktide.passes.budget import Plan, cgroup_limit, plan_blocks, process_floor
 from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
+from ranktide.passes.kernel_path import CHOOSER
 from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopRequested
 from ranktide.solver.penalty import check_lam
 from ranktide.solver.refine import _blas_one_thread, refine
 from ranktide.solver.refine_stream import refine_streamed
-from ranktide.solver.subspace import orth_against
+from ranktide.solver.subspace import (
+    KrylovUnion,
+    fill,
+    momentum_directions,
+    next_blocks,
+    sigma1_lower_bound,
+    top_left,
+    top_singular_pairs,
+)
 from ranktide.store.memory_source import as_source
+from scipy.special import expit, softmax
 
 __all__ = ["SolverConfig", "SolverState", "GreedySolver", "SolverResult",
            "sigma1_lower_bound", "gap_estimate"]
 
 PHASES = ("lam_max", "fit", "certify", "done")
-STATE_VERSION = 2
-#: Versions :meth:`SolverState.from_checkpoint` reads (1 has no ``U_prev``: no momentum yet).
-_READABLE_VERSIONS = (1, 2)
+STATE_VERSION = 3
+#: Versions :meth:`SolverState.from_checkpoint` reads (1 has no ``U_prev``: no momentum yet;
+#: 1 and 2 have no lam_max products and no floor: a resumed run keeps their fixed blocks).
+_READABLE_VERSIONS = (1, 2, 3)
 
 
 # ---------------------------------------------------------------- configuration
@@ -83,7 +106,10 @@ class SolverConfig:
         Passes allowed for one value of ``lam`` (default 100); the passes at
         ``W = 0`` that find ``lam_max`` have their own budget, ``lam_max_passes``.
     max_seconds : float, optional
-        Wall-clock budget of one :meth:`GreedySolver.run` (default none).
+        Wall-clock budget of one :meth:`GreedySolver.run` (default none),
+        honoured within a pass: the deadline joins the ``stop`` callable, so a
+        pass or refinement it cuts short is abandoned (the model stays the one
+        before it) and the run ends with status ``"max_seconds"``.
     power_size : int
         Columns ``p`` of the power block ``Omega`` (default 6).
     expand_size : int
@@ -103,12 +129,35 @@ class SolverConfig:
         None (default): use the dense-gradient path when its three ``d x k``
         float64 arrays fit a third of the budget; True forces it, False forbids it.
     lam_max_passes : int
-        Most passes at ``W = 0`` spent settling ``sigma_1`` (default 8). With an
-        explicit ``lam`` the fit starts as soon as the ``sigma_1`` lower bound
-        exceeds ``lam`` (the matrix-free path then saves up to 7 passes; the
-        reported ``lam_max`` is that lower bound, ``lam_max_settled`` False).
+        Most passes at ``W = 0`` before fitting starts, the intercept's pass
+        included (default 3). When ``sigma_1`` has not settled by then, fitting
+        starts at the lower bound (``lam_max_settled`` False, said in the
+        record's ``lam_max_note`` and the result's message). With an explicit
+        ``lam`` the fit starts as soon as the lower bound exceeds ``lam``.
+        Why not more: from a random start no power or Krylov method pins
+        ``sigma_1`` to 1e-3 in a few products when the spectrum is flat
+        (simulated with this scheme on d = 2000, k = 200, eight top values within
+        1% over a bulk up to 0.9 sigma_1: 10% low after 3 passes, 1% after 6),
+        and every pass at ``W = 0`` is a full pass of compute with nothing
+        fitted; a lam a few percent below ``lam_frac lam_max`` is still a point
+        of the path, solved exactly for the lam it records.
     lam_max_rtol : float
-        ``sigma_1`` has settled when its relative change is below this (1e-6).
+        ``sigma_1`` has settled when its relative change between two passes is
+        below this (default 1e-3). The tolerance ``lam_frac`` needs: lam is then
+        within about 0.1% of ``lam_frac lam_max``, and since ``dF*/dlam =
+        ||W*||_* <= f(0, b0) / lam``, the optimal objective moves by at most
+        about ``1e-3 f(0, b0)``: below what a user picking ``lam_frac`` (or a
+        path grid) resolves.
+    lam_max_width : int
+        Columns of ``Omega`` and of ``Psi`` on the passes at ``W = 0`` before the
+        fit starts (default 12; at least ``power_size`` and ``expand_size``); the
+        union of their products keeps ``2 lam_max_width`` Ritz vectors a side.
+        Measured (squared loss, n = 3000, d = 150, k = 60, four top values within
+        1.5%, bulk at 0.6 sigma_1, three seeds): ``lam_max`` after 3 passes 3.0-3.6%
+        low with 6 columns, 0.66-0.98% with 12 (keeping 6 or 12 Ritz vectors a
+        side instead of twice the width: 4-5.5% and 0.8-2%). The pass's dense work
+        at ``W = 0`` grows with the width (``n k (p + p')``) beside the loss's own
+        ``n k``; the kept products are ``2 x 2 lam_max_width`` d- and k-vectors.
     certificate_passes : int
         Most extra power passes on the final model (default 5).
     certificate_rtol : float
@@ -147,8 +196,9 @@ class SolverConfig:
     backend: str = "serial"
     class_weights: Any = None
     dense_gradient: bool | None = None
-    lam_max_passes: int = 8
-    lam_max_rtol: float = 1e-6
+    lam_max_passes: int = 3
+    lam_max_rtol: float = 1e-3
+    lam_max_width: int = 12
     certificate_passes: int = 5
     certificate_rtol: float = 1e-4
     inner_max_iter: int = 400
@@ -162,10 +212,13 @@ class SolverConfig:
         check_lam(self.lam, self.lam_frac, "solver")
         if not (0 < self.tol < 1):
             raise ConfigError(f"solver: tol = {self.tol!r}; it must lie in (0, 1)")
-        for name in ("max_passes", "power_size", "expand_size", "lam_max_passes",
-                     "inner_max_iter"):
+        for name in ("max_passes", "power_size", "expand_size", "inner_max_iter",
+                     "lam_max_width"):
             if int(getattr(self, name)) < 1:
                 raise ConfigError(f"solver: {name} = {getattr(self, name)!r}; it must be >= 1")
+        if int(self.lam_max_passes) < 2:
+            raise ConfigError(f"solver: lam_max_passes = {self.lam_max_passes!r}; it must be >= 2 "
+                              "(the intercept's pass and one at the intercept)")
         if int(self.certificate_passes) < 0:
             raise ConfigError("solver: certificate_passes must be >= 0")
         if self.max_seconds is not None and not self.max_seconds > 0:
@@ -193,11 +246,14 @@ class SolverConfig:
 # inner steps did as well as 0.5 and a cap of 5 stalled the outer loop.
 _INNER_STALL = 0.5
 
-_ARRAYS = ("U", "s", "V", "b", "Omega", "Psi", "U_prev")
+_ARRAYS = ("U", "s", "V", "b", "Omega", "Psi", "U_prev", "K_R", "K_GR", "K_L", "K_GtL")
+#: arrays older state versions lack (filled with empty ones)
+_OPTIONAL = {1: ("U_prev", "K_R", "K_GR", "K_L", "K_GtL"), 2: ("K_R", "K_GR", "K_L", "K_GtL"),
+             3: ()}
 _SCALARS = ("lam", "lam_max", "phase", "passes", "step_passes", "outer_iterations",
             "seconds", "sigma1", "sigma1_prev", "path_index", "intercept_ready",
             "lam_max_settle", "lam_max_settled", "U_prev_cols", "cert_passes", "last_rel_gap",
-            "objective", "status")
+            "objective", "status", "memory_floor", "gap", "rel_gap")
 
 
 @dataclass
@@ -218,6 +274,9 @@ class SolverState:
         The left factors before the last refinements, newest first, side by
         side (the momentum directions come from them; ``d x 0`` before the
         first refinement).
+    K_R, K_GR, K_L, K_GtL : ndarray (k, c), (d, c), (d, c'), (k, c')
+        The ``lam_max`` phase's power products of ``G(0, b0)`` kept across
+        passes (:class:`ranktide.solver.subspace.KrylovUnion`); empty outside it.
     rng_state : dict
         ``numpy.random.Generator.bit_generator.state`` of the solver's generator.
     lam, lam_max : float or None
@@ -250,6 +309,13 @@ class SolverState:
         The last relative gap estimate (ties the inner tolerance to it).
     objective : float or None
         The objective of the current model (after the last refinement).
+    gap, rel_gap : float or None
+        A bound (an estimate: ``sigma_1`` is a lower bound) on ``F - F*`` of the
+        current model, and that over ``F``: the last pass's gap less what the
+        refinement after it gained (the refinement only lowers ``F``).
+    memory_floor : int or None
+        The process floor the memory plans leave aside (bytes), measured before
+        the first pass and kept so a resumed run plans the same blocks.
     status : str
         ``"running"`` or the final status.
     """
@@ -262,6 +328,10 @@ class SolverState:
     Psi: np.ndarray
     rng_state: dict
     U_prev: np.ndarray | None = None
+    K_R: np.ndarray | None = None
+    K_GR: np.ndarray | None = None
+    K_L: np.ndarray | None = None
+    K_GtL: np.ndarray | None = None
     lam: float | None = None
     lam_max: float | None = None
     phase: str = "lam_max"
@@ -280,13 +350,31 @@ class SolverState:
     last_rel_gap: float | None = None
     objective: float | None = None
     status: str = "running"
+    memory_floor: int | None = None
+    gap: float | None = None
+    rel_gap: float | None = None
 
     def __post_init__(self) -> None:
+        d, k = self.U.shape[0], self.V.shape[0]
         if self.U_prev is None:
-            self.U_prev = np.zeros((self.U.shape[0], 0))
+            self.U_prev = np.zeros((d, 0))
+        for name, rows in (("K_R", k), ("K_GR", d), ("K_L", d), ("K_GtL", k)):
+            if getattr(self, name) is None:
+                setattr(self, name, np.zeros((rows, 0)))
         if self.U_prev_cols is None:  # one factor (or none)
             self.U_prev_cols = [int(self.U_prev.shape[1])] if self.U_prev.shape[1] else []
         self.U_prev_cols = [int(c) for c in self.U_prev_cols]
+
+    def krylov(self) -> KrylovUnion:
+        """The ``lam_max`` phase's products as a :class:`KrylovUnion` (shares the arrays)."""
+        return KrylovUnion(self.K_R, self.K_GR, self.K_L, self.K_GtL)
+
+    def set_krylov(self, kry: KrylovUnion | None) -> None:
+        """Keep ``kry``'s products (None: drop them, the phase is over)."""
+        d, k = self.U.shape[0], self.V.shape[0]
+        if kry is None:
+            kry = KrylovUnion.empty(d, k)
+        self.K_R, self.K_GR, self.K_L, self.K_GtL = kry.R, kry.GR, kry.L, kry.GtL
 
     def momentum_factors(self) -> list[np.ndarray]:
         """The previous left factors in ``U_prev``, newest first."""
@@ -311,7 +399,8 @@ class SolverState:
     def from_checkpoint(cls, arrays: dict[str, np.ndarray], meta: dict) -> SolverState:
         """Rebuild a state written by :meth:`to_checkpoint`."""
         version = meta.get("state_version")
-        missing = [n for n in _ARRAYS if n not in arrays and not (n == "U_prev" and version == 1)]
+        optional = _OPTIONAL.get(version, ())
+        missing = [n for n in _ARRAYS if n not in arrays and n not in optional]
         if missing:
             raise CheckpointError(f"solver checkpoint: arrays {', '.join(missing)} missing; "
                                   "the checkpoint is damaged, resume from an older one")
@@ -336,49 +425,6 @@ def _generator(state: dict) -> np.random.Generator:
 
 
 # ---------------------------------------------------------------- linear algebra
-
-
-def _fill(M: np.ndarray, B: np.ndarray, want: int, rng: np.random.Generator,
-          *, cap: int | None = None) -> np.ndarray:
-    """``orth_against(M, B)`` (at most ``cap`` columns), topped up with random directions.
-
-    Random columns (from the solver's seeded generator) replace dropped ones so
-    the block keeps at least ``want`` columns while the dimension allows.
-    """
-    dim = M.shape[0]
-    room = max(0, dim - B.shape[1])
-    want = min(want, room)
-    cap = min(room, want if cap is None else max(cap, want))
-    Q = orth_against(M, B)[:, :cap]
-    tries = 0
-    while Q.shape[1] < want and tries < 5:
-        extra = rng.standard_normal((dim, want - Q.shape[1]))
-        R = orth_against(extra, np.hstack([B, Q]))
-        Q = np.hstack([Q, R])
-        tries += 1
-    return Q
-
-
-def sigma1_lower_bound(G_VO: np.ndarray, Gt_Q: np.ndarray) -> float:
-    """Rayleigh-Ritz lower bound on ``||G||_2`` from two products.
-
-    ``||G B||_2 <= ||G||_2`` for orthonormal ``B`` (k x c) and ``||Q^T G||_2 <=
-    ||G||_2`` for orthonormal ``Q`` (d x c): the largest of the two is returned.
-
-    Parameters
-    ----------
-    G_VO : ndarray (d, c1)
-        ``G [V, Omega]`` with ``[V, Omega]`` orthonormal.
-    Gt_Q : ndarray (k, c2)
-        ``G^T [U, Psi]`` with ``[U, Psi]`` orthonormal.
-    """
-    best = 0.0
-    for M in (G_VO, Gt_Q):
-        if M.size:
-            if M.shape[0] > M.shape[1]:
-                M = np.linalg.qr(M, mode="r")
-            best = max(best, float(np.linalg.norm(M, 2)))
-    return best
 
 
 def dual_gap(*, objective: float, conjugate: float, scale: float, lam: float,
@@ -416,41 +462,28 @@ def gap_estimate(*, inner: float, nuclear: float, objective: float, lam: float,
     return max(0.0, inner + lam * nuclear + tau * max(0.0, sigma1 - lam))
 
 
-def _top_left(M: np.ndarray, count: int, *, rtol: float = 1e-8) -> np.ndarray:
-    """Top ``count`` left singular directions of ``M`` (d x c), negligible ones dropped."""
-    if M.shape[1] == 0 or count <= 0:
-        return np.zeros((M.shape[0], 0))
-    Q, R = np.linalg.qr(M)
-    u, sv, _ = svd(R)
-    if sv[0] <= 0:
-        return np.zeros((M.shape[0], 0))
-    keep = int(np.sum(sv > rtol * sv[0]))
-    return Q @ u[:, : min(count, keep)]
+def _link(loss: str, b: np.ndarray) -> np.ndarray:
+    """The score-to-mean map at a constant score ``b``: a row's residual is ``omega_i
+    (link(b) - y_i)`` at ``W = 0`` (softmax, identity, logistic)."""
+    if loss == "softmax":
+        return softmax(b)
+    if loss == "squared":
+        return np.asarray(b, dtype=np.float64)
+    return expit(b)
 
 
-def _momentum(U_prev: np.ndarray, Q: np.ndarray, *, atol: float = 1e-9) -> np.ndarray:
-    """Orthonormal directions of ``(I - Q Q^T) U_prev``: where the subspace last moved.
-
-    ``U_prev`` (d x r') has orthonormal (unit) columns, so :func:`orth_against`'s
-    relative drop tolerance is absolute here: directions whose residual is at
-    most ``atol`` (no motion) are dropped. Returns (d, m), ``m <= r'``,
-    orthogonal to ``Q``.
-    """
-    return orth_against(U_prev, Q, tol=atol)
-
-
-def _dense_top(G: np.ndarray, count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Top ``count`` singular triplets of a dense matrix (LAPACK, or ARPACK when large)."""
+def _dense_top(G: np.ndarray, count: int, warm: np.ndarray | None = None
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Top ``count`` singular triplets of a dense matrix: LAPACK when small, else the
+    solver's block power iteration (:func:`ranktide.solver.subspace.top_singular_pairs`)
+    warm-started from ``warm``."""
     d, k = G.shape
     count = max(1, min(count, min(d, k)))
     if min(d, k) <= 400 or count >= min(d, k) - 1:
         u, sv, vt = svd(G)
         return u[:, :count], sv[:count], vt[:count].T
-    from scipy.sparse.linalg import svds
-
-    u, sv, vt = svds(G, k=count, tol=1e-10, random_state=0)
-    order = np.argsort(sv)[::-1]
-    return u[:, order], sv[order], vt[order].T
+    res = top_singular_pairs(G, count, tol=1e-10, warm_start=warm, seed=0)
+    return res.U, res.sigma, res.V
 
 
 # ---------------------------------------------------------------- result
@@ -538,6 +571,8 @@ class GreedySolver:
         self._own_scratch: str | None = None
         self._pass_scratch: str | None = None  # this iteration's files, removed after it
         self._pass_fn = gradient_pass if pass_fn is None else pass_fn
+        self._deadline: float | None = None  # perf_counter time, set by run()
+        self._mode = "none"
         self.state = state if state is not None else self.initial_state()
         self._check_state(self.state)
         self._rng = _generator(self.state.rng_state)
@@ -549,8 +584,8 @@ class GreedySolver:
         """A fresh state: ``W = 0``, ``b = 0``, random orthonormal blocks."""
         cfg, d, k = self.config, self.d, self.k
         rng = np.random.default_rng(cfg.seed)
-        Omega = _fill(np.zeros((k, 0)), np.zeros((k, 0)), cfg.power_size, rng)
-        Psi = _fill(np.zeros((d, 0)), np.zeros((d, 0)), cfg.expand_size, rng)
+        Omega = fill(np.zeros((k, 0)), np.zeros((k, 0)), cfg.power_size, rng)
+        Psi = fill(np.zeros((d, 0)), np.zeros((d, 0)), cfg.expand_size, rng)
         return SolverState(U=np.zeros((d, 0)), s=np.zeros(0), V=np.zeros((k, 0)), b=np.zeros(k),
                            Omega=Omega, Psi=Psi, rng_state=rng.bit_generator.state,
                            lam=cfg.lam)
@@ -564,34 +599,96 @@ class GreedySolver:
                 f"fit data with {self.d} features and {self.k} outputs; resume on the same store")
 
     def _plan_memory(self) -> None:
+        """The first plan: the process floor (measured once, then kept in the state)
+        and the choice of the dense-gradient path, which holds for the whole run."""
+        st, cfg = self.state, self.config
+        if st.memory_floor is None:
+            st.memory_floor = 0  # the dense choice without the floor: it can only shrink
+            self.dense_hint = bool(self._plan(rank=st.rank, omega=cfg.power_size,
+                                              psi=st.rank + cfg.expand_size, keep=True,
+                                              dense=cfg.dense_gradient).dense_gradient)
+            # the kernels load before the floor is measured when the budget binds (given,
+            # or a cgroup limit); a quarter of an unconfined machine's RAM leaves room
+            if self._pass_fn is gradient_pass and (cfg.memory is not None
+                                                   or cgroup_limit() is not None):
+                self._warm_kernels()
+            st.memory_floor = int(process_floor())
+        self.plan = self._plan(rank=st.rank, omega=cfg.power_size,
+                               psi=st.rank + cfg.expand_size, keep=True,
+                               dense=cfg.dense_gradient)
+        self.dense = bool(self.plan.dense_gradient)
+        self._budget = int(self.plan.budget)
+
+    def _warm_kernels(self) -> None:
+        """Load (or compile) the kernels of a pass, on both sparse paths, and of a
+        refinement, on a tiny invented problem of the same kind, so that the floor
+        measured next holds them (measured: the resident set grows by ~125 MiB when
+        the cached kernels load on the first pass). The tiny problem's width is not
+        the data's, so the kernel-path chooser's timings are untouched."""
+        cfg, k = self.config, self.k
+        n, d = 8, 6
+        rng = np.random.default_rng(0)
+        X = sp.random(n, d, density=0.5, format="csr", dtype=np.float32, random_state=0)
+        X.sort_indices()
+        if cfg.loss == "softmax":
+            y: Any = rng.integers(0, k, n).astype(np.int32)
+        elif cfg.loss == "squared":
+            y = rng.standard_normal((n, k)).astype(np.float32)
+        else:
+            y = sp.csr_matrix((rng.random((n, k)) < 0.5).astype(np.float32))
+        w = np.ones(n, np.float32) if getattr(self.source, "has_weights", False) else None
+        tiny = as_source((X, y, w) if w is not None else (X, y), n_outputs=k)
+        U = np.linalg.qr(rng.standard_normal((d, 1)))[0]
+        V = np.linalg.qr(rng.standard_normal((k, 1)))[0]
+        Omega = fill(np.zeros((k, 0)), V, min(2, max(k - 1, 1)), rng)
+        Psi = fill(np.zeros((d, 0)), U, 2, rng)
+        req = PassRequest(loss=cfg.loss, U=U, s=np.ones(1), V=V, b=np.zeros(k), Omega=Omega,
+                          Psi=Psi, class_weights=cfg.class_weights, keep_projections=True,
+                          dense_gradient=self.dense_hint, dual_scale=0.5)
+        res = None
+        for path in ("csc", "csr"):
+            with CHOOSER.forced(path):
+                res = gradient_pass(tiny, req, backend=cfg.backend)
+        proj = res.projections
+        A = np.concatenate([p_.XQ for p_ in proj], axis=0)
+        N0 = np.zeros((A.shape[1], k))
+        N0[0] = V[:, 0]
+        refine(A, [p_.targets for p_ in proj], [p_.weights for p_ in proj], cfg.loss, 0.1, N0,
+               np.zeros(k), tol=1e-3, max_iter=3, class_weights=cfg.class_weights)
+
+    def _plan(self, *, rank: int, omega: int, psi: int, keep: bool, dense: bool | None,
+              extra: int = 0) -> Plan:
         cfg = self.config
-        r = max(self.state.rank, 1)
-        plan = plan_blocks(self.source, budget=cfg.memory, rank=r + cfg.expand_size,
-                           omega_cols=cfg.power_size, psi_cols=cfg.expand_size,
-                           keep_projections=True, dense_gradient=cfg.dense_gradient,
-                           backend=cfg.backend)
-        self.plan = plan
-        self.dense = bool(plan.dense_gradient)
-        self._budget = int(plan.budget)
+        return plan_blocks(self.source, budget=cfg.memory, rank=rank, omega_cols=omega,
+                           psi_cols=psi, keep_projections=keep, dense_gradient=dense,
+                           backend=cfg.backend, floor=int(self.state.memory_floor or 0),
+                           extra_bytes=extra)
 
-    def _refine_mode(self, q: int) -> str:
-        """Where the refinement works, from the memory budget.
+    def _refine_mode(self, q: int, plan: Plan | None = None) -> str:
+        """Where the refinement works, from what the budget leaves.
 
-        ``"memory"``: projections and the n x k scores of its iterates fit
-        (the fastest); ``"blocks"``: the n x q projections fit but not the
-        scores, so the refinement streams over the projection blocks in
-        memory; ``"scratch"``: the pass writes the projections to scratch files
-        and the refinement streams them from disk
-        (:mod:`ranktide.solver.refine_stream`). The choice depends only on the data's
-        shape and the budget, so a resumed run makes the same one.
+        The refinement runs after the pass, when its blocks are gone: what is
+        left is the budget less the process floor and the model, accumulators
+        and held arrays of the plan. ``"memory"``: the projections, their
+        concatenated copy and the n x k scores of its iterates fit (the
+        fastest); ``"blocks"``: the n x q projections fit but not the scores, so
+        the refinement streams over the projection blocks in memory;
+        ``"scratch"``: the pass writes the projections to scratch files and the
+        refinement streams them from disk (:mod:`ranktide.solver.refine_stream`).
+        The choice depends only on the data's shape, the budget, the floor kept
+        in the state and the widths, so a resumed run makes the same one.
         """
-        n, k, B = self.n, self.k, self._budget
-        rows = max(1, min(n, int(self.plan.block_rows)))
-        if 8 * n * (q + 5 * k) <= B:
+        plan = self.plan if plan is None else plan
+        n, k = self.n, self.k
+        if not plan.projections_fit:
+            return "scratch"
+        left = plan.work_bytes - plan.breakdown.get("model", 0) \
+            - plan.breakdown.get("accumulators", 0) - plan.breakdown.get("dense_gradient", 0)
+        if 8 * n * (2 * q + 5 * k) <= left:
             return "memory"
-        if 8 * (n * q + 3 * rows * (k + q)) <= B:
-            return "blocks"
-        return "scratch"
+        # the streamed refinement's per-block temporaries (about 3 x rows x (k + q)) take
+        # the room the pass's blocks leave
+        return "blocks"
 
     def _scratch_for_pass(self) -> str:
         import tempfile
@@ -631,27 +728,55 @@ class GreedySolver:
         return None
 
     # ------------------------------------------------------------ one pass
+    def _will_refine_after(self) -> bool:
+        """Whether the coming pass may be followed by a refinement (else it keeps no
+        projections: at W = 0 before ``lam`` is known there is nothing to refine)."""
+        cfg, st = self.config, self.state
+        if st.phase != "lam_max":
+            return True
+        if not st.intercept_ready:
+            return False  # the intercept's pass: b changes after it
+        if cfg.lam is not None or st.lam is not None:
+            return True  # an explicit lam may start fitting on any pass
+        return st.lam_max_settle + 2 >= cfg.lam_max_passes  # the phase's last pass
+
     def _run_pass(self):
         cfg, st = self.config, self.state
         rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
-        st.Psi = _fill(st.Psi, st.U, cfg.expand_size, self._rng, cap=rot + cfg.expand_size)
-        st.Omega = _fill(st.Omega, st.V, cfg.power_size, self._rng)
+        p, pp = cfg.power_size, cfg.expand_size
+        if st.phase == "lam_max":  # wider blocks at W = 0 (see lam_max_width)
+            p, pp = max(p, cfg.lam_max_width), max(pp, cfg.lam_max_width)
+        st.Psi = fill(st.Psi, st.U, pp, self._rng, cap=rot + pp)
+        st.Omega = fill(st.Omega, st.V, p, self._rng)
         for U_old in st.momentum_factors()[: max(0, int(cfg.momentum))]:
-            st.Psi = np.hstack([st.Psi, _momentum(U_old, np.hstack([st.U, st.Psi]))])
+            st.Psi = np.hstack([st.Psi, momentum_directions(U_old, np.hstack([st.U, st.Psi]))])
         # keep the generator's position in the state, so a checkpoint resumes the same draws
         st.rng_state = self._rng.bit_generator.state
-        mode = self._refine_mode(st.rank + st.Psi.shape[1])
+        keep = self._will_refine_after()
+        # re-plan for this pass: its widths, the arrays held beside the model (momentum
+        # factors, the lam_max products) and the floor; all kept in the state
+        held = 8 * (st.U_prev.size + st.K_R.size + st.K_GR.size + st.K_L.size
+                    + st.K_GtL.size)
+        q = st.rank + st.Psi.shape[1]
+        plan = self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
+                          keep=keep, dense=self.dense, extra=held)
+        mode = self._refine_mode(q, plan) if keep else "none"
+        if mode == "scratch":  # the projections go to disk: the blocks get their room
+            plan = self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
+                              keep=False, dense=self.dense, extra=held)
+        self.plan = plan
+        self._mode = mode
         req = PassRequest(loss=cfg.loss, U=st.U, s=st.s, V=st.V, b=st.b, Omega=st.Omega,
-                          Psi=st.Psi, class_weights=cfg.class_weights, keep_projections=True,
+                          Psi=st.Psi, class_weights=cfg.class_weights, keep_projections=keep,
                           dense_gradient=self.dense, dual_scale=self._dual_scale(),
                           projections_dir=self._scratch_for_pass() if mode == "scratch" else None)
         prof = PassProfile()
         rows = cfg.block_rows
         if rows is None and cfg.block_bytes is None:
-            rows = self.plan.block_rows
+            rows = plan.block_rows
         res = self._pass_fn(self.source, req, backend=cfg.backend, block_rows=rows,
                             block_bytes=cfg.block_bytes, profile=prof, progress=self.progress,
-                            should_stop=self.stop)
+                            should_stop=self._should_stop)
         st.passes += 1
         st.step_passes += 1
         return req, res, prof
@@ -670,8 +795,6 @@ class GreedySolver:
         frequencies), squared ``b - grad_b``, multilabel ``sigmoid(b) - grad_b``;
         :func:`ranktide.losses.intercept_from_sums` turns them into ``b0``.
         """
-        from scipy.special import expit, softmax
-
         b, g = self.state.b, res.grad_b
         if self.config.loss == "softmax":
             mean = softmax(b) - g
@@ -683,32 +806,25 @@ class GreedySolver:
                                    if self.config.loss != "squared" else mean)
 
     def _next_blocks(self, req, res) -> None:
-        """Next ``Psi`` and ``Omega`` from this pass's products (before the refinement).
-
-        ``Psi`` gets the top directions of the rotation block ``(I - U U^T) G V``
-        (all of them by default, see ``rotation_size``) and ``p'`` top directions of
-        ``(I - U U^T) G Omega`` (new atoms), chosen separately: ranked together, the
-        rotations (often a tenth of lam) lose every slot to the many complement
-        directions near lam and the solver stalls (measured: relative gap stuck at 1e-2 with
-        p = p' = 6 on a softmax problem, d = 200, k = 30).
-        """
+        """Next ``Psi`` and ``Omega`` from this pass's products (before the refinement):
+        :func:`ranktide.solver.subspace.next_blocks`, or on the dense path the same
+        split (rotations, new atoms) from the top pairs of the projected gradient."""
         cfg, st = self.config, self.state
         U_old, V_old, r = req.U, req.V, req.rank
+        n_rot = r if cfg.rotation_size is None else min(r, cfg.rotation_size)
         if res.G is not None:
             G = res.G
             Gc = G - U_old @ (U_old.T @ G)
             rot = Gc @ V_old
             Gc = Gc - rot @ V_old.T
-            u, sv, vr = _dense_top(Gc, max(cfg.power_size, cfg.expand_size))
+            u, sv, vr = _dense_top(Gc, max(cfg.power_size, cfg.expand_size), warm=st.Omega)
             new = u[:, : cfg.expand_size] * sv[: cfg.expand_size]
             st.Omega = vr[:, : cfg.power_size]
+            st.Psi = np.hstack([top_left(rot, n_rot), top_left(new, cfg.expand_size)])
         else:
-            M = res.G_VO - U_old @ (U_old.T @ res.G_VO)
-            rot, new = M[:, :r], M[:, r:]
-            st.Omega = res.Gt_Psi.copy()
-        n_rot = r if cfg.rotation_size is None else min(r, cfg.rotation_size)
-        parts = [_top_left(rot, n_rot), _top_left(new, cfg.expand_size)]
-        st.Psi = np.hstack(parts)
+            st.Psi, st.Omega = next_blocks(U=U_old, V=V_old, G_VO=res.G_VO, Gt_Psi=res.Gt_Psi,
+                                           expand=req.Psi.shape[1] if req.rank == 0
+                                           else cfg.expand_size, n_rotations=n_rot)
 
     def _dual_scale(self) -> float:
         """``c0 = min(1, lam / sigma_1)`` from the last pass: where this pass sums the
@@ -742,7 +858,7 @@ class GreedySolver:
             weights = [p.weights for p in proj]
             out = refine(A, targets, weights, cfg.loss, st.lam, N0, req.b,
                          tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
-                         class_weights=cfg.class_weights, should_stop=self.stop,
+                         class_weights=cfg.class_weights, should_stop=self._should_stop,
                          stall=_INNER_STALL)
         else:
             out = self._refine_streamed(proj, mode, N0, req.b, rel_gap)
@@ -763,6 +879,7 @@ class GreedySolver:
         st.b = out.b
         st.objective = out.objective
         st.outer_iterations += 1
+        st.set_krylov(None)  # W != 0 from here: the lam_max products are spent
         new = np.sum(out.A[r_old:] ** 2, axis=0) > 0.5 if out.A.shape[1] else np.zeros(0, bool)
         return {"refine_iterations": out.iterations, "refine_seconds": secs, "refine_mode": mode,
                 "refine_converged": out.converged, "refine_gap": out.gap_estimate,
@@ -780,7 +897,7 @@ class GreedySolver:
         try:
             return refine_streamed(blocks, cfg.loss, self.state.lam, N0, b0,
                                    tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
-                                   class_weights=cfg.class_weights, should_stop=self.stop,
+                                   class_weights=cfg.class_weights, should_stop=self._should_stop,
                                    stall=_INNER_STALL)
         finally:
             if mode == "scratch":
@@ -820,12 +937,14 @@ class GreedySolver:
         t0 = time.perf_counter()
         phase_in = st.phase
         req, res, prof = self._run_pass()
-        sigma1 = self._sigma1(req, res)
-        st.sigma1_prev, st.sigma1 = st.sigma1, sigma1
         rec: dict[str, Any] = {"pass": st.passes, "phase": phase_in, "rank_before": req.rank}
+        sigma1 = self._sigma1(req, res)
+        if self._at_b0(req):
+            sigma1 = self._krylov_estimate(req, res, sigma1, rec)
+        st.sigma1_prev, st.sigma1 = st.sigma1, sigma1
         self._next_blocks(req, res)
         if st.phase == "lam_max":
-            done = self._lam_max_step(res, sigma1, rec)
+            done = self._lam_max_step(req, res, sigma1, rec)
             if not done:
                 self._finish_record(rec, res, prof, t0, refine_info=None)
                 return rec
@@ -836,7 +955,7 @@ class GreedySolver:
                           lam=st.lam, sigma1=sigma1)
         gap = min(gap_fw, gap_du)  # both bound F - F*: keep the tighter
         rel = gap / F if F > 0 else 0.0
-        st.objective = F
+        st.objective, st.gap, st.rel_gap = F, gap, rel
         # the inner tolerance follows the conditional-gradient bound (measured with it)
         st.last_rel_gap = gap_fw / F if F > 0 else 0.0
         rec.update(objective_pass=F, gap_estimate=gap, rel_gap=rel, gap_cg=gap_fw,
@@ -856,9 +975,58 @@ class GreedySolver:
         else:
             st.phase = "fit"
             st.cert_passes = 0
-            info = self._refine(req, res, st.last_rel_gap)
+            if req.keep_projections:
+                info = self._refine(req, res, st.last_rel_gap)
+                # the refinement only lowers F: the pass's gap less the decrease bounds
+                # the refined model's (the model this iteration leaves, and writes)
+                st.gap = max(0.0, gap - (F - info["objective_after"]))
+                st.rel_gap = st.gap / info["objective_after"] if info["objective_after"] > 0 \
+                    else 0.0
+                info.update(gap_after=st.gap, rel_gap_after=st.rel_gap)
+            # else: lam_max settled on a pass that kept no projections; the next fits
         self._finish_record(rec, res, prof, t0, refine_info=info)
         return rec
+
+    def _at_b0(self, req) -> bool:
+        """The pass's gradient is ``G(0, b0)``: no atoms and no refinement yet, intercept set
+        (or the intercept's own pass, whose products are partly ``G(0, b0)``'s)."""
+        st = self.state
+        return (not self.dense and req.rank == 0 and st.outer_iterations == 0
+                and (st.phase == "lam_max" or st.intercept_ready))
+
+    def _krylov_estimate(self, req, res, sigma1: float, rec: dict) -> float:
+        """The Rayleigh-Ritz lower bound of ``sigma_1(G(0, b0))`` over every pass so far.
+
+        On the intercept's pass (at ``b``, not yet ``b0``) only the right products on
+        directions orthogonal to ``delta = link(b0) - link(b)`` are ``G(0, b0)``'s: at
+        ``W = 0`` every residual row is ``omega_i (link(b) - y_i)``, so ``G(0, b0) -
+        G(0, b) = m delta^T`` with ``m = X^T omega / sum(omega)``.
+        """
+        cfg, st = self.config, self.state
+        kry = st.krylov()
+        cap = 2 * max(cfg.power_size, cfg.expand_size, cfg.lam_max_width)
+        if not st.intercept_ready:
+            b0 = self._intercept_from_pass(res)
+            delta = _link(cfg.loss, b0) - _link(cfg.loss, req.b)
+            coef = req.Omega.T @ delta
+            if float(np.linalg.norm(coef)) > 1e-14 * max(float(np.linalg.norm(delta)), 1e-300):
+                N = np.linalg.svd(coef[None, :])[2][1:].T  # null space of coef^T
+            else:
+                N = np.eye(req.Omega.shape[1])
+            est = kry.add(right=req.Omega @ N, g_right=res.G_VO @ N, cap=cap)
+        else:
+            est = kry.add(right=req.Omega, g_right=res.G_VO, left=req.Psi,
+                          gt_left=res.Gt_Psi, cap=cap)
+            est = max(est, sigma1)
+        st.set_krylov(kry)
+        rec["krylov_cols"] = int(kry.R.shape[1] + kry.L.shape[1])
+        if st.phase != "lam_max" and st.lam_max is not None and est > st.lam_max:
+            # still W = 0 at b0: the bound grew, and lam_max (and a lam_frac lam) with it
+            st.lam_max = est
+            if cfg.lam is None and cfg.lam_frac is not None and st.path_index == 0:
+                st.lam = cfg.lam_frac * est
+            rec["lam_max_raised"] = est
+        return est
 
     def _certified(self, phase_in: str, sigma1: float) -> bool:
         """sigma_1 is trusted: exact (dense path) or settled over consecutive passes."""
@@ -869,27 +1037,36 @@ class GreedySolver:
             return False
         return abs(sigma1 - st.sigma1_prev) <= self.config.certificate_rtol * max(sigma1, 1e-300)
 
-    def _lam_max_step(self, res, sigma1: float, rec: dict) -> bool:
+    def _lam_max_step(self, req, res, sigma1: float, rec: dict) -> bool:
         """Settle sigma_1 at ``W = 0``; True when ``lam`` is now set and fitting may start."""
         cfg, st = self.config, self.state
         if not st.intercept_ready:
             st.b = self._intercept_from_pass(res)
             st.intercept_ready = True
-            st.sigma1 = None
-            rec.update(lam_max_estimate=None)
+            st.objective = None  # f(0, b0) is known after the next pass
+            if self.dense:
+                st.sigma1 = None
+            rec.update(lam_max_estimate=st.sigma1)
             return False
+        st.objective = res.loss  # W = 0: F = f(0, b0)
         st.lam_max_settle += 1
         prev = st.sigma1_prev
-        settled = self.dense or (
-            prev is not None and abs(sigma1 - prev) <= cfg.lam_max_rtol * max(sigma1, 1e-300))
-        rec.update(lam_max_estimate=sigma1)
+        change = abs(sigma1 - prev) / max(sigma1, 1e-300) if prev is not None else math.inf
+        settled = self.dense or change <= cfg.lam_max_rtol
+        rec.update(lam_max_estimate=sigma1, lam_max_change=change if prev is not None else None)
         # an explicit lam below the lower bound sigma1 <= lam_max: W = 0 is not optimal
         # (DESIGN section 2), so fitting may start without settling lam_max exactly
         early = not settled and cfg.lam is not None and sigma1 > cfg.lam
-        if not settled and not early and st.lam_max_settle < cfg.lam_max_passes:
+        last = st.lam_max_settle + 1 >= cfg.lam_max_passes  # + 1: the intercept's pass
+        if not settled and not early and not last:
             return False
         st.lam_max = sigma1
-        st.lam_max_settled = not early
+        st.lam_max_settled = bool(settled)
+        if not settled and not early:
+            rec["lam_max_note"] = (
+                f"lam_max not settled after {st.lam_max_settle + 1} passes at W = 0 (last change "
+                f"{change:.1e} > {cfg.lam_max_rtol:g}): fitting from the lower bound "
+                f"{sigma1:.6g}; lam_max_passes sets how many passes it may take")
         lam = self._lam_after_settle()
         if lam is None:  # caller sets lam (regularization path) after lam_max is known
             st.phase = "fit"
@@ -922,6 +1099,12 @@ class GreedySolver:
         self._history.append(rec)
 
     # ------------------------------------------------------------ loop
+    def _should_stop(self) -> bool:
+        """The caller's stop flag, or the deadline of :meth:`run` (``max_seconds``)."""
+        if self.stop is not None and self.stop():
+            return True
+        return self._deadline is not None and time.perf_counter() >= self._deadline
+
     def run(self, callback: Callable[[dict], Any] | None = None) -> SolverResult:
         """Iterate until converged, out of budget, or the callback asks to stop.
 
@@ -932,44 +1115,50 @@ class GreedySolver:
         """
         cfg, st = self.config, self.state
         t_start = time.perf_counter()
+        self._deadline = None if cfg.max_seconds is None else t_start + cfg.max_seconds
         status = None
         self._history = []
-        while True:
-            if st.phase == "done":
-                status = st.status
-                break
-            if st.step_passes >= cfg.max_passes:
-                status = "max_passes"
-                break
-            if cfg.max_seconds is not None and time.perf_counter() - t_start >= cfg.max_seconds:
-                status = "max_seconds"
-                break
-            if self.stop is not None and self.stop():
-                status = "interrupted"
-                break
-            try:
-                rec = self.step()
-            except StopRequested:
-                status = "interrupted"
-                break
-            if st.status == "lam_max":
-                status = "lam_max"
-                break
-            if callback is not None:
-                answer = callback(rec)
-                if answer is True or answer == "stop":
-                    status = "callback"
+        try:
+            while True:
+                if st.phase == "done":
+                    status = st.status
                     break
+                if st.step_passes >= cfg.max_passes:
+                    status = "max_passes"
+                    break
+                if self._deadline is not None and time.perf_counter() >= self._deadline:
+                    status = "max_seconds"
+                    break
+                if self.stop is not None and self.stop():
+                    status = "interrupted"
+                    break
+                try:
+                    rec = self.step()
+                except StopRequested:
+                    # the caller's flag wins; otherwise the deadline cut the pass short
+                    status = "interrupted" if self.stop is not None and self.stop() \
+                        else "max_seconds"
+                    break
+                if st.status == "lam_max":
+                    status = "lam_max"
+                    break
+                if callback is not None:
+                    answer = callback(rec)
+                    if answer is True or answer == "stop":
+                        status = "callback"
+                        break
+        finally:
+            self._deadline = None
         return self._result(status)
 
     def _result(self, status: str) -> SolverResult:
         st = self.state
         if status != "converged" and st.phase != "done":
             st.status = status
-        last = self._history[-1] if self._history else {}
-        gap = float(last.get("gap_estimate", math.nan))
-        rel = float(last.get("rel_gap", math.nan))
+        gap = float(st.gap) if st.gap is not None else math.nan
+        rel = float(st.rel_gap) if st.rel_gap is not None else math.nan
         lam = st.lam if st.lam is not None else math.nan
+        at_zero = st.phase == "lam_max"
         messages = {
             "converged": f"relative gap estimate {rel:.2e} <= tol {self.config.tol:g}",
             "max_passes": f"stopped after {st.step_passes} passes (max_passes); relative gap "
@@ -980,12 +1169,19 @@ class GreedySolver:
             "lam_max": f"lam_max = {st.lam_max:.6g} found; set lam to fit"
             if st.lam_max else "lam_max phase",
         }
+        message = messages.get(status, status)
+        if at_zero and status in ("max_passes", "max_seconds", "callback", "interrupted"):
+            message = (f"stopped after {st.passes} passes at W = 0, still settling lam_max: "
+                       "nothing fitted yet (the model is the intercept alone)")
+        elif not st.lam_max_settled and st.lam_max is not None and self.config.lam is None:
+            message += (f"; lam_max {st.lam_max:.6g} is a lower bound (not settled in "
+                        f"{self.config.lam_max_passes} passes at W = 0)")
         return SolverResult(
             U=st.U, s=st.s, V=st.V, b=st.b, lam=lam, lam_max=st.lam_max,
             lam_max_settled=bool(st.lam_max_settled),
             objective=float(st.objective) if st.objective is not None else math.nan,
             gap=gap, rel_gap=rel, sigma1=float(st.sigma1) if st.sigma1 is not None else math.nan,
-            status=status, message=messages.get(status, status), passes=st.passes,
+            status=status, message=message, passes=st.passes,
             seconds=st.seconds, history=list(self._history))
 
     def remove_scratch(self) -> None:
