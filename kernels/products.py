@@ -22,8 +22,23 @@ the raw row weights; divide by ``weight_sum`` once all blocks are in)::
 
 The sparse sweeps are the numba kernels of :mod:`kernels.sparse` (CSR) or
 :mod:`kernels.csc` (the block transposed once, faster on large blocks; same
-results) and :mod:`kernels.losses`; the dense n_b x k products use numpy's
-BLAS. No Python loop runs over rows.
+results). The dense part (:func:`block_dense`) runs in row chunks of about
+:data:`CHUNK_BYTES` of scores, so that each chunk's scores, residual and
+products stay in the core's cache: per chunk ``S = XQ_U (diag(s) V^T)``
+(numpy matmul, BLAS), ``S += b``, the fused loss/residual kernel of
+:mod:`kernels.losses` (numba, in place), then ``S^T XQ`` and ``S [V, Omega]``
+(BLAS). The chunks run side by side on a small pool, one BLAS thread each
+(:mod:`kernels.rowchunks`), and their sums are added in chunk order, so the
+result does not depend on the thread count. No Python loop runs over rows.
+
+Precision: every product here is float64. The scores feed the loss sum, the
+objective of the gap; ``R [V, Omega]`` and ``R^T X [U, Psi]`` give
+``G [V, Omega]``, ``G^T U`` and ``G^T Psi``, whose Rayleigh-Ritz values are the
+``sigma_1`` lower bound and ``<G, W>`` (certificate figures). Near the optimum
+``G`` is a small difference of large per-row terms, so a float32 residual
+(relative rounding 6e-8 per entry) would carry an error relative to ``G``
+that grows with that cancellation; the float32 matmuls would save about half
+of the BLAS time only (``tools/bench_pass.py --floors`` reports both floors).
 """
 
 from __future__ import annotations
@@ -36,6 +51,7 @@ from . import losses as _losses
 from .conjugates import conjugate_sum
 from .csc import BlockCSC, csc_matmul_dense, csc_t_matmul_accumulate
 from .errors import KernelConfigError, KernelInputError
+from .rowchunks import chunk_buffer, chunk_ranges, map_chunks
 from .sparse import csr_matmul_dense, csr_t_matmul_accumulate
 
 LOSSES = ("softmax", "squared", "multilabel")
@@ -261,6 +277,184 @@ def _check_buffers(bufs: ProductBuffers, ops: BlockOperands) -> None:
             )
 
 
+# rows per dense chunk: the chunk's scores (rows x k float64) take about this many
+# bytes, so that scores, residual and both products stay in the core's L2 cache
+# (measured with tools/bench_pass.py --floors, k = 500: see the commit message)
+CHUNK_BYTES = 1 << 20
+
+
+def dense_chunk_rows(k: int, chunk_bytes: int | None = None) -> int:
+    """Rows per dense chunk for ``k`` outputs (at least 8)."""
+    cb = CHUNK_BYTES if chunk_bytes is None else int(chunk_bytes)
+    return max(8, cb // (8 * max(int(k), 1)))
+
+
+def block_projections(
+    X,
+    ops: BlockOperands,
+    *,
+    out_XQ: np.ndarray | None = None,
+    csc: BlockCSC | None = None,
+    where: str = "block",
+) -> np.ndarray:
+    """``XQ = X [U, Psi]`` for one block (sparse kernels).
+
+    Parameters
+    ----------
+    X : scipy.sparse CSR matrix (n_b, d)
+    ops : BlockOperands
+    out_XQ : (n_b, r + p') float64, optional
+        Caller-owned output (allocated when None).
+    csc : BlockCSC, optional
+        The block transposed by :func:`kernels.csc.block_csc` (same results).
+    where : str
+        Data source name (error messages).
+
+    Returns
+    -------
+    XQ : (n_b, r + p') float64
+    """
+    n, d = X.shape
+    if d != ops.d:
+        raise KernelInputError(
+            f"{where}: block has {d} columns but the model has {ops.d}; "
+            "use the model trained on this store's features"
+        )
+    if out_XQ is None:
+        out_XQ = np.empty((n, ops.Q.shape[1]))
+    if csc is not None:
+        if csc.shape != (n, d):
+            raise KernelConfigError(
+                f"{where}: transposed block {csc.shape} is not the block {(n, d)}"
+            )
+        csc_matmul_dense(csc, ops.Q, out_XQ, where=where)
+    else:
+        csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where)
+    return out_XQ
+
+
+def _dense_out(name: str, a: np.ndarray | None, shape: tuple[int, int], where: str) -> None:
+    if a is None:
+        return
+    if (
+        not isinstance(a, np.ndarray)
+        or a.dtype != np.float64
+        or a.shape != shape
+        or not a.flags.c_contiguous
+        or not a.flags.writeable
+    ):
+        raise KernelConfigError(
+            f"{where}: {name} must be a writable C-contiguous float64 array of shape {shape}, "
+            f"got {getattr(a, 'dtype', type(a).__name__)} {getattr(a, 'shape', None)}"
+        )
+
+
+def block_dense(
+    XQ: np.ndarray,
+    targets,
+    weights: np.ndarray | None,
+    ops: BlockOperands,
+    bufs: ProductBuffers,
+    *,
+    out_RVO: np.ndarray | None = None,
+    out_R: np.ndarray | None = None,
+    chunk_rows: int | None = None,
+    workers: int | None = None,
+    row_offset: int = 0,
+    where: str = "block",
+) -> None:
+    """The dense part of a block: scores, loss, residual and their products.
+
+    In row chunks (see the module docstring), accumulates into ``bufs``:
+    ``loss_sum``, ``weight_sum``, ``n_rows``, ``grad_b``, ``Gt_U``,
+    ``Gt_Psi``, ``gw`` and ``conj`` (not ``G_VO`` or ``G``: they need the
+    sparse block, see :func:`block_products`).
+
+    Parameters
+    ----------
+    XQ : (n_b, r + p') float64
+        ``X [U, Psi]`` from :func:`block_projections`.
+    targets, weights, ops, bufs, row_offset, where
+        As in :func:`block_products`.
+    out_RVO : (n_b, r + p) float64 C array, optional
+        Receives ``R [V, Omega]`` (needed when ``[V, Omega]`` has columns).
+    out_R : (n_b, k) float64 C array, optional
+        Receives the residual ``R`` (unnormalized ``w_i dloss/dz_i``); when
+        None the chunks work in per-thread buffers and ``R`` is not kept.
+    chunk_rows : int, optional
+        Rows per chunk (default :func:`dense_chunk_rows`). The results depend
+        on it (the order of the sums), not on ``workers``.
+    workers : int, optional
+        Threads running the chunks (default :func:`kernels.rowchunks.default_workers`).
+    """
+    k, r, q, m = ops.k, ops.r, ops.Q.shape[1], ops.VO.shape[1]
+    if (not isinstance(XQ, np.ndarray) or XQ.ndim != 2 or XQ.dtype != np.float64
+            or XQ.shape[1] != q):
+        raise KernelConfigError(f"{where}: XQ must be a 2-D float64 array of {q} columns, got "
+                                f"{getattr(XQ, 'dtype', type(XQ).__name__)} "
+                                f"{getattr(XQ, 'shape', None)}")
+    n = XQ.shape[0]
+    _dense_out("out_RVO", out_RVO, (n, m), where)
+    _dense_out("out_R", out_R, (n, k), where)
+    if m and out_RVO is None:
+        raise KernelConfigError(f"{where}: out_RVO is needed for the {m} columns of [V, Omega]")
+    w = weights
+    if ops.class_weights is not None:
+        w = _losses.fold_class_weights(targets, ops.class_weights, weights,
+                                       row_offset=row_offset, where=where)
+    tp = ti = None
+    if ops.loss == "multilabel":
+        tp, ti = _tags_arrays(targets)
+    bufs.weight_sum[0] += float(n) if w is None else float(np.sum(w, dtype=np.float64))
+    bufs.n_rows[0] += n
+    if n == 0:
+        return
+    rows = dense_chunk_rows(k) if chunk_rows is None else max(1, int(chunk_rows))
+
+    def chunk(ab: tuple[int, int]):
+        a, e = ab
+        S = out_R[a:e] if out_R is not None else chunk_buffer(e - a, k)
+        if r:
+            np.matmul(XQ[a:e, :r], ops.SVt, out=S)
+            S += ops.b
+        else:
+            S[...] = ops.b
+        loss = np.zeros(1)
+        gb = np.zeros(k)
+        wc = None if w is None else w[a:e]
+        kw = {"row_offset": row_offset + a, "where": where}
+        if ops.loss == "softmax":
+            tgt = targets[a:e]
+            _losses.softmax_residual(S, tgt, wc, loss, gb, **kw)
+        elif ops.loss == "squared":
+            tgt = targets[a:e]
+            _losses.squared_residual(S, tgt, wc, loss, gb, **kw)
+        else:
+            tgt = (tp[a:e + 1], ti)
+            _losses.multilabel_residual(S, tgt[0], ti, wc, loss, gb, **kw)
+        conj = 0.0
+        if ops.dual_scale > 0.0:
+            conj = conjugate_sum(S, tgt, wc, ops.loss, ops.dual_scale, where=where)
+        T = S.T @ XQ[a:e] if q else None
+        if m:
+            np.matmul(S, ops.VO, out=out_RVO[a:e])
+        return loss[0], gb, T, conj
+
+    T = np.zeros((k, q))
+    # folded as they come, in chunk order: the same sums for any thread count
+    for loss, gb, Tc, conj in map_chunks(chunk, chunk_ranges(n, rows), workers=workers):
+        bufs.loss_sum[0] += loss
+        bufs.grad_b += gb
+        bufs.conj[0] += conj
+        if q:
+            T += Tc
+    if q:
+        bufs.Gt_U += T[:, :r]
+        bufs.Gt_Psi += T[:, r:]
+        if r:
+            bufs.gw[0] += float(ops.s @ np.einsum("kj,kj->j", T[:, :r], ops.V))
+
+
 def block_products(
     X,
     targets,
@@ -271,10 +465,16 @@ def block_products(
     out_XQ: np.ndarray | None = None,
     scratch: np.ndarray | None = None,
     csc: BlockCSC | None = None,
+    out_RVO: np.ndarray | None = None,
+    chunk_rows: int | None = None,
+    workers: int | None = None,
     row_offset: int = 0,
     where: str = "block",
 ) -> np.ndarray:
     """All per-block products of a solver pass; accumulates into ``bufs``.
+
+    :func:`block_projections`, then :func:`block_dense`, then the sparse
+    ``X^T (R [V, Omega])`` (and ``X^T R`` when ``bufs.G`` is kept).
 
     Parameters
     ----------
@@ -292,13 +492,19 @@ def block_products(
     out_XQ : (n_b, r + p') float64, optional
         Caller-owned output for the projections (allocated when None).
     scratch : (>= n_b * k,) float64 C-contiguous, optional
-        Reused memory for the block's scores/residual. When given, it holds
-        the block's residual ``R`` (unnormalized, ``w_i * dloss/dz_i``) on
-        return: ``scratch[:n_b * k].reshape(n_b, k)``.
+        When given, it holds the block's residual ``R`` (unnormalized,
+        ``w_i * dloss/dz_i``) on return: ``scratch[:n_b * k].reshape(n_b, k)``.
+        Without it (and without ``bufs.G``) the residual lives only in
+        cache-sized chunks.
     csc : BlockCSC, optional
         The block transposed by :func:`kernels.csc.block_csc`; when given,
         the sparse products walk it instead of the CSR arrays (same results,
         faster on large blocks).
+    out_RVO : (n_b, r + p) float64, optional
+        When given, receives ``R [V, Omega]`` and ``bufs.G_VO`` is left for the
+        caller (who adds ``X^T`` of it, e.g. into a compensated sum).
+    chunk_rows, workers
+        See :func:`block_dense`.
     row_offset : int
         Absolute row index of the block's first row (error messages).
     where : str
@@ -310,75 +516,37 @@ def block_products(
         ``X [U, Psi]``; ``XQ[:, :r]`` is ``X U``, ``XQ[:, r:]`` is ``X Psi``.
     """
     _check_buffers(bufs, ops)
-    n, d = X.shape
-    if d != ops.d:
-        raise KernelInputError(
-            f"{where}: block has {d} columns but the model has {ops.d}; "
-            "use the model trained on this store's features"
-        )
-    k, r, q = ops.k, ops.r, ops.Q.shape[1]
-    if out_XQ is None:
-        out_XQ = np.empty((n, q))
-    if csc is not None:
-        if csc.shape != (n, d):
+    n = X.shape[0]
+    k, m = ops.k, ops.VO.shape[1]
+    XQ = block_projections(X, ops, out_XQ=out_XQ, csc=csc, where=where)
+    R = None
+    if scratch is not None:
+        if (
+            isinstance(scratch, np.ndarray)
+            and scratch.dtype == np.float64
+            and scratch.size >= n * k
+            and scratch.flags.c_contiguous
+        ):
+            R = scratch.reshape(-1)[: n * k].reshape(n, k)
+        else:
             raise KernelConfigError(
-                f"{where}: transposed block {csc.shape} is not the block {(n, d)}"
+                f"{where}: scratch must be a C-contiguous float64 array of at least {n * k} "
+                "values"
             )
-        csc_matmul_dense(csc, ops.Q, out_XQ, where=where)
-    else:
-        csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where)
-    if scratch is None:
-        S = np.empty((n, k))
-    elif (
-        isinstance(scratch, np.ndarray)
-        and scratch.dtype == np.float64
-        and scratch.size >= n * k
-        and scratch.flags.c_contiguous
-    ):
-        S = scratch.reshape(-1)[: n * k].reshape(n, k)
-    else:
-        raise KernelConfigError(
-            f"{where}: scratch must be a C-contiguous float64 array of at least {n * k} values"
-        )
-    if r:
-        np.dot(out_XQ[:, :r], ops.SVt, out=S)
-        S += ops.b
-    else:
-        S[...] = ops.b
-
-    w = weights
-    if ops.class_weights is not None:
-        w = _losses.fold_class_weights(targets, ops.class_weights, weights,
-                                       row_offset=row_offset, where=where)
-    kw = {"row_offset": row_offset, "where": where}
-    if ops.loss == "softmax":
-        _losses.softmax_residual(S, targets, w, bufs.loss_sum, bufs.grad_b, **kw)
-    elif ops.loss == "squared":
-        _losses.squared_residual(S, targets, w, bufs.loss_sum, bufs.grad_b, **kw)
-    else:
-        tp, ti = _tags_arrays(targets)
-        _losses.multilabel_residual(S, tp, ti, w, bufs.loss_sum, bufs.grad_b, **kw)
-    R = S
-    if ops.dual_scale > 0.0 and n:
-        tgt = (tp, ti) if ops.loss == "multilabel" else targets
-        bufs.conj[0] += conjugate_sum(R, tgt, w, ops.loss, ops.dual_scale, where=where)
-    bufs.weight_sum[0] += float(n) if w is None else float(np.sum(w, dtype=np.float64))
-    bufs.n_rows[0] += n
+    elif bufs.G is not None:
+        R = np.empty((n, k))
+    D = out_RVO
+    if D is None and m:
+        D = np.empty((n, m))
+    block_dense(XQ, targets, weights, ops, bufs, out_RVO=D, out_R=R, chunk_rows=chunk_rows,
+                workers=workers, row_offset=row_offset, where=where)
     if n == 0:
-        return out_XQ
-
-    if ops.VO.shape[1]:
-        RVO = R @ ops.VO
-        _xt(X, csc, RVO, bufs.G_VO, where)
-    if q:
-        T = R.T @ out_XQ  # (k, q) = [R^T X U, R^T X Psi]
-        bufs.Gt_U += T[:, :r]
-        bufs.Gt_Psi += T[:, r:]
-        if r:
-            bufs.gw[0] += float(ops.s @ np.einsum("kj,kj->j", T[:, :r], ops.V))
+        return XQ
+    if m and out_RVO is None:
+        _xt(X, csc, D, bufs.G_VO, where)
     if bufs.G is not None:
         _xt(X, csc, R, bufs.G, where)
-    return out_XQ
+    return XQ
 
 
 def _xt(X, csc: BlockCSC | None, D: np.ndarray, out: np.ndarray, where: str) -> None:

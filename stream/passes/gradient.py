@@ -38,7 +38,12 @@ from ranktide.kernels.compensated import (
     csc_t_matmul_compensated,
 )
 from ranktide.kernels.csc import BlockCSC, block_csc, csc_t_matmul_accumulate
-from ranktide.kernels.products import ProductBuffers, block_products, prepare_operands
+from ranktide.kernels.products import (
+    ProductBuffers,
+    block_dense,
+    block_projections,
+    prepare_operands,
+)
 from ranktide.kernels.sparse import csr_t_matmul_accumulate
 from ranktide.losses import check_loss_source, get_loss
 from ranktide.passes.engine import PassProfile, phase, run_pass
@@ -278,7 +283,7 @@ class _Partial:
 class _State:
     """Per-pass operands shared (read-only) by every block."""
 
-    ops: Any  # kernels.products.BlockOperands without [V, Omega] (see below)
+    ops: Any  # kernels.products.BlockOperands (its VO is [V, Omega] too)
     VO: np.ndarray  # (k, r + p)
     s: np.ndarray
     V: np.ndarray
@@ -301,9 +306,9 @@ def _state(req: PassRequest, where: str) -> _State:
         n_cols=req.shape[0],
     )
     VO = ops.VO
-    # block_products then skips X^T (R [V, Omega]): the pass adds that term in
-    # the combine, into the one compensated d x (r + p) accumulator
-    ops = replace(ops, VO=np.zeros((ops.k, 0)), dual_scale=float(req.dual_scale))
+    # block_dense forms R [V, Omega]; the combine adds X^T of it into the one
+    # compensated d x (r + p) accumulator
+    ops = replace(ops, dual_scale=float(req.dual_scale))
     return _State(
         ops=ops,
         VO=VO,
@@ -325,41 +330,35 @@ def _xt_accumulate(X: Any, D: np.ndarray, out: np.ndarray) -> None:
 
 
 def block_products_kernels(block: Any, st: _State) -> _Partial:
-    """Block function of the gradient pass (numba kernels).
+    """Block function of the gradient pass (numba kernels and BLAS).
 
-    Calls :func:`kernels.products.block_products` with raw weights for
-    ``XQ = X [U, Psi]``, the loss sum, ``1^T R``, ``R^T X U`` and
-    ``R^T X Psi`` (``R = w * dloss/dz`` stays in the block's scratch), then
-    forms ``R [V, Omega]``; ``X^T (R [V, Omega])`` (and ``X^T R``) is left
-    as a pending term for the combine.
+    :func:`kernels.products.block_projections` gives ``XQ = X [U, Psi]``
+    (sparse kernels); :func:`kernels.products.block_dense` then forms, in
+    cache-sized row chunks with raw weights, the scores, the loss sum,
+    ``R = w * dloss/dz``, ``1^T R``, ``R^T X U``, ``R^T X Psi`` and
+    ``R [V, Omega]`` (BLAS and the fused loss kernel). ``X^T (R [V, Omega])``
+    (and ``X^T R``, when the dense gradient is kept: then ``R`` is kept whole)
+    is left as a pending term for the combine.
     """
     t0 = time.perf_counter()
     n = int(block.stop - block.start)
-    k = st.VO.shape[0]
-    scratch = np.empty(n * k)
+    k, m = st.VO.shape
     bufs = ProductBuffers.zeros(st.ops)
     X = block.X
-    key = (X.shape[1], st.ops.Q.shape[1], st.VO.shape[1], st.dense_gradient)
+    key = (X.shape[1], st.ops.Q.shape[1], m, st.dense_gradient)
     path = CHOOSER.pick(key, X.nnz, X.shape[1], sorted_ids=bool(X.has_sorted_indices))
     csc = None
     if path == "csc":
         with phase("transpose"):
             csc = block_csc(X.indptr, X.indices, X.data, X.shape[1], where=st.where)
-    with phase("block_products"):
-        XQ = block_products(
-            block.X,
-            block.targets,
-            block.weights,
-            st.ops,
-            bufs,
-            scratch=scratch,
-            csc=csc,
-            row_offset=int(block.start),
-            where=st.where,
-        )
-    R = scratch.reshape(n, k)  # the residual, in place of the scores
-    with phase("residual_VO"):
-        D = R @ st.VO
+    with phase("projections"):
+        XQ = block_projections(X, st.ops, csc=csc, where=st.where)
+    sparse_s = time.perf_counter() - t0
+    R = np.empty((n, k)) if st.dense_gradient else None
+    D = np.empty((n, m))
+    with phase("dense"):
+        block_dense(XQ, block.targets, block.weights, st.ops, bufs, out_RVO=D, out_R=R,
+                    row_offset=int(block.start), where=st.where)
     proj = None
     if st.keep_projections and st.projections_dir is not None:
         file = write_projection_block(st.projections_dir, int(block.start), XQ, block.targets,
@@ -376,9 +375,10 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
                 weights=block.weights,
             )
         ]
-    # the combine adds X^T D and records the block's time with the path chooser
-    timing = (key, path, time.perf_counter() - t0, int(X.nnz))
-    term = (block.X if csc is None else csc, D, R if st.dense_gradient else None, timing)
+    # the combine adds X^T D and records the block's sparse time with the path chooser
+    # (the dense part does not depend on the path)
+    timing = (key, path, sparse_s, int(X.nnz))
+    term = (block.X if csc is None else csc, D, R, timing)
     return _Partial(
         rows=n,
         weight=float(bufs.weight_sum[0]),

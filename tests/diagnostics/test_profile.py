@@ -58,7 +58,7 @@ def test_csv_accounts_for_every_row_of_every_pass(tmp_path):
         assert sum(sizes) == X.shape[0]
         assert sum(int(r["nnz"]) for r in mine) == X.nnz
     for col in ("bytes_disk", "bytes_decoded", "read_s", "decode_s", "wait_s",
-                "block_products_s", "residual_VO_s", "xt_products_s", "combine_s"):
+                "projections_s", "dense_s", "xt_products_s", "combine_s"):
         assert col in rows[0]
     summary = json.loads(paths["json"].read_text())
     assert summary["totals"]["rows"] == 3 * X.shape[0]
