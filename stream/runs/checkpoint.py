@@ -1,6 +1,6 @@
 """Atomic, checksummed checkpoints in a run directory.
 
-A checkpoint is a directory ``checkpoints/ckpt-<counter>`` holding
+A checkpoint is a directory ``checkpoints/save-<counter>`` (8 digits) holding
 
 * ``state.npz`` -- every array of the solver state (written with
   :func:`ranktide.atomic.save_npz`, never pickled);
@@ -9,13 +9,19 @@ A checkpoint is a directory ``checkpoints/ckpt-<counter>`` holding
   itself, so a flipped byte anywhere in either file is detected on load.
 
 Writing goes to a temporary sibling directory whose files are fsynced, which
-is then renamed into place; only after that is the pointer file ``LATEST``
-replaced atomically. A crash at any moment therefore leaves ``LATEST`` naming
-a complete checkpoint (the new or the previous one). The checkpoint ``LATEST``
-named before the new one is kept as a fallback and every older one is removed.
+is then renamed into place; only after that is the pointer file
+``newest.txt`` replaced atomically. A crash at any moment therefore leaves
+``newest.txt`` naming a complete checkpoint (the new or the previous one).
+The checkpoint it named before the new one is kept as a fallback and every
+older one is removed.
 
-Loading follows ``LATEST``, verifies both checksums and falls back, with a
-warning, to the previous checkpoint when the latest is damaged.
+Loading follows ``newest.txt``, verifies both checksums and falls back, with
+a warning, to the previous checkpoint when the latest is damaged.
+
+Run directories written by earlier versions name their checkpoints
+``ckpt-<counter>`` with the pointer file ``LATEST``; they are read the same
+way (the counter orders both spellings), and the first new checkpoint
+written into such a directory continues the count under the new names.
 """
 
 from __future__ import annotations
@@ -54,10 +60,15 @@ __all__ = [
 
 CHECKPOINT_FORMAT = "ranktide-checkpoint"
 CHECKPOINT_VERSION = 1
-POINTER_NAME = "LATEST"
+POINTER_NAME = "newest.txt"
+#: the pointer file of run directories written by earlier versions (read, never written)
+OLD_POINTER_NAME = "LATEST"
+#: the directory prefix of new checkpoints; earlier versions wrote ``ckpt-``
+DIR_PREFIX = "save-"
 STATE_NAME = "state.npz"
 META_NAME = "meta.json"
-_DIR_RE = re.compile(r"^ckpt-(\d{8})$")
+_DIR_RE = re.compile(r"^(?:save|ckpt)-(\d{8})$")
+_TMP_RE = re.compile(r"^\.(?:save|ckpt)-(\d{8})\.")
 
 # Test-only hooks (read at call time): make the writer touch a file and pause
 # at a chosen stage of a chosen save, so a test can kill the process there.
@@ -65,6 +76,11 @@ _ENV_PAUSE_FILE = "RANKTIDE_TEST_PAUSE_IN_CHECKPOINT"
 _ENV_PAUSE_SAVE = "RANKTIDE_TEST_PAUSE_SAVE"
 _ENV_PAUSE_STAGE = "RANKTIDE_TEST_PAUSE_STAGE"
 _PAUSE_SECONDS = 60.0
+
+
+def _counter(path: Path) -> int:
+    """The counter in a checkpoint directory's name (either spelling)."""
+    return int(_DIR_RE.match(path.name).group(1))
 
 
 class CheckpointWarning(RuntimeWarning):
@@ -172,21 +188,25 @@ class CheckpointManager:
         return [p for _c, p in sorted(found)]
 
     def pointer(self) -> Path | None:
-        """The checkpoint directory named by ``LATEST``, or None if unreadable."""
-        ptr = self.dir / POINTER_NAME
-        try:
-            name = ptr.read_text(encoding="ascii").strip()
-        except (OSError, UnicodeDecodeError):
-            return None
-        if not _DIR_RE.match(name):
-            return None
-        return self.dir / name
+        """The checkpoint directory named by ``newest.txt`` (or an old run's ``LATEST``).
+
+        None when neither pointer file is readable.
+        """
+        for name in (POINTER_NAME, OLD_POINTER_NAME):
+            try:
+                text = (self.dir / name).read_text(encoding="ascii").strip()
+            except FileNotFoundError:
+                continue
+            except (OSError, UnicodeDecodeError):
+                return None
+            return self.dir / text if _DIR_RE.match(text) else None
+        return None
 
     def _next_counter(self) -> int:
-        counters = [int(_DIR_RE.match(p.name).group(1)) for p in self.checkpoints()]
+        counters = [_counter(p) for p in self.checkpoints()]
         if self.dir.is_dir():
             for entry in self.dir.iterdir():  # temporaries of interrupted writes
-                m = re.match(r"^\.ckpt-(\d{8})\.", entry.name)
+                m = _TMP_RE.match(entry.name)
                 if m:
                     counters.append(int(m.group(1)))
         return max(counters, default=0) + 1
@@ -212,7 +232,7 @@ class CheckpointManager:
         CheckpointError
             When the checkpoint cannot be written (full disk, permissions,
             object arrays). The temporary directory is removed and the
-            previous checkpoint and ``LATEST`` are left untouched.
+            previous checkpoint and ``newest.txt`` are left untouched.
         """
         t0 = time.perf_counter()
         self._saves += 1
@@ -233,8 +253,8 @@ class CheckpointManager:
         try:
             self.dir.mkdir(parents=True, exist_ok=True)
             counter = self._next_counter()
-            final = self.dir / f"ckpt-{counter:08d}"
-            tmp = self.dir / f".ckpt-{counter:08d}.tmp-{os.getpid()}"
+            final = self.dir / f"{DIR_PREFIX}{counter:08d}"
+            tmp = self.dir / f".{DIR_PREFIX}{counter:08d}.tmp-{os.getpid()}"
             try:
                 self._write_tree(tmp, counter, arrays, body_meta)
                 os.replace(tmp, final)
@@ -290,7 +310,9 @@ class CheckpointManager:
         for entry in list(self.dir.iterdir()):
             if entry.name == POINTER_NAME or entry.name in keep:
                 continue
-            if _DIR_RE.match(entry.name) or entry.name.startswith((".ckpt-", f".{POINTER_NAME}.")):
+            if (_DIR_RE.match(entry.name) or _TMP_RE.match(entry.name)
+                    or entry.name == OLD_POINTER_NAME  # superseded by newest.txt
+                    or entry.name.startswith((f".{POINTER_NAME}.", f".{OLD_POINTER_NAME}."))):
                 remove_path(entry)
         fsync_dir(self.dir)
 
@@ -344,8 +366,8 @@ class CheckpointManager:
     def load_latest(self) -> tuple[dict[str, np.ndarray], dict[str, Any], Path]:
         """Load the newest valid checkpoint.
 
-        Follows ``LATEST``; when that checkpoint is damaged (or ``LATEST`` is
-        unreadable) the next older checkpoint is tried, with a
+        Follows ``newest.txt`` (an old run's ``LATEST``); when that checkpoint
+        is damaged (or the pointer is unreadable) the next older one is tried, with a
         :class:`CheckpointWarning` naming what was wrong.
 
         Returns
@@ -369,8 +391,8 @@ class CheckpointManager:
             )
         ptr = self.pointer()
         if ptr is not None and ptr in candidates:
-            # Checkpoints newer than LATEST were never published: ignore them.
-            order = [ptr] + [c for c in reversed(candidates) if c.name < ptr.name]
+            # Checkpoints newer than the pointer were never published: ignore them.
+            order = [ptr] + [c for c in reversed(candidates) if _counter(c) < _counter(ptr)]
         else:
             warnings.warn(
                 f"{self.dir / POINTER_NAME}: missing or damaged; using the newest checkpoint "

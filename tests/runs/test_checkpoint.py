@@ -76,8 +76,8 @@ def test_roundtrip_exact_and_checksums_match_hashlib(tmp_path):
     mgr = CheckpointManager(tmp_path)
     arrays, meta = _state(3)
     path = mgr.save(arrays, meta)
-    assert path.name == "ckpt-00000001"
-    assert (tmp_path / "checkpoints" / "LATEST").read_text().strip() == path.name
+    assert path.name == "save-00000001"
+    assert (tmp_path / "checkpoints" / "newest.txt").read_text().strip() == path.name
     # The npz is a plain numpy file (numpy.load, no pickle).
     with np.load(path / "state.npz", allow_pickle=False) as z:
         np.testing.assert_array_equal(z["U"], arrays["U"])
@@ -110,7 +110,7 @@ def test_keeps_last_two(tmp_path):
     for i in range(1, 5):
         mgr.save(*_state(i))
     names = sorted(p.name for p in (tmp_path / "checkpoints").iterdir())
-    assert names == ["LATEST", "ckpt-00000003", "ckpt-00000004"]
+    assert names == ["newest.txt", "save-00000003", "save-00000004"]
     arrays, meta, path = mgr.load_latest()
     _assert_same(arrays, meta, *_state(4))
 
@@ -139,15 +139,15 @@ def test_damaged_latest_falls_back_with_warning(tmp_path, damage):
         state.write_bytes(b"")
     fresh = CheckpointManager(tmp_path)
     with pytest.warns(
-        CheckpointWarning, match=r"ckpt-00000002 is not usable .*falling back to ckpt-00000001"
+        CheckpointWarning, match=r"save-00000002 is not usable .*falling back to save-00000001"
     ):
         arrays, got_meta, path = fresh.load_latest()
-    assert path.name == "ckpt-00000001"
+    assert path.name == "save-00000001"
     _assert_same(arrays, got_meta, *_state(1))
     # The next save keeps the good fallback and drops the damaged one.
     fresh.save(*_state(5))
     names = sorted(p.name for p in (tmp_path / "checkpoints").iterdir())
-    assert names == ["LATEST", "ckpt-00000001", "ckpt-00000003"]
+    assert names == ["newest.txt", "save-00000001", "save-00000003"]
 
 
 def test_no_valid_checkpoint_is_one_line_error(tmp_path):
@@ -173,8 +173,8 @@ def test_damaged_pointer_uses_newest_that_verifies(tmp_path):
     mgr = CheckpointManager(tmp_path)
     mgr.save(*_state(1))
     mgr.save(*_state(2))
-    (tmp_path / "checkpoints" / "LATEST").write_bytes(b"ckpt-0000\xff")
-    with pytest.warns(CheckpointWarning, match="LATEST: missing or damaged"):
+    (tmp_path / "checkpoints" / "newest.txt").write_bytes(b"save-0000\xff")
+    with pytest.warns(CheckpointWarning, match="newest.txt: missing or damaged"):
         arrays, meta, path = CheckpointManager(tmp_path).load_latest()
     _assert_same(arrays, meta, *_state(2))
 
@@ -219,7 +219,7 @@ def test_disk_full_keeps_previous(tmp_path, monkeypatch, target):
     assert "\n" not in str(ei.value) and "ranktide resume" in str(ei.value)
     monkeypatch.undo()
     after = sorted(p.name for p in (tmp_path / "checkpoints").iterdir())
-    assert after == before  # no temporary left, LATEST untouched
+    assert after == before  # no temporary left, newest.txt untouched
     arrays, meta, _p = CheckpointManager(tmp_path).load_latest()
     _assert_same(arrays, meta, *_state(1))
 
@@ -230,7 +230,7 @@ def test_pointer_write_failure_after_rename(tmp_path, monkeypatch):
     real = ckmod.atomic_write_bytes
 
     def failing(path, data):
-        if Path(path).name == "LATEST":
+        if Path(path).name == "newest.txt":
             _enospc()
         return real(path, data)
 
@@ -238,14 +238,14 @@ def test_pointer_write_failure_after_rename(tmp_path, monkeypatch):
     with pytest.raises(CheckpointError, match="No space left"):
         mgr.save(*_state(2))
     monkeypatch.undo()
-    # ckpt-2 is complete but unpublished: LATEST still names ckpt-1 and wins.
+    # save-2 is complete but unpublished: newest.txt still names save-1 and wins.
     fresh = CheckpointManager(tmp_path)
     arrays, meta, path = fresh.load_latest()
-    assert path.name == "ckpt-00000001"
+    assert path.name == "save-00000001"
     _assert_same(arrays, meta, *_state(1))
     fresh.save(*_state(3))
     names = sorted(p.name for p in (tmp_path / "checkpoints").iterdir())
-    assert names == ["LATEST", "ckpt-00000001", "ckpt-00000003"]
+    assert names == ["newest.txt", "save-00000001", "save-00000003"]
 
 
 # ---------------------------------------------------------------- kill mid-write
@@ -285,13 +285,13 @@ def test_sigkill_inside_checkpoint_write(tmp_path, stage):
     assert proc.returncode == -signal.SIGKILL
     mgr = CheckpointManager(run)
     arrays, meta, path = mgr.load_latest()
-    assert meta == {"i": 1} and path.name == "ckpt-00000001"
+    assert meta == {"i": 1} and path.name == "save-00000001"
     np.testing.assert_array_equal(arrays["x"], np.random.default_rng(1).standard_normal(50_000))
-    leftovers = {p.name for p in (run / "checkpoints").iterdir()} - {"LATEST", "ckpt-00000001"}
+    leftovers = {p.name for p in (run / "checkpoints").iterdir()} - {"newest.txt", "save-00000001"}
     assert leftovers  # the kill left a temporary (write) or an unpublished directory (publish)
     mgr.save({"x": np.zeros(1)}, {"i": 3})
     names = sorted(p.name for p in (run / "checkpoints").iterdir())
-    assert names == ["LATEST", "ckpt-00000001", "ckpt-00000003"]
+    assert names == ["newest.txt", "save-00000001", "save-00000003"]
 
 
 # ---------------------------------------------------------------- schedule

@@ -151,7 +151,7 @@ def _history_lines(run: Path) -> int:
 
 def _checkpointed_history(run: Path) -> int:
     try:
-        latest = (run / "checkpoints" / "LATEST").read_text().strip()
+        latest = (run / "checkpoints" / "newest.txt").read_text().strip()
         meta = json.loads((run / "checkpoints" / latest / "meta.json").read_text())
         return int(meta["meta"]["history_len"])
     except (FileNotFoundError, KeyError, ValueError):
@@ -205,7 +205,7 @@ def test_sigkill_at_seeded_moments_then_resume_is_exact(work):
     kills = []
     for kind in plan:
         # a run killed before its first checkpoint cannot be resumed: it is started again
-        started = any((run / "checkpoints").glob("ckpt-*"))
+        started = any((run / "checkpoints").glob("save-*"))
         args = ["resume", str(run), "--quiet"] if started else _train_args(root, run, "--overwrite")
         at = int(rng.integers(1, 3))
         pause = root / f"paused-{len(kills)}"
@@ -334,7 +334,7 @@ def test_stop_inside_a_pass_or_a_refinement_restores_the_state(work, monkeypatch
     assert logged == (4 if where == "block" else refined[2] - 1)
     assert _checkpointed_history(run) == logged
     # the checkpointed state is the one after the last logged pass
-    ck = run / "checkpoints" / (run / "checkpoints" / "LATEST").read_text().strip()
+    ck = run / "checkpoints" / (run / "checkpoints" / "newest.txt").read_text().strip()
     meta = json.loads((ck / "meta.json").read_text())
     assert meta["meta"]["solver"]["passes"] == ref.history[logged - 1]["pass"]
     res = resume(run)
@@ -362,7 +362,7 @@ def _copy(run: Path, name: str) -> Path:
 
 
 def _latest(run: Path) -> Path:
-    return run / "checkpoints" / (run / "checkpoints" / "LATEST").read_text().strip()
+    return run / "checkpoints" / (run / "checkpoints" / "newest.txt").read_text().strip()
 
 
 def _flip(path: Path) -> None:
@@ -377,7 +377,7 @@ def test_flipped_byte_falls_back_and_budget_can_grow(work, partial_run, capsys):
     _flip(_latest(run) / "state.npz")
     assert main(["resume", str(run), "--max-passes", "100", "--quiet"]) == 0
     err = capsys.readouterr().err
-    assert "warning: checkpoint ckpt-" in err and "falling back to ckpt-" in err
+    assert "warning: checkpoint save-" in err and "falling back to save-" in err
     _assert_same_model(run, ref)
 
 
@@ -397,7 +397,7 @@ def test_truncated_latest_falls_back(work, partial_run, capsys):
 
 def test_no_valid_checkpoint_is_exit_2(partial_run, capsys):
     run = _copy(partial_run, "ruined")
-    for ckpt in (run / "checkpoints").glob("ckpt-*"):
+    for ckpt in (run / "checkpoints").glob("save-*"):
         _flip(ckpt / "state.npz")
     assert main(["resume", str(run), "--quiet"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
@@ -441,12 +441,12 @@ def test_disk_full_during_checkpoint_stops_cleanly(work):
     lines = err.strip().splitlines()
     assert len(lines) == 1 and "No space left on device" in lines[0]
     assert "ranktide resume" in lines[0]
-    assert _latest(run).name == "ckpt-00000003"  # the three written before stay valid
-    assert not any(p.name.startswith(".ckpt-") for p in (run / "checkpoints").iterdir())
+    assert _latest(run).name == "save-00000003"  # the three written before stay valid
+    assert not any(p.name.startswith(".save-") for p in (run / "checkpoints").iterdir())
     from ranktide.runs.checkpoint import CheckpointManager
 
     _arrays, meta, path = CheckpointManager(run).load_latest()  # verifies the checksums
-    assert path.name == "ckpt-00000003" and meta["solver"]["passes"] == 3
+    assert path.name == "save-00000003" and meta["solver"]["passes"] == 3
 
 
 # ---------------------------------------------------------------- regularization path
