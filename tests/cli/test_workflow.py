@@ -343,7 +343,7 @@ def test_demo_small_end_to_end(tmp_path):
     assert metrics["accuracy"] > 10.0 / made["steps"]["data"]["n_sections"]
     header, rows = _read_csv(out / "holdout_predictions.csv")
     assert header[:3] == ["row", "label_1", "prob_1"] and len(rows) == metrics["n_rows"]
-    assert (out / "run" / "checkpoints" / "LATEST").is_file()  # the path ran with checkpoints
+    assert (out / "run" / "checkpoints" / "newest.txt").is_file()  # the path ran with checkpoints
     html = (out / "run" / "report" / "report.html").read_text()
     for png in ("convergence.png", "rank.png", "singular_values.png", "path.png"):
         assert (out / "run" / "report" / png).read_bytes()[:8] == PNG_MAGIC
