@@ -98,7 +98,7 @@ def _scenario(name: str, store: Path, work: Path, settings: dict, **ckpt: Any) -
     run = ckpt.get("out")
     if run is not None:
         latest = Path(run) / "checkpoints"
-        state_bytes = max((p.stat().st_size for p in latest.glob("ckpt-*/state.npz")), default=0)
+        state_bytes = max((p.stat().st_size for p in latest.glob("save-*/state.npz")), default=0)
     print(f"  {name}: {res.passes} passes, {wall:.2f} s, {len(writes)} checkpoints "
           f"({sum(writes):.3f} s)", file=sys.stderr, flush=True)  # fmt: skip
     return {
