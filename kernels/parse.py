@@ -512,7 +512,7 @@ def gather_tokens(buf, tok_start, tok_len, n, out):
 
 
 @njit(nogil=True, cache=True)
-def split_tokens(buf, start, stop, split, tok_start, tok_len, line_ntok, status):
+def split_tokens(buf, start, stop, split, tok_start, tok_len, line_ntok, status, sep=-1):
     """Cut lines into tokens: the whole stripped line, or words.
 
     Parameters
@@ -521,7 +521,12 @@ def split_tokens(buf, start, stop, split, tok_start, tok_len, line_ntok, status)
         Text with whole lines in ``buf[start:stop]``.
     split : bool
         False: one token per line (the line without surrounding white space,
-        possibly empty). True: tokens separated by spaces, tabs or commas.
+        possibly empty). True: tokens cut at ``sep``.
+    sep : int
+        The separator byte when splitting: -1 spaces, tabs or commas; 32 runs
+        of spaces and tabs; any other byte (``,``, ``;``, ``|``, tab) cuts at
+        each occurrence, each token stripped of surrounding white space and
+        empty tokens dropped.
     tok_start, tok_len : int64 arrays (tok_cap,)
         Out: byte offset and length of each token.
     line_ntok : int64 array (line_cap,)
@@ -567,20 +572,40 @@ def split_tokens(buf, start, stop, split, tok_start, tok_len, line_ntok, status)
             tok_len[nt] = b - a
             nt += 1
             line_ntok[nl] = 1
-        else:
+        elif sep < 0 or sep == _SP:
             cnt = 0
             q = p
+            comma = sep < 0
             while q < e:
-                while q < e and (_is_space(buf[q]) or buf[q] == _COMMA):
+                while q < e and (_is_space(buf[q]) or (comma and buf[q] == _COMMA)):
                     q += 1
                 if q >= e:
                     break
                 a = q
-                while q < e and not (_is_space(buf[q]) or buf[q] == _COMMA):
+                while q < e and not (_is_space(buf[q]) or (comma and buf[q] == _COMMA)):
                     q += 1
                 if nt < tcap:
                     tok_start[nt] = a
                     tok_len[nt] = q - a
+                    nt += 1
+                    cnt += 1
+            line_ntok[nl] = cnt
+        else:
+            cnt = 0
+            q = p
+            while q < e:
+                a = q
+                while q < e and buf[q] != sep:
+                    q += 1
+                b = q
+                q += 1  # past the separator
+                while a < b and _is_space(buf[a]) and buf[a] != sep:
+                    a += 1
+                while b > a and _is_space(buf[b - 1]) and buf[b - 1] != sep:
+                    b -= 1
+                if b > a and nt < tcap:
+                    tok_start[nt] = a
+                    tok_len[nt] = b - a
                     nt += 1
                     cnt += 1
             line_ntok[nl] = cnt

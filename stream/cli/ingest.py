@@ -7,6 +7,7 @@ import json
 import sys
 
 from ranktide.ingest.build import ingest
+from ranktide.ingest.targets import DEFAULT_TAG_SEP, TAG_SEPARATORS
 from ranktide.store.format import DEFAULT_CODEC
 
 HELP = "Read a Matrix Market, triplet or .npz sparse matrix (and targets) into a store"
@@ -24,7 +25,11 @@ def configure(parser: argparse.ArgumentParser) -> None:
     tg.add_argument("--labels", metavar="FILE", help="one class label per line")
     tg.add_argument("--values", metavar="FILE.npy", help="n x k float target matrix (.npy)")
     tg.add_argument("--tags", metavar="FILE",
-                    help="one line per row, tags separated by commas or spaces")
+                    help="one line per row, tags separated by --tag-sep")
+    parser.add_argument("--tag-sep", choices=tuple(TAG_SEPARATORS), default=None,
+                        help=f"separator of --tags (default {DEFAULT_TAG_SEP}; space: runs of "
+                             "spaces and tabs); without it a tag with white space inside is "
+                             "refused as ambiguous")
     parser.add_argument("--weights", metavar="FILE",
                         help="row weights: one non-negative number per line, or .npy")
     parser.add_argument("--one-based", action="store_true",
@@ -53,6 +58,7 @@ def run(args: argparse.Namespace) -> int:
         values=args.values,
         tags=args.tags,
         weights=args.weights,
+        tag_sep=args.tag_sep,
         one_based=args.one_based,
         fmt=args.fmt,
         duplicates=args.duplicates,

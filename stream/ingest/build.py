@@ -233,10 +233,9 @@ class _RowSink:
         order = np.lexsort((cols, rows))  # only on the way to an error
         r, c = rows[order], cols[order]
         j = int(np.flatnonzero((r[1:] == r[:-1]) & (c[1:] == c[:-1]))[0]) + 1
-        base = 1 if self.hdr.one_based else 0
-        raise InputError(
-            f"{self.hdr.path}: entry (row {int(r[j]) + base}, column "
-            f"{int(c[j]) + base}) appears more than once; remove the repeat or "
+        raise InputError(  # rows and columns count from 1, as in Matrix Market
+            f"{self.hdr.path}: entry (row {int(r[j]) + 1}, column "
+            f"{int(c[j]) + 1}) appears more than once; remove the repeat or "
             "pass --duplicates sum to add them"
         )
 
@@ -526,8 +525,8 @@ def _ingest_npz(hdr, out, tsrc, memory, a) -> tuple[Any, _RowSink, int, int]:
         j = int(np.flatnonzero(bad)[0])
         r = int(np.searchsorted(M.indptr, j, side="right")) - 1
         raise InputError(
-            f"{hdr.path}: entry (row {r}, column {int(M.indices[j])}): value "
-            f"{float(M.data[j])!r} is not finite; remove it or give a finite value"
+            f"{hdr.path}: entry (row {r + 1}, column {int(M.indices[j]) + 1}): value "
+            f"{float(M.data[j])} is not finite; remove it or give a finite value"
         )
     if tsrc is not None:
         tsrc.check_rows(n_rows)
@@ -596,6 +595,7 @@ def ingest(
     values: str | os.PathLike | None = None,
     tags: str | os.PathLike | None = None,
     weights: str | os.PathLike | None = None,
+    tag_sep: str | None = None,
     one_based: bool = False,
     fmt: str | None = None,
     duplicates: str = "sum",
@@ -617,6 +617,9 @@ def ingest(
         At most one target file (see :mod:`ranktide.ingest.targets`).
     weights : path, optional
         Row weights (text, one per line, or ``.npy``).
+    tag_sep : str, optional
+        Separator of the tags file (see :mod:`ranktide.ingest.targets`);
+        default a comma, refusing tags with white space inside.
     one_based : bool
         Triplet indices start at 1.
     fmt : {"mm", "triplets", "npz"}, optional
@@ -651,7 +654,7 @@ def ingest(
     budget = _parse_memory(memory)
     plan = _plan(budget)
     hdr = read_header(src, fmt=fmt, one_based=one_based)
-    tsrc = open_targets(labels=labels, values=values, tags=tags)
+    tsrc = open_targets(labels=labels, values=values, tags=tags, tag_sep=tag_sep)
     wsrc = open_weights(weights)
     if tsrc is not None and hdr.n_rows is not None:
         tsrc.check_rows(hdr.n_rows)

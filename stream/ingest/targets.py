@@ -6,8 +6,16 @@
   order of the names (byte order of their UTF-8 spelling), so the id of a
   class does not depend on row order. The names become the store's output
   names.
-* ``--tags``: one line per row, tags separated by commas or white space; an
-  empty line is a row without tags. Ids are assigned like labels.
+* ``--tags``: one line per row, tags separated by ``--tag-sep`` (default a
+  comma; ``space`` cuts at runs of spaces and tabs; also ``tab``, ``semicolon``,
+  ``pipe``); white space around a tag is dropped, an empty line is a row
+  without tags. With the default separator a tag containing white space
+  (``hand tools``) is refused as ambiguous: say ``--tag-sep comma`` to keep it
+  whole or ``--tag-sep space`` to split it. Ids are assigned like labels.
+
+Text files may start with a UTF-8 byte-order mark (dropped) and end with
+blank lines (ignored; beyond the matrix's rows for tags); a blank line inside
+a labels file is refused with its line number. Rows and lines count from 1.
 * ``--values``: a ``.npy`` float matrix (n, k) (or (n,) for k = 1), read
   through a memory map.
 * ``--weights``: one non-negative number per line, or a ``.npy`` vector.
@@ -38,7 +46,14 @@ from ranktide.ingest.mmio import (
 )
 from ranktide.kernels import parse as kp
 
-__all__ = ["TargetSource", "WeightSource", "open_targets", "open_weights"]
+__all__ = ["TargetSource", "WeightSource", "open_targets", "open_weights", "TAG_SEPARATORS",
+           "DEFAULT_TAG_SEP"]
+
+#: tag separators by name (the byte cut at; space: runs of spaces and tabs)
+TAG_SEPARATORS: dict[str, int] = {"comma": 44, "space": 32, "tab": 9, "semicolon": 59,
+                                  "pipe": 124}
+DEFAULT_TAG_SEP = "comma"
+_BOM = b"\xef\xbb\xbf"
 
 _ROWS_PER_FEED = 1 << 16
 
@@ -52,8 +67,13 @@ def _line_chunks(p: Path, chunk_bytes: int) -> Iterator[tuple[np.ndarray, int, i
     line = 1
     with fh:
         ch = _Chunker(fh, chunk_bytes)
+        first = True
         while True:
             end = ch.next()
+            if first and end > 0 and ch.buf[:3].tobytes() == _BOM:
+                ch.consume(3)  # a UTF-8 byte-order mark is not part of the first name
+                end = ch.next()
+            first = False
             if end < 0:
                 raise InputError(
                     f"{p}: line {line}: a line longer than {MAX_LINE_BYTES} bytes; "
@@ -78,7 +98,7 @@ class _Tokens:
 
 
 def _iter_tokens(
-    p: Path, split: bool, chunk_bytes: int
+    p: Path, split: bool, chunk_bytes: int, sep: int = -1
 ) -> Iterator[tuple[np.ndarray, np.ndarray, int]]:
     """Yield (names as an S array, tokens per line, first line number) per chunk."""
     tk = _Tokens(chunk_bytes)
@@ -87,7 +107,7 @@ def _iter_tokens(
         line = first
         while pos < end:
             st = tk.status
-            kp.split_tokens(buf, pos, end, split, tk.start, tk.len, tk.ntok, st)
+            kp.split_tokens(buf, pos, end, split, tk.start, tk.len, tk.ntok, st, sep)
             if st[kp.ST_CODE] != kp.ERR_OK:
                 bad = line + int(st[kp.ST_ERR_LINE])
                 raise InputError(
@@ -131,9 +151,17 @@ class TargetSource:
     _integers: bool = field(default=False, repr=False)
     _array: Any = field(default=None, repr=False)
     _chunk_bytes: int = field(default=CHUNK_BYTES, repr=False)
+    _sep: int = field(default=-1, repr=False)
+    _trailing_blank: int = field(default=0, repr=False)
 
     def check_rows(self, n_rows: int) -> None:
-        """Raise InputError unless the file has one target per matrix row."""
+        """Raise InputError unless the file has one target per matrix row.
+
+        Blank lines at the end of a tags file beyond the matrix's rows are
+        not rows (trailing blank lines of a labels file are never counted).
+        """
+        if self.kind == "tags" and n_rows <= self.n_rows <= n_rows + self._trailing_blank:
+            self.n_rows = n_rows
         if self.n_rows != n_rows:
             unit = "lines" if self._array is None else "rows"
             raise InputError(
@@ -151,15 +179,25 @@ class TargetSource:
         if self.kind == "values":
             self._feed_values(writer)
         elif self.kind == "classes":
+            fed = 0
             for names, _ntok, _line in _iter_tokens(self.path, False, self._chunk_bytes):
-                writer.append_targets(classes=self._ids(names).astype(np.int32))
+                names = names[: max(0, self.n_rows - fed)]  # trailing blank lines: not rows
+                fed += names.shape[0]
+                if names.shape[0]:
+                    writer.append_targets(classes=self._ids(names).astype(np.int32))
         else:
             self._feed_tags(writer)
 
     def _feed_tags(self, writer: Any) -> None:
         k = max(1, self.n_outputs)
-        for names, ntok, _line in _iter_tokens(self.path, True, self._chunk_bytes):
+        fed = 0
+        for names, ntok, _line in _iter_tokens(self.path, True, self._chunk_bytes, self._sep):
+            ntok = ntok[: max(0, self.n_rows - fed)]  # trailing blank lines beyond the rows
+            names = names[: int(ntok.sum())]
             n_lines = ntok.shape[0]
+            fed += n_lines
+            if n_lines == 0:
+                continue
             row = np.repeat(np.arange(n_lines, dtype=np.int64), ntok)
             key = np.unique(row * k + self._ids(names))  # sorted ids, repeats dropped
             counts = np.bincount(key // k, minlength=n_lines)
@@ -177,28 +215,60 @@ class TargetSource:
             if bad.any():
                 r, c = (int(v[0]) for v in np.nonzero(bad))
                 raise InputError(
-                    f"{self.path}: row {a + r}, column {c}: target value "
+                    f"{self.path}: row {a + r + 1}, column {c + 1}: target value "
                     f"{float(piece[r, c])!r} is not finite (as float32); fix the value"
                 )
             writer.append_targets(values=piece.astype(np.float32))
 
 
-def _scan_names(p: Path, split: bool, chunk_bytes: int) -> tuple[set[bytes], int]:
-    """First pass: the distinct names and the number of lines."""
+@dataclass
+class _Scan:
+    names: set[bytes]
+    lines: int  # without trailing blank lines (labels) / with them (tags)
+    trailing_blank: int
+    spaced: bytes | None  # a tag with white space inside (the first seen)
+    spaced_line: int
+
+
+def _scan_names(p: Path, split: bool, chunk_bytes: int, sep: int = -1) -> _Scan:
+    """First pass: the distinct names, the number of lines, blank lines at the end."""
     names: set[bytes] = set()
     lines = 0
-    for toks, ntok, first in _iter_tokens(p, split, chunk_bytes):
-        if not split:
-            empty = toks == b""
-            if empty.any():
-                bad = first + int(np.flatnonzero(empty)[0])
-                raise InputError(
-                    f"{p}: line {bad}: empty label line; give one label per row"
-                )
+    blank_run = 0  # blank lines since the last non-blank one
+    first_blank = 0  # the line number of the first of them
+    spaced, spaced_line = None, 0
+    for toks, ntok, first in _iter_tokens(p, split, chunk_bytes, sep):
+        blank = (toks == b"") if not split else (ntok == 0)
+        nonblank = np.flatnonzero(~blank)
+        if not split and nonblank.size and blank_run:
+            raise InputError(f"{p}: line {first_blank}: blank line inside the labels; give "
+                             "one label per row (blank lines may only end the file)")
+        if not split and nonblank.size:
+            gaps = np.flatnonzero(blank[: int(nonblank[-1])])
+            if gaps.size:
+                raise InputError(f"{p}: line {first + int(gaps[0])}: blank line inside the "
+                                 "labels; give one label per row (blank lines may only end "
+                                 "the file)")
+        n = int(blank.shape[0])
+        if nonblank.size:
+            tail = n - 1 - int(nonblank[-1])
+            blank_run, first_blank = tail, first + int(nonblank[-1]) + 1
+        else:
+            if blank_run == 0:
+                first_blank = first
+            blank_run += n
+        if split and spaced is None and toks.size:
+            inside = (np.char.find(toks, b" ") >= 0) | (np.char.find(toks, b"\t") >= 0)
+            if inside.any():
+                j = int(np.flatnonzero(inside)[0])
+                spaced = bytes(toks[j])
+                spaced_line = first + int(np.searchsorted(np.cumsum(ntok), j, side="right"))
         names.update(np.unique(toks).tolist())
-        lines += ntok.shape[0]
+        lines += n
     names.discard(b"")
-    return names, lines
+    if not split:
+        lines -= blank_run
+    return _Scan(names, lines, blank_run, spaced, spaced_line)
 
 
 def _name_table(p: Path, names: set[bytes], what: str) -> tuple[bool, np.ndarray, list[str]]:
@@ -216,7 +286,14 @@ def _name_table(p: Path, names: set[bytes], what: str) -> tuple[bool, np.ndarray
     return False, table, out
 
 
-def _open_npy(p: Path, what: str) -> np.ndarray:
+def _open_npy(p: Path, what: str, other: str) -> np.ndarray:
+    with open(p, "rb") as fh:
+        magic = fh.read(6)
+    if magic != b"\x93NUMPY":  # numpy's .npy magic string (numpy.lib.format)
+        looks = "a text file" if magic and all(32 <= c < 127 or c in (9, 10, 13)
+                                               for c in magic) else "not a .npy file"
+        raise InputError(f"{p}: is {looks}, not a .npy array; save the {what} with "
+                         f"numpy.save, or {other}")
     try:
         arr = np.load(p, mmap_mode="r", allow_pickle=False)
     except ValueError as exc:
@@ -237,9 +314,18 @@ def open_targets(
     labels: str | os.PathLike | None = None,
     values: str | os.PathLike | None = None,
     tags: str | os.PathLike | None = None,
+    tag_sep: str | None = None,
     chunk_bytes: int = CHUNK_BYTES,
 ) -> TargetSource | None:
-    """Check the one given target file and return it ready to feed, or None."""
+    """Check the one given target file and return it ready to feed, or None.
+
+    ``tag_sep`` names the tags separator (:data:`TAG_SEPARATORS`); None is
+    the default (:data:`DEFAULT_TAG_SEP`) with the ambiguity check: a tag
+    with white space inside is then refused.
+    """
+    if tag_sep is not None and tag_sep not in TAG_SEPARATORS:
+        raise InputError(f"--tag-sep {tag_sep!r}: unknown; use one of "
+                         f"{', '.join(TAG_SEPARATORS)}")
     given = [(k, v) for k, v in (("labels", labels), ("values", values), ("tags", tags)) if v]
     if not given:
         return None
@@ -251,20 +337,29 @@ def open_targets(
     what, path = given[0]
     p = check_readable(path, f"{what} file")
     if what == "values":
-        arr = _open_npy(p, "target values")
+        arr = _open_npy(p, "target values", "give a text file of class labels with --labels")
         if arr.ndim not in (1, 2):
             raise InputError(f"{p}: values must be a (n, k) or (n,) array, got shape {arr.shape}")
         k = 1 if arr.ndim == 1 else int(arr.shape[1])
         return TargetSource(p, "values", int(arr.shape[0]), k, None, _array=arr)
     split = what == "tags"
-    names, lines = _scan_names(p, split, chunk_bytes)
-    if not names and not split:
+    sep = TAG_SEPARATORS[tag_sep or DEFAULT_TAG_SEP] if split else -1
+    scan = _scan_names(p, split, chunk_bytes, sep)
+    if not scan.names and not split:
         raise InputError(f"{p}: line 1: empty labels file; give one label per row")
-    integers, table, out_names = _name_table(p, names, "class" if not split else "tag")
+    if split and tag_sep is None and scan.spaced is not None:
+        shown = scan.spaced.decode("utf-8", "replace")
+        raise InputError(
+            f"{p}: line {scan.spaced_line}: the tag {shown!r} contains white space and the "
+            f"separator was not given; pass --tag-sep comma to keep it one tag, or --tag-sep "
+            "space to split it"
+        )
+    integers, table, out_names = _name_table(p, scan.names, "class" if not split else "tag")
     kind = "tags" if split else "classes"
     return TargetSource(
-        p, kind, lines, len(out_names), out_names,
-        _sorted=table, _integers=integers, _chunk_bytes=chunk_bytes,
+        p, kind, scan.lines, len(out_names), out_names,
+        _sorted=table, _integers=integers, _chunk_bytes=chunk_bytes, _sep=sep,
+        _trailing_blank=scan.trailing_blank if split else 0,
     )  # fmt: skip
 
 
@@ -362,7 +457,7 @@ def open_weights(
         return None
     p = check_readable(path, "weights file")
     if p.suffix.lower() == ".npy":
-        arr = _open_npy(p, "weights")
+        arr = _open_npy(p, "weights", "give one weight per line in a file not named .npy")
         if arr.ndim != 1:
             raise InputError(f"{p}: weights must be a 1-D array, got shape {arr.shape}")
         return WeightSource(p, arr, chunk_bytes)

@@ -209,8 +209,8 @@ def resolve_class_weights(class_weight: Any, src: Any, *, backend: str = "serial
         raise InputError(f"{where}: {cw.size} class weights for {k} classes; give one per class")
     bad = np.flatnonzero(~np.isfinite(cw) | (cw < 0))
     if bad.size:
-        raise InputError(f"{where}: entry {int(bad[0])} is {cw[bad[0]]!r}; class weights must "
-                         "be finite and >= 0")
+        raise InputError(f"{where}: entry {int(bad[0]) + 1} is {float(cw[bad[0]])}; class "
+                         "weights must be finite and >= 0")
     if not np.any(cw > 0):
         raise InputError(f"{where}: every class weight is 0; give some class a positive weight")
     return cw

@@ -137,7 +137,8 @@ def _check_local_indptr(ip: np.ndarray, nnz: int, what: str, where: str) -> None
     steps = np.diff(ip)
     if steps.size and steps.min() < 0:
         bad = int(np.flatnonzero(steps < 0)[0])
-        raise InputError(f"{where}: {what} decreases at local row {bad}; row pointers must grow")
+        raise InputError(f"{where}: {what} decreases at local row {bad + 1}; row pointers must "
+                         "grow")
     if int(ip[-1]) != nnz:
         raise InputError(
             f"{where}: {what} ends at {int(ip[-1])} but {nnz} entries were given; "
@@ -159,7 +160,7 @@ def _check_sorted_rows(
         pos = int(np.flatnonzero(~ok)[0]) + 1
         row = int(np.searchsorted(ip, pos, side="right")) - 1 + first_row
         raise InputError(
-            f"{where}: row {row}: {what} {int(idx[pos - 1])} then {int(idx[pos])} are not "
+            f"{where}: row {row + 1}: {what} {int(idx[pos - 1])} then {int(idx[pos])} are not "
             "strictly increasing; sort each row and sum duplicates before storing"
         )
 
@@ -322,8 +323,9 @@ class StoreWriter:
                 pos = int(np.flatnonzero(bad)[0])
                 row = int(np.searchsorted(ip, pos, side="right")) - 1 + first
                 raise InputError(
-                    f"{self._where}: row {row}: column id {int(idx[pos])} is outside "
-                    f"0..{self.n_cols - 1}; fix the id or declare more columns"
+                    f"{self._where}: row {row + 1}: column id {int(idx[pos])} is outside "
+                    f"0..{self.n_cols - 1} (column {int(idx[pos]) + 1} of {self.n_cols}); fix "
+                    "the id or declare more columns"
                 )
 
     def _finite_float32(
@@ -340,8 +342,8 @@ class StoreWriter:
             pos = int(np.flatnonzero(~finite)[0])
             row = int(np.searchsorted(ip, pos, side="right")) - 1 + first
             raise InputError(
-                f"{where}: row {row}, column {int(idx[pos])}: value {float(val[pos])!r} is not "
-                "finite as float32; remove it or fix the source"
+                f"{where}: row {row + 1}, column {int(idx[pos]) + 1}: value {float(val[pos])} is "
+                "not finite as float32; remove it or fix the source"
             )
         return val32
 
@@ -369,7 +371,8 @@ class StoreWriter:
             row = pos if ip is None else int(np.searchsorted(ip, pos, side="right")) - 1
             hint = "ids must be >= 0" if limit is None else f"ids must be in 0..{limit - 1}"
             raise InputError(
-                f"{self._where}: row {row + first_row}: {what} {int(lab[pos])} is invalid; {hint}"
+                f"{self._where}: row {row + first_row + 1}: {what} {int(lab[pos])} is invalid; "
+                f"{hint}"
             )
         self._max_label = max(self._max_label, int(lab.max()))
 
@@ -451,8 +454,8 @@ class StoreWriter:
         if not finite.all():
             r, c = (int(v[0]) for v in np.nonzero(~finite))
             raise InputError(
-                f"{self._where}: row {app.rows + r}, output {c}: target value {float(val[r, c])!r} "
-                "is not finite as float32; fix the target"
+                f"{self._where}: row {app.rows + r + 1}, output {c + 1}: target value "
+                f"{float(val[r, c])} is not finite as float32; fix the target"
             )
         app.append(val32)
 
@@ -485,7 +488,7 @@ class StoreWriter:
         if bad.any():
             pos = int(np.flatnonzero(bad)[0])
             raise InputError(
-                f"{self._where}: row {app.rows + pos}: weight {float(w[pos])!r} is invalid; "
+                f"{self._where}: row {app.rows + pos + 1}: weight {float(w[pos])} is invalid; "
                 "weights must be finite and >= 0"
             )
         app.append(w32)

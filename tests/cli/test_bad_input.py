@@ -185,7 +185,7 @@ def test_empty_label_line(tmp_path, capsys):
     _good(tmp_path)
     (tmp_path / "y.txt").write_text("a\n\nb\n")
     msg = run_ingest(tmp_path, capsys, None, "--labels", str(tmp_path / "y.txt"))
-    assert "y.txt: line 2: empty label line" in msg
+    assert "y.txt: line 2: blank line inside the labels" in msg
 
 
 def test_negative_weight(tmp_path, capsys):
@@ -211,7 +211,7 @@ def test_nan_target_value(tmp_path, capsys):
     v[2, 1] = np.nan
     np.save(tmp_path / "v.npy", v)
     msg = run_ingest(tmp_path, capsys, None, "--values", str(tmp_path / "v.npy"))
-    assert "v.npy: row 2, column 1: target value nan is not finite" in msg
+    assert "v.npy: row 3, column 2: target value nan is not finite" in msg
 
 
 def test_pickled_npz_refused(tmp_path, capsys):

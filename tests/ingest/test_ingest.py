@@ -263,7 +263,7 @@ def test_integer_labels_are_ids(tmp_path):
 
 def test_tags_and_values_and_npy_weights(tmp_path):
     scipy.io.mmwrite(tmp_path / "a.mtx", sp.random(4, 3, density=0.5, random_state=2))
-    (tmp_path / "a.tags").write_text("red, blue\n\nblue green blue\nred\n")
+    (tmp_path / "a.tags").write_text("red, blue\n\nblue,green, blue\nred\n")
     ingest(tmp_path / "a.mtx", tmp_path / "t.zarr", tags=tmp_path / "a.tags")
     _, T, _, kind, names = read_all(tmp_path / "t.zarr")
     assert kind == "tags" and names == ["blue", "green", "red"]

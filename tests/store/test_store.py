@@ -398,13 +398,13 @@ class StoreContract:
         # counted from 1, as Matrix Market does
         with pytest.raises(InputError, match=r"row 2, column 2: value inf is not finite"):
             write_store(path, bad_value, backend=be)
-        with pytest.raises(InputError, match=r"row 0: column id 5 is outside 0..3"):
+        with pytest.raises(InputError, match=r"row 1: column id 5 is outside 0..3 \(column 6 of 4\)"):
             with create_store(path, n_cols=4, backend=be) as w:
                 w.append(np.array([0, 1]), np.array([5]), np.array([1.0]))
-        with pytest.raises(InputError, match=r"row 1: column ids 2 then 2 are not strictly"):
+        with pytest.raises(InputError, match=r"row 2: column ids 2 then 2 are not strictly"):
             with create_store(path, n_cols=4, backend=be) as w:
                 w.append(np.array([0, 1, 3]), np.array([0, 2, 2]), np.ones(3))
-        with pytest.raises(InputError, match=r"row 2: weight -1.0 is invalid"):
+        with pytest.raises(InputError, match=r"row 3: weight -1.0 is invalid"):
             write_store_with_weights(path, be, np.array([1.0, 0.0, -1.0]))
         with pytest.raises(InputError, match=r"row 2 has class -1 outside"):
             write_store(path, sp.identity(2, format="csr"), np.array([0, -1]), backend=be)
