@@ -54,7 +54,14 @@ from ranktide.errors import CheckpointError, ConfigError
 from ranktide.jsondata import json_data
 from ranktide.kernels.svd import svd
 from ranktide.losses import get_loss, intercept_from_sums
-from ranktide.passes.budget import Plan, cgroup_limit, plan_blocks, process_floor
+from ranktide.passes.budget import (
+    FLOOR_QUANTUM,
+    Plan,
+    cgroup_limit,
+    plan_blocks,
+    process_floor,
+    release_freed_memory,
+)
 from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
 from ranktide.passes.kernel_path import CHOOSER
@@ -572,6 +579,12 @@ class GreedySolver:
         self._pass_scratch: str | None = None  # this iteration's files, removed after it
         self._pass_fn = gradient_pass if pass_fn is None else pass_fn
         self._deadline: float | None = None  # perf_counter time, set by run()
+        # the budget binds (given, or a cgroup limit): the kernels load before the floor
+        # is measured, freed memory goes back before every pass, and the floor is
+        # measured again after the first pass (readers, thread pools and caches exist
+        # by then); a quarter of an unconfined machine's RAM leaves room
+        self._binding = pass_fn is None and (config.memory is not None
+                                             or cgroup_limit() is not None)
         self._mode = "none"
         self.state = state if state is not None else self.initial_state()
         self._check_state(self.state)
@@ -609,8 +622,7 @@ class GreedySolver:
                                               dense=cfg.dense_gradient).dense_gradient)
             # the kernels load before the floor is measured when the budget binds (given,
             # or a cgroup limit); a quarter of an unconfined machine's RAM leaves room
-            if self._pass_fn is gradient_pass and (cfg.memory is not None
-                                                   or cgroup_limit() is not None):
+            if self._binding:
                 self._warm_kernels()
             st.memory_floor = int(process_floor())
         self.plan = self._plan(rank=st.rank, omega=cfg.power_size,
@@ -655,6 +667,20 @@ class GreedySolver:
         N0[0] = V[:, 0]
         refine(A, [p_.targets for p_ in proj], [p_.weights for p_ in proj], cfg.loss, 0.1, N0,
                np.zeros(k), tol=1e-3, max_iter=3, class_weights=cfg.class_weights)
+
+    def _floor_after_first_pass(self, rec: dict) -> None:
+        """Measure the floor again once a pass has run (the store's readers, thread pools
+        and caches now exist): the resident set after freed memory went back, less the
+        state's arrays. Kept in the state before any checkpoint, so a resume plans alike.
+        Measured: 8-16 MiB above the floor taken before the first pass."""
+        st = self.state
+        release_freed_memory()
+        held = sum(int(np.asarray(getattr(st, n)).nbytes) for n in _ARRAYS)
+        floor = process_floor() - held
+        floor -= floor % FLOOR_QUANTUM
+        if floor > int(st.memory_floor or 0):
+            st.memory_floor = int(floor)
+        rec["memory_floor"] = int(st.memory_floor)
 
     def _plan(self, *, rank: int, omega: int, psi: int, keep: bool, dense: bool | None,
               extra: int = 0) -> Plan:
@@ -742,6 +768,8 @@ class GreedySolver:
 
     def _run_pass(self):
         cfg, st = self.config, self.state
+        if self._binding:
+            release_freed_memory()
         rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
         p, pp = cfg.power_size, cfg.expand_size
         if st.phase == "lam_max":  # wider blocks at W = 0 (see lam_max_width)
@@ -918,7 +946,10 @@ class GreedySolver:
         t0 = time.perf_counter()
         try:
             with _blas_one_thread():
-                return self._step()
+                rec = self._step()
+            if self._binding and st.passes == 1:
+                self._floor_after_first_pass(rec)
+            return rec
         except StopRequested:
             for name, value in before.items():
                 setattr(st, name, value)

@@ -6,8 +6,11 @@ loss b0 is the mean target and G(0, b0) = -X^T (Y - mean Y) / n (DESIGN section 
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import scipy.sparse as sp
+from ranktide.passes.gradient import gradient_pass
 from ranktide.solver.greedy import GreedySolver, SolverConfig
 
 
@@ -70,3 +73,32 @@ def test_stopped_at_w0_says_so_and_reports_the_objective():
     Yd = Y.astype(np.float64)
     f0 = 0.5 * np.mean(np.sum((Yd - Yd.mean(axis=0)) ** 2, axis=1))
     assert abs(res.objective - f0) <= 1e-6 * f0
+
+
+def test_rank0_passes_keep_no_projections_and_the_deadline_cuts_a_pass(monkeypatch):
+    monkeypatch.setattr("ranktide.solver.greedy.process_floor", lambda: 0)  # tiny budgets
+    X, Y, _ = _clustered(4, n=600)
+    seen = []
+
+    def pass_fn(src, req, **kw):
+        seen.append((req.rank, req.keep_projections, req.projections_dir))
+        return gradient_pass(src, req, **kw)
+
+    cfg = SolverConfig(loss="squared", lam_frac=0.5, dense_gradient=False, max_passes=4,
+                       memory="500KB")  # small: the fit passes write scratch projections
+    res = GreedySolver((X, Y), cfg, pass_fn=pass_fn).run()
+    # the intercept's pass and the next cannot be followed by a refinement: no projections
+    assert [s[1] for s in seen[:2]] == [False, False] and seen[0][2] is seen[1][2] is None
+    assert seen[2][1] and any(s[2] is not None for s in seen[2:])
+    assert res.rank >= 1
+
+    def slow(src, req, **kw):
+        time.sleep(0.3)
+        return gradient_pass(src, req, **kw)
+
+    cfg = SolverConfig(loss="squared", lam_frac=0.5, dense_gradient=False, max_seconds=0.2,
+                       block_rows=50)
+    solver = GreedySolver((X, Y), cfg, pass_fn=slow)
+    res = solver.run()
+    # the deadline passed inside the first pass: abandoned at a block boundary, state kept
+    assert res.status == "max_seconds" and solver.state.passes == 0
