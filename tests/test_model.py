@@ -222,3 +222,91 @@ def test_scores_refuse_wrong_width():
     m = _random_model("softmax")
     with pytest.raises(InputError, match="has 7 columns but the model was fitted on 25"):
         m.scores(sp.csr_matrix((3, 7)))
+
+
+# ---------------------------------------------------------------- compact and float32 factors
+
+
+def _sparse_rows_model(d: int = 400, present: int = 60, seed: int = 3) -> Model:
+    """A model whose U is zero outside ``present`` rows (features absent from training)."""
+    rng = np.random.default_rng(seed)
+    m = _random_model("softmax", d=present, seed=seed)
+    rows = np.sort(rng.choice(d, present, replace=False))
+    U = np.zeros((d, m.rank))
+    U[rows] = m.U
+    return Model(U=U, s=m.s, V=m.V, b=m.b, loss="softmax", names=m.names, meta=m.meta)
+
+
+def test_only_nonzero_rows_of_U_are_stored(tmp_path):
+    m = _sparse_rows_model()
+    save_model(tmp_path / "m", m)
+    with np.load(tmp_path / "m" / "factors.npz", allow_pickle=False) as z:
+        rows, U_stored = z["U_rows"], z["U"]
+    # reference: numpy's own nonzero-row test on the dense U
+    np.testing.assert_array_equal(rows, np.flatnonzero(np.abs(m.U).sum(axis=1) > 0))
+    assert U_stored.shape == (60, m.rank)
+    doc = json.loads((tmp_path / "m" / "model.json").read_text())
+    assert doc["format_version"] == 2 and doc["d"] == 400
+    assert doc["factors"] == {"dtype": "float64", "stored_rows": 60, "zero_rows_left_out": 340}
+    back = load_model(tmp_path / "m")
+    np.testing.assert_array_equal(back.U, m.U)  # lossless in float64
+    X = sp.random(30, 400, density=0.2, random_state=4, format="csr")
+    np.testing.assert_array_equal(back.scores(X), m.scores(X))
+    assert "factors" not in back.meta  # recomputed on every save, not carried over
+
+
+def test_version_1_directory_still_loads(tmp_path):
+    # a directory as format 1 wrote it: the whole U in float64, no U_rows, no "factors"
+    m = _random_model("multilabel")
+    d = tmp_path / "old"
+    save_model(d, m)
+    doc = json.loads((d / "model.json").read_text())
+    doc["format_version"] = 1
+    del doc["factors"]
+    (d / "model.json").write_text(json.dumps(doc))
+    save_npz(d / "factors.npz", {"U": m.U, "s": m.s, "V": m.V, "b": m.b})
+    back = load_model(d)
+    for name in ("U", "s", "V", "b"):
+        np.testing.assert_array_equal(getattr(back, name), getattr(m, name))
+
+
+def test_float32_factors_agree_with_float64_on_a_real_model(tmp_path):
+    # A real model: scikit-learn's LogisticRegression on its bundled digits data set,
+    # factored by SVD (Model.from_dense); the float32 file must give the same top-1 class
+    # on every row and probabilities within 1e-4 of the float64 model (tolerance: common
+    # practice, no source; float32 rounds each factor entry by at most 2**-24 relative).
+    from sklearn.datasets import load_digits
+    from sklearn.linear_model import LogisticRegression
+
+    X, y = load_digits(return_X_y=True)
+    lr = LogisticRegression(C=1.0, max_iter=300).fit(X, y)
+    m = Model.from_dense(lr.coef_.T, lr.intercept_, loss="softmax")
+    np.testing.assert_allclose(m.predict_proba(X), lr.predict_proba(X), atol=1e-8)
+    save_model(tmp_path / "f64", m)
+    save_model(tmp_path / "f32", m, factor_dtype="float32")
+    with np.load(tmp_path / "f32" / "factors.npz", allow_pickle=False) as z:
+        assert z["U"].dtype == np.float32 and z["V"].dtype == np.float32
+        assert z["s"].dtype == np.float64 and z["b"].dtype == np.float64
+    p64 = load_model(tmp_path / "f64").predict_proba(X)
+    p32 = load_model(tmp_path / "f32").predict_proba(X)
+    np.testing.assert_array_equal(p32.argmax(axis=1), p64.argmax(axis=1))
+    assert np.max(np.abs(p32 - p64)) <= 1e-4
+    size = {t: (tmp_path / t / "factors.npz").stat().st_size for t in ("f32", "f64")}
+    assert size["f32"] < 0.7 * size["f64"]  # U and V halve; s, b and the zip headers stay
+    with pytest.raises(ConfigError, match="factor_dtype 'float16'"):
+        save_model(tmp_path / "f16", m, factor_dtype="float16")
+
+
+def test_bad_row_ids_refused(tmp_path):
+    m = _sparse_rows_model()
+    d = tmp_path / "m"
+    save_model(d, m)
+    with np.load(d / "factors.npz", allow_pickle=False) as z:
+        arrays = {key: z[key] for key in z.files}
+    for rows, msg in ((arrays["U_rows"][::-1], "increasing ids in 0..399"),
+                      (arrays["U_rows"] + 400, "increasing ids in 0..399"),
+                      (arrays["U_rows"][:-1], "59 row ids for 60 rows"),
+                      (arrays["U_rows"].astype(np.float64), "1-D integer array")):
+        save_npz(d / "factors.npz", dict(arrays, U_rows=rows))
+        with pytest.raises(ModelError, match=msg):
+            load_model(d)
