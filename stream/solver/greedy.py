@@ -69,7 +69,12 @@ from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopRequested
 from ranktide.solver.penalty import check_lam
 from ranktide.solver.refine import _blas_one_thread, refine
-from ranktide.solver.refine_stream import refine_streamed
+from ranktide.solver.refinement import (
+    RefineBar,
+    RefineSettings,
+    refine_projections,
+    sample_rows,
+)
 from ranktide.solver.subspace import (
     KrylovUnion,
     fill,
@@ -186,6 +191,14 @@ class SolverConfig:
         rank 19 at 0.1 lam_max): all rotations reached a relative gap of 1e-3 in 39
         passes and 1e-4 in 51, a cap of ``p'`` = 6 needed 51 passes for 1e-3 and had
         not reached 1e-4 after 67; with many atoms a cap starves their rotations.
+    refine_sample_rows : int, optional
+        Rows of the refinement's random sample (the gradient-corrected
+        subsampled refinement, :mod:`ranktide.solver.refine_sample`): None
+        (default) chooses from the shapes and the budget
+        (:func:`ranktide.solver.refinement.sample_rows`: up to 20000 rows when the
+        data has at least four times as many, softmax and multilabel), 0 always
+        refines exactly, ``m > 0`` samples ``m`` rows whenever the data has more
+        than ``2 m``. The sample grows when its steps stop carrying over.
     """
 
     loss: str
@@ -211,6 +224,7 @@ class SolverConfig:
     inner_max_iter: int = 400
     momentum: int = 3
     rotation_size: int | None = None
+    refine_sample_rows: int | None = None
 
     def __post_init__(self) -> None:
         get_loss(self.loss)
@@ -226,6 +240,9 @@ class SolverConfig:
         if int(self.lam_max_passes) < 2:
             raise ConfigError(f"solver: lam_max_passes = {self.lam_max_passes!r}; it must be >= 2 "
                               "(the intercept's pass and one at the intercept)")
+        if self.refine_sample_rows is not None and int(self.refine_sample_rows) < 0:
+            raise ConfigError(f"solver: refine_sample_rows = {self.refine_sample_rows!r}; it "
+                              "must be >= 0 (0: exact refinement)")
         if int(self.certificate_passes) < 0:
             raise ConfigError("solver: certificate_passes must be >= 0")
         if self.max_seconds is not None and not self.max_seconds > 0:
@@ -260,7 +277,7 @@ _OPTIONAL = {1: ("U_prev", "K_R", "K_GR", "K_L", "K_GtL"), 2: ("K_R", "K_GR", "K
 _SCALARS = ("lam", "lam_max", "phase", "passes", "step_passes", "outer_iterations",
             "seconds", "sigma1", "sigma1_prev", "path_index", "intercept_ready",
             "lam_max_settle", "lam_max_settled", "U_prev_cols", "cert_passes", "last_rel_gap",
-            "objective", "status", "memory_floor", "gap", "rel_gap")
+            "objective", "status", "refine_sample_rows", "memory_floor", "gap", "rel_gap")
 
 
 @dataclass
@@ -325,6 +342,8 @@ class SolverState:
         the first pass and kept so a resumed run plans the same blocks.
     status : str
         ``"running"`` or the final status.
+    refine_sample_rows : int
+        The size the refinement's sample has grown to (0: not grown).
     """
 
     U: np.ndarray
@@ -357,6 +376,7 @@ class SolverState:
     last_rel_gap: float | None = None
     objective: float | None = None
     status: str = "running"
+    refine_sample_rows: int = 0
     memory_floor: int | None = None
     gap: float | None = None
     rel_gap: float | None = None
@@ -571,6 +591,10 @@ class GreedySolver:
         self.n, self.d = (int(x) for x in self.source.shape)
         self.k = int(self.source.n_outputs)
         self.progress = progress
+        # called with every refinement step's ranktide.solver.apg.ApgProgress (beside the
+        # progress bar drawn on a terminal when ``progress``); see state_before_step
+        self.refine_progress: Callable[[Any], Any] | None = None
+        self._before: dict | None = None
         self.stop = stop
         # where the pass writes projections that the budget cannot hold (a fresh
         # temporary directory by default, removed by close())
@@ -880,16 +904,7 @@ class GreedySolver:
         N0[:r_old] = req.s[:, None] * req.V.T
         t0 = time.perf_counter()
         mode = self._refine_mode(q)
-        if mode == "memory":
-            A = np.concatenate([p.XQ for p in proj], axis=0)
-            targets = [p.targets for p in proj]
-            weights = [p.weights for p in proj]
-            out = refine(A, targets, weights, cfg.loss, st.lam, N0, req.b,
-                         tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
-                         class_weights=cfg.class_weights, should_stop=self._should_stop,
-                         stall=_INNER_STALL)
-        else:
-            out = self._refine_streamed(proj, mode, N0, req.b, rel_gap)
+        out, sample_info = self._run_refinement(req, res, proj, mode, N0, rel_gap)
         secs = time.perf_counter() - t0
         depth = max(0, int(cfg.momentum))
         keep = st.momentum_factors()[: depth - 1] if depth > 1 else []
@@ -913,23 +928,56 @@ class GreedySolver:
                 "refine_converged": out.converged, "refine_gap": out.gap_estimate,
                 "atoms_added": int(np.sum(new)),
                 "atoms_sv": [float(x) for x in out.s[new]],
-                "objective_after": out.objective}
+                "objective_after": out.objective, **sample_info}
 
-    def _refine_streamed(self, proj, mode: str, N0: np.ndarray, b0: np.ndarray,
-                         rel_gap: float):
-        cfg = self.config
-        if mode == "blocks":
-            blocks: Any = MemoryProjections([(p.XQ, p.targets, p.weights) for p in proj])
+    def _run_refinement(self, req, res, proj, mode: str, N0: np.ndarray, rel_gap: float):
+        """Exact or sampled refinement (:mod:`ranktide.solver.refinement`) on the projections."""
+        cfg, st = self.config, self.state
+        q = N0.shape[0]
+        if mode == "scratch":
+            blocks: Any = ScratchProjections.from_files([p.path for p in proj], self.k)
         else:
-            blocks = ScratchProjections.from_files([p.path for p in proj], self.k)
+            blocks = MemoryProjections([(p.XQ, p.targets, p.weights) for p in proj])
+        rows = sample_rows(n=self.n, q=q, k=self.k, loss=cfg.loss, budget=self._budget,
+                           configured=cfg.refine_sample_rows, grown=st.refine_sample_rows)
+        bar = RefineBar(self.progress, st.passes)
+        hook = self.refine_progress
+
+        def progress(p: Any) -> None:
+            bar.update(p)
+            if hook is not None:
+                hook(p)
+
+        settings = RefineSettings(
+            loss=cfg.loss, lam=st.lam, tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
+            stall=_INNER_STALL, class_weights=cfg.class_weights, should_stop=self._should_stop,
+            progress=progress)
         try:
-            return refine_streamed(blocks, cfg.loss, self.state.lam, N0, b0,
-                                   tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
-                                   class_weights=cfg.class_weights, should_stop=self._should_stop,
-                                   stall=_INNER_STALL)
+            out, info = refine_projections(
+                blocks, mode, N0, req.b, settings, rows=rows, n=self.n, rng=self._rng,
+                objective=float(st.objective), full_grad_N=np.hstack([res.Gt_U, res.Gt_Psi]).T,
+                full_grad_b=res.grad_b)
         finally:
+            bar.close()
             if mode == "scratch":
                 blocks.remove()
+        if rows:  # the sample's draws move the generator: keep its position for a resume
+            st.rng_state = self._rng.bit_generator.state
+            st.refine_sample_rows = int(info["refine_sample_next"])
+        return out, info
+
+    def state_before_step(self) -> SolverState | None:
+        """The state before the outer iteration in progress (None between iterations).
+
+        A checkpoint of it resumes exactly: the resumed run redoes that
+        iteration's pass and refinement. A callback run during a long
+        refinement (``refine_progress``) may write it to keep a checkpoint
+        schedule; the refinement's own iterates are not resumable (the scores
+        it keeps and the pass's projections are not in a checkpoint).
+        """
+        if self._before is None:
+            return None
+        return SolverState(**self._before)
 
     # ------------------------------------------------------------ one iteration
     def step(self) -> dict:
@@ -943,6 +991,7 @@ class GreedySolver:
         # shallow copy is the state as it was before it
         st = self.state
         before = {f.name: getattr(st, f.name) for f in fields(st)}
+        self._before = before
         t0 = time.perf_counter()
         try:
             with _blas_one_thread():
@@ -957,6 +1006,7 @@ class GreedySolver:
             self._rng = _generator(st.rng_state)
             raise
         finally:
+            self._before = None
             if self._pass_scratch is not None:
                 shutil.rmtree(self._pass_scratch, ignore_errors=True)
                 self._pass_scratch = None
