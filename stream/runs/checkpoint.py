@@ -465,3 +465,7 @@ class CheckpointSchedule:
         if self.passes is not None and self._n >= self.passes:
             return True
         return self.seconds is not None and self._clock() - self._t0 >= self.seconds
+
+    def due_by_time(self) -> bool:
+        """True when a checkpoint is due by the clock (counts no pass; for use inside one)."""
+        return self.seconds is not None and self._clock() - self._t0 >= self.seconds

@@ -472,6 +472,19 @@ class RunRecorder:
             self.checkpoint(state)
         return stopping
 
+    def during_step(self, state: Any | None) -> bool:
+        """Checkpoint ``state`` when one is due by the clock, from inside an outer iteration.
+
+        Called from a long refinement (``GreedySolver.refine_progress``) with the
+        state before the iteration in progress (``GreedySolver.state_before_step``):
+        resuming it redoes that iteration, so the resume stays exact while the
+        checkpoint schedule is kept. True when a checkpoint was written.
+        """
+        if state is None or not self.schedule.due_by_time():
+            return False
+        self.checkpoint(state)
+        return True
+
     @classmethod
     def split(
         cls, arrays: Mapping[str, np.ndarray]

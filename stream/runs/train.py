@@ -438,6 +438,8 @@ def train(
         ctx, ckpt = _checkpointing(run, solver, resume_point, checkpoint_seconds,
                                    checkpoint_passes, stop)
         hook = stop if ckpt is None else (lambda: ckpt.after_pass(solver.state))
+        if ckpt is not None:  # keep the checkpoint schedule during a long refinement
+            solver.refine_progress = lambda _p: ckpt.during_step(solver.state_before_step())
         rec = _Recorder(run, callback, on_pass, hook=hook)
         if resume_point is not None:
             rec.history = [h for h in run.read_history() if h.get("kind") == "pass"]

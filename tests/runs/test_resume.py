@@ -55,7 +55,7 @@ if sys.argv[1] == "train":  # the matrix-free path (power blocks, random refills
     import ranktide.runs.train as T
     T.train = functools.partial(T.train, dense_gradient=False)
 if kind == "refine":
-    import ranktide.solver.greedy as S
+    import ranktide.solver.refinement as S
     real_refine, calls = S.refine, [0]
 
     def refine(*a, **k):
@@ -295,7 +295,7 @@ def test_stop_inside_a_pass_or_a_refinement_restores_the_state(work, monkeypatch
     refinement, leaves the solver state as it was before that outer iteration (that is
     what is checkpointed), and resuming reaches the uninterrupted model."""
     import ranktide.passes.gradient as G
-    import ranktide.solver.greedy as S
+    import ranktide.solver.refinement as S
     from ranktide.runs.resume import resume
     from ranktide.runs.train import train
     from ranktide.signals import StopFlag
