@@ -147,6 +147,7 @@ def check_output(
     option: str = "--out",
     may_lie_inside: Iterable[str] = (),
     replace_empty_dir: bool = False,
+    exists_hint: str = "",
 ) -> Path:
     """The shared output check; run it before reading or allocating anything big.
 
@@ -166,6 +167,8 @@ def check_output(
         See :func:`check_not_overlapping`.
     replace_empty_dir : bool
         An existing empty directory counts as absent (run directories).
+    exists_hint : str
+        Added to the "already exists" message (e.g. how to continue a run).
 
     Returns
     -------
@@ -206,7 +209,8 @@ def check_output(
         if kind == "file" and o.is_dir():
             raise ConfigError(f"{option} {o}: is a directory, not a file; choose a file name")
         if not overwrite:
-            raise OutputExistsError(f"{o}: already exists; pass --overwrite to replace it")
+            raise OutputExistsError(f"{o}: already exists; pass --overwrite to replace "
+                                    f"it{exists_hint}")
     return o
 
 

@@ -53,7 +53,8 @@ def check_train_output(out: str | os.PathLike, source: Any, valid: Any, class_we
     for what, path in inputs.items():
         if path is not None:
             check_source(path, what)
-    check_output(out, inputs, overwrite=overwrite, kind="dir", replace_empty_dir=True)
+    check_output(out, inputs, overwrite=overwrite, kind="dir", replace_empty_dir=True,
+                 exists_hint=f", or continue it with ranktide resume {out}")
 
 
 def fixed_memory(src: Any, *, power_size: int, expand_size: int, backend: str = "serial",
