@@ -36,7 +36,10 @@ against its floors (issue 14):
 * ``pass``: :func:`ranktide.passes.gradient.gradient_pass` over the store
   (serial backend, profiled: seconds per phase);
 
-and prints ``pass / max(read floor, compute floor)`` (target <= 1.5). At
+and prints ``pass / max(read floor, compute floor)`` (target <= 1.5), and for
+the record the pass's CPU seconds over the compute floor's (``cpu ratio``;
+threads that busy-wait count as CPU time, the floor's BLAS threads too). Each
+figure is the best of ``--repeat`` interleaved runs. At
 rank r the request has ``p = 6`` power columns and ``p' = 2r + 6`` expansion
 columns (r rotations, 6 new atoms, r momentum directions), so ``q = 3r + 6``
 and ``m = r + 6`` (r = 24: q = 78, m = 30). Benchmark BLAS as users run it: where

@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, InputError, ModelError
+from ranktide.kernels import products
 from ranktide.losses import get_loss
 from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
@@ -164,6 +165,35 @@ def test_gradient_against_finite_differences(loss):
     fd = approx_fprime(theta0, f, 1e-7)
     np.testing.assert_allclose(res.G.ravel(), fd[: d * k], rtol=1e-4, atol=1e-6)
     np.testing.assert_allclose(res.grad_b, fd[d * k:], rtol=1e-4, atol=1e-6)
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+def test_passes_with_many_dense_chunks_per_block(loss, monkeypatch):
+    # Blocks of 97 rows in dense chunks of 8 rows (kernels.products.CHUNK_BYTES made
+    # tiny: 13 chunks per block), with and without weights: the dense numpy reference
+    # (DESIGN §2 on the whole matrix) to rounding, and the serial and threads backends
+    # bit for bit.
+    monkeypatch.setattr(products, "CHUNK_BYTES", 8 * 8 * 6)
+    assert products.dense_chunk_rows(6) == 8
+    for weighted in (False, True):
+        X, y, w = _problem(loss, n=300, seed=21, weights=weighted)
+        U, s, V, b, Om, Psi = _model(30, 6)
+        src = MemorySource(X, y, weights=w, n_outputs=6)
+        req = PassRequest(loss, U, s, V, b, Omega=Om, Psi=Psi, dense_gradient=True)
+        a = gradient_pass(src, req, block_rows=97)
+        t = gradient_pass(src, req, block_rows=97, backend="threads", n_threads=2)
+        for name in ("grad_b", "G_VO", "Gt_Psi", "Gt_U", "G"):
+            np.testing.assert_array_equal(getattr(t, name), getattr(a, name), err_msg=name)
+        assert a.loss == t.loss and a.inner == t.inner
+        f, R, Xd = _dense_f_and_R(loss, X, y, w, (U * s) @ V.T, b)
+        G = Xd.T @ R
+        tol = {"rtol": 1e-10, "atol": 1e-13}
+        np.testing.assert_allclose(a.loss, f, rtol=1e-11)
+        np.testing.assert_allclose(a.G, G, **tol)
+        np.testing.assert_allclose(a.G_VO, G @ np.hstack([V, Om]), **tol)
+        np.testing.assert_allclose(a.Gt_Psi, G.T @ Psi, **tol)
+        np.testing.assert_allclose(a.Gt_U, G.T @ U, **tol)
+        np.testing.assert_allclose(a.grad_b, R.sum(axis=0), **tol)
 
 
 def test_serial_and_threads_passes_are_bit_identical():
