@@ -341,7 +341,7 @@ def _share_kernel_threads(n_workers: int) -> None:
     the cores. Done only when the kernels (and their threading-layer guard)
     are already loaded, so the engine never picks a threading layer itself.
     """
-    guard = sys.modules.get("kernels.threads")
+    guard = sys.modules.get("ranktide.kernels.threads")
     numba = sys.modules.get("numba")
     if guard is None or numba is None or n_workers <= 1:
         return
