@@ -14,7 +14,7 @@ import math
 import os
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -29,6 +29,7 @@ from ranktide.runs.checkpoint import CheckpointSchedule
 from ranktide.runs.checks import check_train_inputs, check_train_output
 from ranktide.runs.rundir import RunDir, RunRecorder
 from ranktide.scoring.evaluate import evaluate
+from ranktide.solver.debias import debias, debias_summary, near_full_rank
 from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverResult
 from ranktide.store.memory_source import as_source
 
@@ -259,6 +260,25 @@ def _validation(model: Any, valid: Any, loss: str, block_rows: int | None) -> tu
     metrics = evaluate(model, valid, block_rows=block_rows)
     key, _ = VALIDATION_METRIC[loss]
     return metrics, float(metrics[key])
+
+
+def _refit_chosen(model: Any, src: Any, solver: GreedySolver, valid: Any, loss: str,
+                  lam: float, block_rows: int | None) -> Any:
+    """The path's chosen model after the debiasing refit (kept only when validation
+    improves; :mod:`ranktide.solver.debias`), with the refit's figures and, when the
+    model is nearly full rank, a note saying so in its metadata (model.json)."""
+    _, higher = VALIDATION_METRIC[loss]
+    res = debias(model, src, lam=lam, higher=higher,
+                 score=lambda m: _validation(m, valid, loss, block_rows)[1],
+                 class_weights=solver.config.class_weights, block_rows=block_rows,
+                 max_bytes=int(solver.plan.budget))
+    out = res.model
+    meta = dict(out.meta, debias=json_data(debias_summary(res)))
+    if near_full_rank(out.rank, out.n_features, out.n_outputs):
+        meta["low_rank_note"] = (f"rank {out.rank} of at most "
+                                 f"{min(out.n_features, out.n_outputs)}: nearly full rank, the "
+                                 "low-rank structure did not help on this data")
+    return replace(out, meta=meta)
 
 
 # ---------------------------------------------------------------- the run
@@ -688,6 +708,7 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
     if not message:
         message = (f"path of {len(points)} values; best lam {pt.lam:.6g} "
                    f"(validation {key} {pt.score:.6g})")
+    best_model = _refit_chosen(best_model, src, solver, valid, loss, pt.lam, block_rows)
     return TrainResult(model=best_model, objective=pt.objective, gap=pt.gap,
                        sigma_ratio=pt.sigma_ratio, rank=pt.rank, passes=solver.state.passes,
                        seconds=solver.state.seconds, status=status, message=message,
