@@ -383,11 +383,16 @@ def _step_train(demo: _Demo) -> None:
     demo.run_dir = run
     demo.model_dir = run / "model"
     path = [(float(p.lam), p.rank, p.passes, float(p.score)) for p in result.path]
-    for lam, rank, passes, score in path:
-        demo.say(f"    lam {lam:9.4g}  rank {rank:3d}  passes {passes:3d}  "
-                 f"validation accuracy {score:.3f}")
-    demo.say(f"  best lam {result.lam:.4g} (rank {result.rank}, {result.passes} passes in "
-             f"{result.seconds:.1f} s, status {result.status}) -> {run}")
+    m = int(TRAIN_SETTINGS[demo.size]["path"])
+    for j, (lam, rank, passes, score) in enumerate(path):
+        where = f"{j + 1}/{m}" if j < m else f"{j + 1} (+{j + 1 - m})"
+        best = "  <- chosen" if j == result.best_index else ""
+        demo.say(f"    value {where:<8} lam {lam:9.4g}  rank {rank:3d}  passes {passes:3d}  "
+                 f"validation accuracy {score:.3f}{best}")
+    chosen = result.path[result.best_index]
+    demo.say(f"  chosen lam {result.lam:.4g} (rank {result.rank}, {chosen.passes} passes in its "
+             f"step); run: {len(path)} values, {result.passes} passes in {result.seconds:.1f} s, "
+             f"{result.status} -> {run}")
     demo.record("train", run=str(run), model=str(run / "model"),
                 checkpoints=str(run / "checkpoints"), lam=float(result.lam),
                 lam_max=float(result.lam_max), rank=int(result.rank),
@@ -429,7 +434,8 @@ def _step_report(demo: _Demo) -> None:
 
 #: A short regularization path with validation and checkpoints, per size.
 TRAIN_SETTINGS: dict[str, dict[str, Any]] = {
-    "small": {"loss": "softmax", "path": 3, "path_min_frac": 0.05, "max_passes": 6,
+    "small": {"loss": "softmax", "path": 3, "path_min_frac": 0.05, "path_extend": 2,
+              "max_passes": 6,
               "tol": 2e-2, "max_seconds": 60.0, "checkpoint_passes": 2},
     "medium": {"loss": "softmax", "path": 5, "path_min_frac": 0.02, "max_passes": 20,
                "tol": 3e-3, "max_seconds": 900.0, "checkpoint_passes": 5},

@@ -3,15 +3,14 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 import warnings
 
 from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
-from ranktide.cli.train import _summary, pass_printer, summary_line
+from ranktide.cli.train import finish, pass_printer
 from ranktide.runs.checkpoint import CheckpointWarning
 from ranktide.runs.resume import resume
-from ranktide.signals import interrupted_message, stop_on_signals
+from ranktide.signals import stop_on_signals
 
 HELP = "Continue an interrupted run from its latest valid checkpoint"
 EXAMPLE = "ranktide resume run1 --max-passes 200"
@@ -59,11 +58,4 @@ def run(args: argparse.Namespace) -> int:
             )
         finally:
             _warn_lines([w for w in caught if issubclass(w.category, CheckpointWarning)])
-    if res.status == "interrupted":
-        print(interrupted_message(args.run_dir), file=sys.stderr, flush=True)
-        return stop.exit_code or 130
-    if args.json:
-        print(json.dumps(_summary(res), indent=2, sort_keys=True))
-        return 0
-    print(f"{summary_line(res)}; {res.message}; model in {res.run_dir}/model")
-    return 0
+    return finish(res, run_dir=args.run_dir, as_json=args.json, stop=stop)

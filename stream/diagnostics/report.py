@@ -30,7 +30,7 @@ from typing import Any
 
 import numpy as np
 from ranktide.atomic import atomic_write_bytes, load_npz
-from ranktide.errors import CheckpointError
+from ranktide.errors import CheckpointError, InputError
 from ranktide.model import load_model
 from ranktide.runs.rundir import read_history_file
 
@@ -170,6 +170,7 @@ def _profile(run_dir: Path) -> dict[str, float] | None:
 
 # ----------------------------------------------------------------------- plots
 def _figure(n_axes: int, *, width: float = 6.4):
+    # matplotlib is imported here: only the report needs it
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=(width * min(n_axes, 2) / 1.4, 3.6 * math.ceil(n_axes / 2)), dpi=100)
@@ -187,6 +188,46 @@ def _save(fig: Any, path: Path) -> Path:
     return path
 
 
+def _integer_axis(axis: Any) -> None:
+    """Ticks only at whole numbers (passes, rank, index)."""
+    from matplotlib.ticker import MaxNLocator
+
+    axis.set_major_locator(MaxNLocator(integer=True, nbins="auto"))
+
+
+def _tick_text(v: float) -> str:
+    text = f"{v:.2g}"
+    if "e" in text:
+        mant, exp = text.split("e")
+        text = f"{mant}e{int(exp)}"
+    return text
+
+
+def _log_axis(axis: Any, values: np.ndarray, *, at_values: bool = False, most: int = 7) -> None:
+    """A log axis with a few short, non-overlapping labels and no minor labels.
+
+    ``at_values``: ticks at (a thinned subset of) ``values`` themselves, as on
+    a path whose values are evenly spaced in log scale; otherwise ticks at
+    1, 2, 5 x 10^j (or whole decades when the data span more than ``most``).
+    """
+    from matplotlib.ticker import FixedLocator, FuncFormatter, LogLocator, NullFormatter
+
+    v = np.asarray(values, dtype=np.float64)
+    v = np.unique(v[np.isfinite(v) & (v > 0)])
+    if v.size == 0:
+        return
+    if at_values:
+        step = max(1, math.ceil(v.size / most))
+        ticks = v[::-1][::step][::-1]  # keep the smallest value
+        axis.set_major_locator(FixedLocator(ticks))
+    else:
+        decades = math.log10(v[-1] / v[0]) if v[0] > 0 else 0.0
+        subs = (1.0,) if decades > 2 else (1.0, 2.0, 5.0)
+        axis.set_major_locator(LogLocator(base=10, subs=subs, numticks=most + 1))
+    axis.set_major_formatter(FuncFormatter(lambda x, _pos: _tick_text(x)))
+    axis.set_minor_formatter(NullFormatter())
+
+
 def _plot_line(ax: Any, x: np.ndarray, y: np.ndarray, *, log: bool = False, **kw: Any) -> bool:
     ok = np.isfinite(x) & np.isfinite(y)
     if log:
@@ -197,6 +238,7 @@ def _plot_line(ax: Any, x: np.ndarray, y: np.ndarray, *, log: bool = False, **kw
     ax.plot(x[ok], y[ok], marker="." if ok.sum() < 60 else None, **kw)
     if log:
         ax.set_yscale("log")
+        _log_axis(ax.yaxis, y[ok])
     ax.grid(True, alpha=0.3)
     return True
 
@@ -206,7 +248,15 @@ def _pass_axis(passes: Sequence[Mapping[str, Any]]) -> np.ndarray:
     return np.where(np.isfinite(x), x, np.arange(1, len(passes) + 1))
 
 
-def _plot_convergence(passes: Sequence[Mapping[str, Any]], out: Path) -> Path | None:
+def _lam_changes(passes: Sequence[Mapping[str, Any]]) -> list[int]:
+    """Indices of the passes that started a new lam (a path's next value)."""
+    lam = _column(passes, "lam")
+    both = np.isfinite(lam[:-1]) & np.isfinite(lam[1:])
+    return [int(i) + 1 for i in np.flatnonzero(both & (lam[1:] != lam[:-1]))]
+
+
+def _plot_convergence(passes: Sequence[Mapping[str, Any]], out: Path,
+                      tol: float | None) -> Path | None:
     if not passes:
         return None
     obj = _column(passes, "objective", "F")
@@ -223,19 +273,24 @@ def _plot_convergence(passes: Sequence[Mapping[str, Any]], out: Path) -> Path | 
         _plot_line(ax, x, gap, log=True, color="C3", label="gap estimate")
         if np.isfinite(rel).any():
             _plot_line(ax, x, rel, log=True, color="C1", ls="--", label="relative gap")
-            ax.legend(fontsize="small")
-    b.set(xlabel="pass", ylabel="gap (at power-iteration tolerance)")
+            if tol is not None and tol > 0:
+                ax.axhline(tol, color="C1", lw=1, ls=":", label=f"tolerance {tol:g}")
+                _log_axis(ax.yaxis, np.concatenate([gap, rel, [tol]]))
+    b.set(xlabel="pass", ylabel="gap (power-iteration estimate)")
     _plot_line(c, xs, obj, color="C0")
     c.set(xlabel="seconds", ylabel="objective F")
-    d.set(xlabel="seconds", ylabel="gap (at power-iteration tolerance)")
-    lam = _column(passes, "lam")
-    both = np.isfinite(lam[:-1]) & np.isfinite(lam[1:])
-    change = np.flatnonzero(both & (lam[1:] != lam[:-1]))
-    for i in change:  # mark where a path moved to the next lam
+    d.set(xlabel="seconds", ylabel="gap (power-iteration estimate)")
+    for ax in (a, b):
+        _integer_axis(ax.xaxis)
+    for n, i in enumerate(_lam_changes(passes)):  # where a path moved to its next lam
         for ax, x in ((a, xp), (b, xp), (c, xs), (d, xs)):
-            if np.isfinite(x[i + 1]):
-                ax.axvline(x[i + 1], color="0.6", lw=0.8, ls=":")
-    fig.suptitle("convergence")
+            if np.isfinite(x[i]):
+                ax.axvline(x[i], color="0.5", lw=0.8, ls=":",
+                           label="next lam" if n == 0 else None)
+    for ax in (a, b, c, d):
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(fontsize="small", loc="best")
+    fig.suptitle("objective and gap estimate per pass and over time")
     return _save(fig, out / "convergence.png")
 
 
@@ -244,8 +299,15 @@ def _plot_rank(passes: Sequence[Mapping[str, Any]], out: Path) -> Path | None:
     if not np.isfinite(rank).any():
         return None
     fig, (a,) = _figure(1)
-    _plot_line(a, _pass_axis(passes), rank, drawstyle="steps-post", color="C2")
-    a.set(xlabel="pass", ylabel="rank", title="rank of the model")
+    xp = _pass_axis(passes)
+    _plot_line(a, xp, rank, drawstyle="steps-post", color="C2")
+    for n, i in enumerate(_lam_changes(passes)):
+        a.axvline(xp[i], color="0.5", lw=0.8, ls=":", label="next lam" if n == 0 else None)
+    if _lam_changes(passes):
+        a.legend(fontsize="small", loc="lower right")
+    a.set(xlabel="pass", ylabel="rank", title="rank of the model after each pass")
+    _integer_axis(a.xaxis)
+    _integer_axis(a.yaxis)
     return _save(fig, out / "rank.png")
 
 
@@ -256,12 +318,16 @@ def _plot_singular_values(s: np.ndarray | None, out: Path) -> Path | None:
     a.bar(np.arange(1, s.size + 1), s, color="C1")
     if s.min() > 0 and s.max() / s.min() > 100:
         a.set_yscale("log")
-    a.set(xlabel="index", ylabel="singular value", title=f"final model: rank {s.size}")
+        _log_axis(a.yaxis, s)
+    a.set(xlabel="index (largest first)", ylabel="singular value",
+          title=f"chosen model: {s.size} singular values")
+    _integer_axis(a.xaxis)
     a.grid(True, alpha=0.3, axis="y")
     return _save(fig, out / "singular_values.png")
 
 
-def _plot_path(path: Sequence[Mapping[str, Any]], out: Path) -> Path | None:
+def _plot_path(path: Sequence[Mapping[str, Any]], out: Path,
+               chosen: float | None) -> Path | None:
     lam = _column(path, "lam", "lambda")
     if not np.isfinite(lam).any():
         return None
@@ -271,17 +337,24 @@ def _plot_path(path: Sequence[Mapping[str, Any]], out: Path) -> Path | None:
     rank = _column(path, "rank", "r")
     fig, (a, b) = _figure(2)
     _plot_line(a, lam, val, color="C4")
-    a.set(xlabel="lam", ylabel=name, title="validation along the path")
+    a.set(xlabel="lam (log scale)", ylabel=name, title="validation along the path")
     _plot_line(b, lam, rank, color="C2")
-    b.set(xlabel="lam", ylabel="rank", title="rank along the path")
+    b.set(xlabel="lam (log scale)", ylabel="rank", title="rank along the path")
+    _integer_axis(b.yaxis)
+    requested = next((r.get("requested") for r in path if r.get("requested")), None)
+    past = [_num(r.get("lam")) for r in path if r.get("extended")]
     for ax in (a, b):
         if np.nanmin(lam) > 0:
             ax.set_xscale("log")
-    best = next((r.get("best_lam") for r in reversed(path) if "best_lam" in r), None)
-    if best is not None and not math.isnan(_num(best)):
-        for ax in (a, b):
-            ax.axvline(_num(best), color="C3", lw=1, ls="--", label="best lam")
-        a.legend()
+            _log_axis(ax.xaxis, lam, at_values=True)
+            for label in ax.get_xticklabels():
+                label.set_rotation(30)
+        if past and requested:
+            ax.axvspan(min(past) / 1.2, max(past) * 1.2, color="0.9",
+                       label=f"past the {requested} requested values")
+        if chosen is not None and math.isfinite(chosen):
+            ax.axvline(chosen, color="C3", lw=1, ls="--", label=f"chosen lam {chosen:.3g}")
+        ax.legend(fontsize="small")
     return _save(fig, out / "path.png")
 
 
@@ -298,6 +371,23 @@ def _plot_profile(profile: Mapping[str, float] | None, out: Path) -> Path | None
     return _save(fig, out / "profile.png")
 
 
+#: what each figure shows (the page's captions)
+CAPTIONS = {
+    "convergence": "Objective F and its gap estimate after each pass (left) and against "
+                   "wall-clock seconds (right). The dotted vertical lines mark where a path "
+                   "moved to its next lam; the dotted horizontal line is the tolerance at "
+                   "which a fit stops (relative gap).",
+    "rank": "Rank of the model (number of singular values kept) after each pass; dotted lines "
+            "mark a move to the next lam.",
+    "singular values": "Singular values of the chosen model, largest first: how much each "
+                       "rank-one direction contributes.",
+    "path": "Validation metric and rank at each lam of the regularization path (log scale, "
+            "larger lam to the right); the dashed line marks the chosen lam, the shaded band "
+            "the values tried past the requested end.",
+    "profile": "Seconds spent in each phase of the profiled passes (reading, decoding, kernels).",
+}
+
+
 # ------------------------------------------------------------------------ html
 def _fmt(value: Any) -> str:
     if isinstance(value, float):
@@ -308,6 +398,11 @@ def _fmt(value: Any) -> str:
     return str(value)
 
 
+def _model_meta(run_dir: Path) -> Mapping[str, Any]:
+    doc = _read_json(run_dir / "model" / "model.json")
+    return doc if isinstance(doc, Mapping) else {}
+
+
 def _summary(
     run_dir: Path,
     config: Any,
@@ -315,7 +410,40 @@ def _summary(
     path: Sequence[Mapping[str, Any]],
     s: np.ndarray | None,
 ) -> list[tuple[str, Any]]:
-    rows: list[tuple[str, Any]] = [("run", str(run_dir))]
+    meta = _model_meta(run_dir)
+    info = meta.get("path") if isinstance(meta.get("path"), Mapping) else {}
+    rows: list[tuple[str, Any]] = []
+    if meta:
+        rows.append(("chosen model: lam", meta.get("lam")))
+        if info:
+            rows.append((f"chosen model: {info.get('validation_metric', 'validation')}",
+                         info.get("validation")))
+            rows.append(("chosen model: value on the path",
+                         f"{int(info.get('chosen_index', 0)) + 1} of {info.get('fitted')}"))
+        rows.append(("chosen model: rank", meta.get("rank", None if s is None else int(s.size))))
+        rows.append(("chosen model: objective", meta.get("objective")))
+        rows.append(("chosen model: gap estimate", meta.get("gap")))
+        rows.append(("chosen model: passes in its step", meta.get("step_passes",
+                                                                   info.get("chosen_step_passes"))))
+        rows.append(("chosen model: status", meta.get("status")))
+        if s is not None and s.size:
+            rows.append(("chosen model: trace norm ||W||_*", float(s.sum())))
+    else:
+        rows.append(("model", "none written (the run has not fitted one)"))
+    rows.append(("lam_max", meta.get("lam_max")))
+    last_pass = np.nanmax(_pass_axis(passes)) if passes else 0
+    rows.append(("run: passes", int(last_pass)))
+    if passes:
+        rows.append(("run: seconds", passes[-1].get("seconds")))
+    if path:
+        rows.append(("run: path values fitted", len(path)))
+        req = info.get("requested") or next((r.get("requested") for r in path
+                                             if r.get("requested")), None)
+        if req:
+            rows.append(("run: path values requested", req))
+        if info:
+            rows.append(("run: path end", f"{info.get('status')}: {info.get('message')}"))
+    rows.append(("run", str(run_dir)))
     if isinstance(config, Mapping):
         store = config.get("store") or {}
         if isinstance(store, Mapping):
@@ -324,42 +452,19 @@ def _summary(
         settings = config.get("settings") or {}
         if isinstance(settings, Mapping):
             rows += [(f"setting: {k}", v) for k, v in sorted(settings.items())]
-    rows.append(("passes recorded", len(passes)))
-    if passes:
-        last = passes[-1]
-        for key in ("objective", "gap_estimate", "sigma_ratio", "rank", "seconds", "lam"):
-            if key in last:
-                rows.append((f"last pass: {key}", last[key]))
-    if path:
-        rows.append(("lams on the path", len(path)))
-        vals = np.array([_validation(r)[0] for r in path])
-        best = next((r.get("best_lam") for r in reversed(path) if "best_lam" in r), None)
-        if best is not None:
-            rows.append(("best lam", best))
-        if np.isfinite(vals).any():
-            rows.append((_validation(path[-1])[1] + " (last lam)", vals[-1]))
-    if s is not None:
-        rows.append(("final model rank", int(s.size)))
-        if s.size:
-            rows.append(("trace norm ||W||_*", float(s.sum())))
-    result = _read_json(run_dir / "result.json")
-    if isinstance(result, Mapping):
-        for key in ("status", "message", "objective", "gap_estimate", "passes"):
-            if key in result:
-                rows.append((f"result: {key}", result[key]))
     return [(k, v) for k, v in rows if v is not None]
 
 
-def _html(title: str, rows: Sequence[tuple[str, Any]], figures: Sequence[Path],
+def _html(title: str, rows: Sequence[tuple[str, Any]], figures: Sequence[tuple[Path, str]],
           missing: Sequence[str]) -> str:
     esc = html.escape
     table = "\n".join(
         f"<tr><th>{esc(str(k))}</th><td>{esc(_fmt(v))}</td></tr>" for k, v in rows
     )
     imgs = "\n".join(
-        f'<figure><img src="{esc(f.name)}" alt="{esc(f.stem)}"><figcaption>{esc(f.stem)}'
+        f'<figure><img src="{esc(f.name)}" alt="{esc(caption)}"><figcaption>{esc(caption)}'
         "</figcaption></figure>"
-        for f in figures
+        for f, caption in figures
     )
     notes = "".join(f"<li>{esc(m)}</li>" for m in missing)
     notes = f"<h2>Not shown</h2><ul>{notes}</ul>" if notes else ""
@@ -370,7 +475,8 @@ body {{ font-family: sans-serif; max-width: 70em; margin: 2em auto; color: #222;
 table {{ border-collapse: collapse; margin-bottom: 2em; }}
 th, td {{ border: 1px solid #ccc; padding: 0.25em 0.6em; text-align: left; font-size: 90%; }}
 th {{ background: #f4f4f4; font-weight: normal; }}
-figure {{ display: inline-block; margin: 0 1em 1em 0; }}
+figure {{ display: inline-block; margin: 0 1em 1em 0; max-width: 100%; }}
+figcaption {{ max-width: 40em; font-size: 90%; color: #444; }}
 img {{ max-width: 100%; border: 1px solid #ddd; }}
 </style></head><body>
 <h1>{esc(title)}</h1>
@@ -408,6 +514,8 @@ def write_report(run_dir: str | os.PathLike, out_dir: str | os.PathLike | None =
     ------
     CheckpointError
         When ``run_dir`` is not a run directory.
+    InputError
+        When the run has recorded no pass yet (nothing to plot).
     """
     run = Path(run_dir)
     if not run.is_dir():
@@ -418,25 +526,32 @@ def write_report(run_dir: str | os.PathLike, out_dir: str | os.PathLike | None =
             f"{run}: neither config.json nor history.jsonl found; give a run directory written "
             "by ranktide train"
         )
+    passes, path = split_history(read_history(run))
+    if not passes:
+        raise InputError(f"{run}: no passes recorded in history.jsonl, so there is nothing to "
+                         "report yet; train (or resume) the run first")
     out = run / "report" if out_dir is None else Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    passes, path = split_history(read_history(run))
     s = _singular_values(run)
+    settings = (config or {}).get("settings") if isinstance(config, Mapping) else None
+    tol = _num((settings or {}).get("tol")) if isinstance(settings, Mapping) else math.nan
+    chosen = _num(_model_meta(run).get("lam"))
     made = {
-        "convergence": _plot_convergence(passes, out),
+        "convergence": _plot_convergence(passes, out, None if math.isnan(tol) else tol),
         "rank": _plot_rank(passes, out),
         "singular values": _plot_singular_values(s, out),
-        "path": _plot_path(path, out),
+        "path": _plot_path(path, out, None if math.isnan(chosen) else chosen),
         "profile": _plot_profile(_profile(run), out),
     }
     reasons = {
         "convergence": "no objective or gap in history.jsonl",
         "rank": "no rank in history.jsonl",
-        "singular values": "no final model in RUN/model",
+        "singular values": "no model in RUN/model" if s is None else
+                           "the chosen model has rank 0 (W = 0)",
         "path": "not a path run (no per-lam records)",
         "profile": "the run was not profiled",
     }
-    figures = [p for p in made.values() if p is not None]
+    figures = [(p, CAPTIONS[name]) for name, p in made.items() if p is not None]
     missing = [f"{name}: {reasons[name]}" for name, p in made.items() if p is None]
     page = _html(f"ranktide run report: {run.name}", _summary(run, config, passes, path, s),
                  figures, missing)

@@ -20,20 +20,25 @@ from typing import Any
 
 import numpy as np
 from ranktide.atomic import temp_sibling
-from ranktide.errors import ConfigError, InputError
+from ranktide.errors import InputError
 from ranktide.jsondata import json_data
 from ranktide.losses import LOSS_NAMES, check_loss_source, get_loss
 from ranktide.model import Model, save_model
 from ranktide.passes.engine import run_pass
 from ranktide.runs.checkpoint import CheckpointSchedule
 from ranktide.runs.checks import check_train_inputs, check_train_output
+from ranktide.runs.config import PATH_EXTEND, PATH_FLOOR, TrainConfig
 from ranktide.runs.rundir import RunDir, RunRecorder
 from ranktide.scoring.evaluate import evaluate
 from ranktide.solver.debias import debias, debias_summary, near_full_rank
 from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverResult
 from ranktide.store.memory_source import as_source
 
-__all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDATION_METRIC"]
+__all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDATION_METRIC",
+           "PATH_FLOOR", "PATH_EXTEND", "NO_FIT", "path_lams"]
+
+#: status of a run that stopped before it could fit a model (no model is written)
+NO_FIT = "no_fit"
 
 #: validation metric per loss: (key in the metrics dict, True when higher is better)
 VALIDATION_METRIC: dict[str, tuple[str, bool]] = {
@@ -58,6 +63,8 @@ class PathPoint:
         Validation metrics (see :mod:`ranktide.scoring.metrics`).
     score : float
         The validation metric that picks the best lam (see :data:`VALIDATION_METRIC`).
+    seconds : float
+        Seconds spent on this value (NaN in checkpoints written before it was kept).
     """
 
     index: int
@@ -70,6 +77,7 @@ class PathPoint:
     status: str
     metrics: dict
     score: float
+    seconds: float = math.nan
 
 
 @dataclass(frozen=True)
@@ -91,7 +99,13 @@ class TrainResult:
     rank, passes : int
     seconds : float
     status : str
-        ``converged``, ``max_passes``, ``max_seconds``, ``callback`` or ``path_early_stop``.
+        One lam: ``converged``, ``max_passes``, ``max_seconds`` or ``callback``.
+        A path: ``path_done`` (every requested value fitted), ``path_extended``
+        (the best was the last requested value, so the path went on past its
+        end), ``path_early_stop`` (validation worsened twice in a row before
+        the end), or ``max_seconds`` / ``callback`` inside a value.
+        ``no_fit`` (:data:`NO_FIT`): the run ended while estimating lam_max,
+        before it could fit anything; ``model`` is None and no model is written.
     message : str
     history : list of dict
         One record per pass (``pass``, ``objective``, ``gap_estimate``,
@@ -126,37 +140,6 @@ class TrainResult:
 
 
 # ---------------------------------------------------------------- inputs
-
-
-def _validate(*, loss, lam, lam_frac, path, path_min_frac, valid, tol, max_passes,
-              max_seconds, class_weight) -> None:
-    get_loss(loss)
-    given = [name for name, v in (("lam", lam), ("lam_frac", lam_frac), ("path", path))
-             if v is not None]
-    if len(given) != 1:
-        raise ConfigError("train: give exactly one of lam, lam_frac and path "
-                          f"(got {', '.join(given) or 'none'})")
-    if lam is not None and not (isinstance(lam, (int, float)) and math.isfinite(lam) and lam > 0):
-        raise ConfigError(f"train: lam = {lam!r}; give a positive number")
-    if lam_frac is not None and not (math.isfinite(lam_frac) and 0 < lam_frac):
-        raise ConfigError(f"train: lam_frac = {lam_frac!r}; give a positive fraction of lam_max")
-    if path is not None:
-        if isinstance(path, bool) or int(path) != path or int(path) < 2:
-            raise ConfigError(f"train: path = {path!r}; give the number of lam values (>= 2)")
-        if valid is None:
-            raise ConfigError("train: a regularization path needs validation data; "
-                              "pass valid= (--valid STORE)")
-        if not (0 < path_min_frac < 1):
-            raise ConfigError(f"train: path_min_frac = {path_min_frac!r}; it must lie in (0, 1)")
-    if not (0 < tol < 1):
-        raise ConfigError(f"train: tol = {tol!r}; it must lie in (0, 1)")
-    if int(max_passes) < 1:
-        raise ConfigError(f"train: max_passes = {max_passes!r}; it must be >= 1")
-    if max_seconds is not None and not max_seconds > 0:
-        raise ConfigError(f"train: max_seconds = {max_seconds!r}; it must be positive")
-    if class_weight is not None and loss != "softmax":
-        raise ConfigError(f"train: class weights apply to the softmax loss only, not {loss!r}; "
-                          "drop --class-weight")
 
 
 def _count_block(block: Any, k: int) -> np.ndarray:
@@ -312,8 +295,11 @@ class _Recorder:
         return None
 
     def event(self, rec: dict) -> None:
+        """A path value finished: into the run's history and, as ``kind="path"``, the printer."""
         if self.run is not None:
             self.run.append_history(json_data(rec))
+        if self.printer is not None:
+            self.printer(dict(rec))
 
 
 def train(
@@ -323,7 +309,8 @@ def train(
     lam: float | None = None,
     lam_frac: float | None = None,
     path: int | None = None,
-    path_min_frac: float = 0.01,
+    path_min_frac: float = PATH_FLOOR,
+    path_extend: int = PATH_EXTEND,
     valid: Any = None,
     tol: float = 1e-4,
     max_passes: int = 100,
@@ -359,7 +346,13 @@ def train(
         A penalty, a fraction of ``lam_max``, or the number ``m`` of path values
         ``lam_j = lam_max * path_min_frac^(j / (m - 1))``, j = 0..m-1.
     path_min_frac : float
-        Smallest path value as a fraction of ``lam_max`` (default 0.01).
+        Smallest requested path value as a share of ``lam_max`` (default
+        :data:`PATH_FLOOR`).
+    path_extend : int
+        When the best value is the last requested one, the path goes on down
+        the same geometric sequence, at most this many more values (default
+        :data:`PATH_EXTEND`; 0: never), until validation has worsened twice
+        in a row.
     valid : store path, Store or tuple
         Validation data (required with ``path``): softmax accuracy, squared
         RMSE, multilabel micro-F1 pick the best lam; the path stops early
@@ -395,7 +388,10 @@ def train(
     power_size, expand_size : int
         Block sizes ``p`` and ``p'`` of the solver (see :class:`SolverConfig`).
     on_pass : callable, optional
-        Called with each pass's record for display (never stops the run).
+        Called with each pass's record for display (never stops the run); on
+        a path also with each finished value's record (``kind == "path"``:
+        ``index``, ``lam``, ``rank``, ``passes``, ``seconds``, ``val_metric``,
+        ``val_metric_name``, ``best_index``, ``requested``, ``extended``).
     checkpoint_seconds, checkpoint_passes : optional
         With ``out``: a checkpoint every ``checkpoint_seconds`` of training
         (default 60) or every ``checkpoint_passes`` passes, whichever comes
@@ -412,11 +408,15 @@ def train(
     -------
     TrainResult
     """
-    _validate(loss=loss, lam=lam, lam_frac=lam_frac, path=path, path_min_frac=path_min_frac,
-              valid=valid, tol=tol, max_passes=max_passes, max_seconds=max_seconds,
-              class_weight=class_weight)
-
-    CheckpointSchedule(seconds=checkpoint_seconds, passes=checkpoint_passes)  # validates them
+    TrainConfig(loss=loss, lam=lam, lam_frac=lam_frac, path=path, path_min_frac=path_min_frac,
+                path_extend=path_extend, valid=_path_of(valid), has_valid=valid is not None,
+                tol=tol, max_passes=max_passes, max_seconds=max_seconds, memory=memory,
+                seed=seed, block_rows=block_rows, backend=backend, class_weight=class_weight,
+                dense_gradient=dense_gradient, power_size=power_size, expand_size=expand_size,
+                checkpoint_seconds=checkpoint_seconds,
+                checkpoint_passes=checkpoint_passes)  # the one validator of the settings
+    if resume_point is not None:  # runs written before the path could extend: no extension
+        path_extend = int(resume_point.run.settings.get("path_extend") or 0)
 
     if out is not None:  # before anything is read or made (ranktide.outputs)
         check_train_output(out, source, valid, class_weight, overwrite=overwrite)
@@ -449,6 +449,7 @@ def train(
         if out is not None and run is None:
             run = _create_run(out, src, cfg, fingerprint, overwrite=overwrite,
                               extra={"path": path, "path_min_frac": path_min_frac,
+                                     "path_extend": path_extend if path else None,
                                      "class_weight": class_weight if isinstance(
                                          class_weight, str) else None,
                                      "max_seconds": max_seconds,
@@ -469,7 +470,7 @@ def train(
             result = _train_single(solver, rec, deadline, fingerprint, src, loss)
         else:
             result = _train_path(solver, rec, deadline, fingerprint, src, loss, int(path),
-                                 float(path_min_frac), valid, block_rows, ctx)
+                                 float(path_min_frac), int(path_extend), valid, block_rows, ctx)
         if stop is not None and stop:
             if run is not None and not run.published:  # it would replace an older run
                 run.discard()
@@ -483,7 +484,8 @@ def train(
             ctx.finished = True
             ckpt.checkpoint(solver.state)
         if run is not None:
-            save_model(run.model_dir, result.model, overwrite=True)
+            if result.model is not None:  # a run that could not fit writes no model
+                save_model(run.model_dir, result.model, overwrite=True)
             run.complete()  # the run gets its name (replacing an older one) only now
             result = _with(result, run_dir=str(run.path))
         return result
@@ -591,8 +593,23 @@ def _grad_b(history: list) -> float:
     return math.nan
 
 
+def _no_fit(fit: SolverResult, rec: _Recorder) -> TrainResult:
+    """The result of a run that ended while it was still estimating lam_max."""
+    why = {"max_passes": "the pass budget (--max-passes)",
+           "max_seconds": "the time budget (--max-seconds)"}.get(fit.status, fit.status)
+    msg = (f"no model: all {fit.passes} passes went into estimating lam_max and {why} ran "
+           "out before any fitting; raise it")
+    return TrainResult(model=None, objective=math.nan, gap=math.nan, sigma_ratio=math.nan,
+                       rank=0, passes=fit.passes, seconds=fit.seconds, status=NO_FIT,
+                       message=msg, history=list(rec.history), lam=math.nan,
+                       lam_max=fit.lam_max)
+
+
 def _train_single(solver, rec, deadline, fingerprint, src, loss) -> TrainResult:
     fit = _run_solver(solver, rec, deadline)
+    lam = math.nan if fit.lam is None else float(fit.lam)
+    if not math.isfinite(lam) and fit.status in ("max_passes", "max_seconds"):
+        return _no_fit(fit, rec)
     gb = _grad_b(rec.history)
     model = _model(src, loss, fit, _fit_meta(fit, fingerprint, gb))
     return TrainResult(model=model, objective=fit.objective, gap=fit.gap,
@@ -610,33 +627,69 @@ def _point_best(points: list, higher: bool) -> int:
     return max(range(len(points)), key=lambda i: points[i].score if higher else -points[i].score)
 
 
-def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, valid,
+def path_lams(lam_max: float, m: int, min_frac: float, count: int) -> list[float]:
+    """The first ``count`` path values ``lam_max * min_frac^(j / (m - 1))``.
+
+    Values ``j >= m`` continue the same geometric sequence past the requested
+    end (``min_frac * lam_max``), as a path that extends does.
+    """
+    return [lam_max * min_frac ** (j / (m - 1)) for j in range(count)]
+
+
+def _path_end(points: list, m: int, extend: int, worse: int, key: str,
+              higher: bool) -> tuple[str, str] | None:
+    """(status, message) when the path ends after its last finished value, else None."""
+    n = len(points)
+    past = n - m
+    if worse >= 2:
+        if past < 0:
+            return "path_early_stop", (f"validation {key} worsened twice in a row; stopped at "
+                                       f"value {n} of {m}")
+        if past == 0:
+            return "path_done", f"all {m} requested values fitted"
+        return "path_extended", (f"the best lam was the smallest requested, so the path went "
+                                 f"on {past} value(s) past it until validation {key} worsened "
+                                 "twice in a row")
+    if past < 0:
+        return None
+    best_last = _point_best(points, higher) == n - 1
+    if past == 0:
+        if best_last and extend > 0:
+            return None  # the best is the smallest requested value: go on down
+        return "path_done", f"all {m} requested values fitted"
+    if past < extend:
+        return None
+    if best_last:
+        return "path_extend_cap", (f"validation {key} still improved at the cap of {extend} "
+                                   "value(s) past the requested end; the best lam is the "
+                                   "smallest tried (raise --path-extend to go further)")
+    return "path_extended", (f"the best lam was the smallest requested, so the path went on "
+                             f"{past} value(s) past it (the cap, --path-extend {extend})")
+
+
+def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, extend, valid,
                 block_rows, ctx) -> TrainResult:
     from dataclasses import asdict
-
 
     pos = ctx.path
     if pos is None:  # a fresh path (or a resume from inside the lam_max phase)
         first = _run_solver(solver, rec, deadline)  # lam_max phase only (lam is None)
         if first.status in ("callback", "interrupted"):
-            model = _model(src, loss, first, _fit_meta(first, fingerprint, math.nan))
-            return TrainResult(model=model, objective=first.objective, gap=first.gap,
-                               sigma_ratio=first.sigma_ratio, rank=first.rank,
-                               passes=first.passes, seconds=first.seconds, status=first.status,
+            return TrainResult(model=None, objective=math.nan, gap=math.nan,
+                               sigma_ratio=math.nan, rank=0, passes=first.passes,
+                               seconds=first.seconds, status=first.status,
                                message=first.message, history=list(rec.history),
-                               lam=first.lam, lam_max=first.lam_max)
+                               lam=math.nan, lam_max=first.lam_max)
         if first.status != "lam_max":
-            raise ConfigError(f"train: the lam_max phase ended with status {first.status!r}; "
-                              "raise --max-passes or --max-seconds")
+            return _no_fit(first, rec)
         # the path position, in the checkpoints: value index, whether its lam is set,
         # finished points, early-stop count, best point so far
         pos = {"index": 0, "started": False, "points": [], "worse": 0, "best": None,
-               "best_meta": None, "status": "converged", "message": "", "passes_before": 0,
+               "best_meta": None, "status": "path_done", "message": "", "passes_before": 0,
                "done": False}
         ctx.path = pos
     lam_max = float(solver.state.lam_max)
     key, higher = VALIDATION_METRIC[loss]
-    lams = [lam_max * min_frac ** (j / (m - 1)) for j in range(m)]
     points: list[PathPoint] = [PathPoint(**p) for p in pos["points"]]
     best_model = None
     if pos["best"] is not None:  # resumed: the best model so far comes from the checkpoint
@@ -645,24 +698,29 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
         best_model = Model(U=b["U"], s=b["s"], V=b["V"], b=b["b"], loss=loss,
                            names=list(names) if names else None, meta=pos["best_meta"])
     status = message = None
-    while not pos["done"] and pos["index"] < m:
+    while not pos["done"] and pos["index"] < m + extend:
         j = pos["index"]
-        lam_j = lams[j]
+        lam_j = path_lams(lam_max, m, min_frac, j + 1)[j]
+        where = f"value {j + 1} of {m}" if j < m else f"value {j + 1} (past the requested {m})"
         if not pos["started"]:
             pos["passes_before"] = solver.state.passes
+            pos["seconds_before"] = solver.state.seconds
             solver.set_lam(lam_j, path_index=j)
             pos["started"] = True
         fit = _run_solver(solver, rec, deadline)
         if fit.status == "interrupted":  # the checkpoint keeps the position inside this value
-            status, message = fit.status, f"path interrupted at value {j + 1} of {m}"
+            status, message = fit.status, f"path interrupted at {where}"
             break
         gb = _grad_b(rec.history)
-        model = _model(src, loss, fit, _fit_meta(fit, fingerprint, gb))
+        step_passes = solver.state.passes - pos["passes_before"]
+        step_seconds = solver.state.seconds - pos.get("seconds_before", math.nan)
+        model = _model(src, loss, fit, dict(_fit_meta(fit, fingerprint, gb),
+                                            step_passes=step_passes))
         metrics, score = _validation(model, valid, loss, block_rows)
         pt = PathPoint(index=j, lam=lam_j, objective=fit.objective, gap=fit.gap,
-                       sigma_ratio=fit.sigma_ratio, rank=fit.rank,
-                       passes=solver.state.passes - pos["passes_before"], status=fit.status,
-                       metrics=json_data(metrics), score=score)
+                       sigma_ratio=fit.sigma_ratio, rank=fit.rank, passes=step_passes,
+                       status=fit.status, metrics=json_data(metrics), score=score,
+                       seconds=step_seconds)
         points.append(pt)
         best = _point_best(points, higher)
         if best == len(points) - 1:
@@ -672,10 +730,12 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
                    "sigma_ratio": fit.sigma_ratio, "status": fit.status,
                    "val_metric": score, "val_metric_name": f"validation {key}",
                    "validation": json_data(metrics), "best_lam": points[best].lam,
-                   "passes": pt.passes})
+                   "best_index": best, "passes": pt.passes, "seconds": step_seconds,
+                   "run_passes": solver.state.passes, "run_seconds": solver.state.seconds,
+                   "requested": m, "extended": j >= m})
         if fit.status in ("callback", "max_seconds"):
             # unfinished value: the checkpoint keeps the position inside it
-            status, message = fit.status, f"path stopped at value {j + 1} of {m}: {fit.message}"
+            status, message = fit.status, f"path stopped at {where}: {fit.message}"
             break
         if best == len(points) - 1:
             pos["best"], pos["best_meta"] = j, model.meta
@@ -686,13 +746,10 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
             pos["worse"] = 0
         pos["points"] = [asdict(p) for p in points]
         pos["index"], pos["started"] = j + 1, False
-        if pos["worse"] >= 2:
-            pos["status"] = "path_early_stop"
-            pos["message"] = (f"validation {key} worsened twice in a row; stopped at value "
-                              f"{j + 1} of {m}")
+        end = _path_end(points, m, extend, pos["worse"], key, higher)
+        if end is not None:
+            pos["status"], pos["message"] = end
             pos["done"] = True
-        elif fit.status != "converged":
-            pos["status"] = fit.status
         if ctx.recorder is not None:  # a checkpoint at the end of each path step
             ctx.recorder.checkpoint(solver.state)
     status = status or pos["status"]
@@ -701,14 +758,17 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, vali
         st = solver.state
         return TrainResult(model=None, objective=math.nan, gap=math.nan, sigma_ratio=math.nan,
                            rank=st.rank, passes=st.passes, seconds=st.seconds, status=status,
-                           message=message, history=list(rec.history), lam=lams[0],
-                           lam_max=lam_max)
+                           message=message, history=list(rec.history),
+                           lam=path_lams(lam_max, m, min_frac, 1)[0], lam_max=lam_max)
     best = _point_best(points, higher)
     pt = points[best]
-    if not message:
-        message = (f"path of {len(points)} values; best lam {pt.lam:.6g} "
-                   f"(validation {key} {pt.score:.6g})")
+    summary = {"requested": m, "fitted": len(points), "extended": max(0, len(points) - m),
+               "extend_cap": extend, "floor": min_frac, "status": status, "message": message,
+               "chosen_index": best, "chosen_step_passes": pt.passes,
+               "validation_metric": f"validation {key}", "validation": pt.score,
+               "total_passes": solver.state.passes}
     best_model = _refit_chosen(best_model, src, solver, valid, loss, pt.lam, block_rows)
+    best_model = replace(best_model, meta=dict(best_model.meta, path=json_data(summary)))
     return TrainResult(model=best_model, objective=pt.objective, gap=pt.gap,
                        sigma_ratio=pt.sigma_ratio, rank=pt.rank, passes=solver.state.passes,
                        seconds=solver.state.seconds, status=status, message=message,

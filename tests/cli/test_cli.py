@@ -27,9 +27,9 @@ def test_unknown_option_is_one_line_exit_2(capsys):
     assert len(err) == 1 and "see --help" in err[0]
 
 
-def test_train_stopped_before_lam_max_prints_a_summary(tmp_path, capsys):
-    # A run whose time budget ends inside the lam_max phase has no lam yet: the summary
-    # line must still print (regression: it raised TypeError on None).
+def test_train_stopped_before_lam_max_says_so_and_writes_no_model(tmp_path, capsys):
+    # A run whose time budget ends inside the lam_max phase has no lam yet: one line says
+    # so, the exit status is 3 (not 0, not 2) and no model directory is written.
     import numpy as np
     import scipy.sparse as sp
     from ranktide.store import write_store
@@ -37,11 +37,15 @@ def test_train_stopped_before_lam_max_prints_a_summary(tmp_path, capsys):
     rng = np.random.default_rng(0)
     X = sp.random(200, 30, density=0.2, format="csr", random_state=1, dtype=np.float32)
     write_store(tmp_path / "s.zarr", X, rng.integers(0, 4, 200).astype(np.int32))
-    code = cli.main(["train", str(tmp_path / "s.zarr"), "--loss", "softmax", "--lam-frac",
+    code = cli.main(["train", str(tmp_path / "s.zarr"), "--loss", "softmax", "--lam-scale",
                      "0.1", "--out", str(tmp_path / "run"), "--max-seconds", "1e-6", "--quiet"])
-    assert code == 0
-    out = capsys.readouterr().out
-    assert "max_seconds" in out and "lam_max -" in out
+    assert code == 3
+    cap = capsys.readouterr()
+    err = cap.err.strip().splitlines()
+    assert len(err) == 1 and "no model" in err[0] and "lam_max" in err[0], err
+    assert "--max-seconds" in err[0] and "ranktide resume" in err[0]
+    assert cap.out == ""
+    assert not (tmp_path / "run" / "model").exists()
 
 
 def test_every_command_has_quiet():

@@ -303,7 +303,7 @@ def test_report_writes_pngs_and_html(tmp_path):
     for f in figs:
         assert f.read_bytes()[:8] == PNG_MAGIC  # RFC 2083 signature
         assert f'src="{f.name}"' in html
-    assert "ranktide run report" in html and "final model rank" in html
+    assert "ranktide run report" in html and "chosen model: rank" in html
 
 
 def test_report_tolerates_missing_keys(tmp_path, ranktide):
@@ -313,7 +313,7 @@ def test_report_tolerates_missing_keys(tmp_path, ranktide):
     page = ranktide("report", run, "--quiet")
     assert page.returncode == 0, page.stderr
     html = (run / "report" / "report.html").read_text()
-    assert "convergence.png" in html and "no final model" in html
+    assert "convergence.png" in html and "no model in RUN/model" in html
     assert (run / "report" / "convergence.png").read_bytes()[:8] == PNG_MAGIC
     assert not (run / "report" / "rank.png").exists()
 

@@ -34,7 +34,7 @@ from ranktide.errors import ModelError
 REPO = Path(__file__).resolve().parents[2]
 N_ROWS = 200
 SETTINGS = [
-    "--loss", "softmax", "--lam-frac", "0.05", "--tol", "1e-6", "--seed", "3",
+    "--loss", "softmax", "--lam-scale", "0.05", "--tol", "1e-6", "--seed", "3",
     "--block-rows", "50", "--checkpoint-passes", "1", "--quiet",
 ]  # fmt: skip
 

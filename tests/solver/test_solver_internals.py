@@ -383,7 +383,7 @@ def test_cli_train_exit_codes(tmp_path, capsys):
     X, y = _problem("softmax", n=120, d=15, k=3, seed=12)
     store = tmp_path / "t.zarr"
     write_store(store, X, y, kind="classes")
-    args = ["train", str(store), "--loss", "softmax", "--lam-frac", "0.3",
+    args = ["train", str(store), "--loss", "softmax", "--lam-scale", "0.3",
             "--out", str(tmp_path / "run")]
     assert main(args) == 0
     lines = capsys.readouterr().out.splitlines()

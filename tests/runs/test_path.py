@@ -1,0 +1,94 @@
+"""The regularization path's end: done, early stop, going on past the requested end."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from ranktide.runs.train import PathPoint, _path_end, path_lams, train
+
+
+def _pts(scores):
+    return [PathPoint(index=i, lam=1.0, objective=0.0, gap=0.0, sigma_ratio=1.0, rank=1,
+                      passes=1, status="converged", metrics={}, score=s)
+            for i, s in enumerate(scores)]
+
+
+def _end(scores, m=3, extend=4, higher=True):
+    pts = _pts(scores)
+    worse = 0
+    for a, b in zip(scores, scores[1:], strict=False):  # consecutive worsenings at the end
+        worse = worse + 1 if (b < a if higher else b > a) else 0
+    return _path_end(pts, m, extend, worse, "accuracy", higher)
+
+
+def test_a_path_that_fits_every_requested_value_is_done_not_early_stopped():
+    assert _end([0.5, 0.7, 0.6]) == ("path_done", "all 3 requested values fitted")
+    assert _end([0.8, 0.7, 0.6])[0] == "path_done"  # worse twice, but at the requested end
+
+
+def test_early_stop_only_before_the_requested_end():
+    status, msg = _end([0.8, 0.7, 0.6], m=5)
+    assert status == "path_early_stop" and "value 3 of 5" in msg
+    assert _end([0.5, 0.6], m=5) is None  # keep going
+
+
+def test_best_last_goes_on_until_worse_twice_or_the_cap():
+    assert _end([0.5, 0.6, 0.7]) is None  # best is the smallest requested: go on
+    assert _end([0.5, 0.6, 0.7], extend=0)[0] == "path_done"  # extension switched off
+    assert _end([0.5, 0.6, 0.7, 0.8]) is None
+    status, msg = _end([0.5, 0.6, 0.7, 0.8, 0.75, 0.72])
+    assert status == "path_extended" and "3 value(s) past" in msg and "twice" in msg
+    status, msg = _end([0.5, 0.6, 0.7, 0.8, 0.85, 0.86, 0.9])  # still better at the cap
+    assert status == "path_extend_cap" and "--path-extend" in msg
+    # lower is better (RMSE): the same rule with the comparison turned round
+    assert _end([3.0, 2.0, 1.0], higher=False) is None
+    assert _end([3.0, 2.0, 1.0, 1.5, 1.7], higher=False)[0] == "path_extended"
+
+
+def test_values_past_the_end_continue_the_same_geometric_sequence():
+    lams = path_lams(2.0, 3, 0.05, 6)
+    ratios = np.array(lams[1:]) / np.array(lams[:-1])
+    # lam_j = lam_max * floor^(j / (m - 1)): a constant ratio floor^(1/2) (closed form)
+    np.testing.assert_allclose(ratios, math.sqrt(0.05), rtol=1e-12)
+    assert lams[2] == pytest.approx(2.0 * 0.05, rel=1e-12)
+
+
+def _planted(seed, n):
+    """Rows of one planted rank-2 softmax problem (the seed picks the rows)."""
+    W = np.random.default_rng(0).standard_normal((40, 2)) @ \
+        np.random.default_rng(1).standard_normal((2, 5))
+    rng = np.random.default_rng(seed)
+    X = sp.random(n, 40, density=0.2, format="csr", random_state=seed, dtype=np.float32)
+    y = np.argmax(X @ W + 0.3 * rng.standard_normal((n, 5)), axis=1).astype(np.int32)
+    return X, y
+
+
+def test_a_path_whose_best_is_last_goes_on_and_says_so_in_model_json(tmp_path):
+    X, y = _planted(11, 500)
+    Xv, yv = _planted(12, 200)
+    res = train(X, targets=y, loss="softmax", path=3, path_min_frac=0.3, path_extend=6,
+                valid=(Xv, yv), max_passes=8, tol=1e-2, seed=0, out=tmp_path / "run")
+    scores = [p.score for p in res.path]
+    # the requested values (down to 0.3 lam_max) all under-fit: validation improves down to
+    # the last of them, so the path went on past it
+    assert np.argmax(scores[:3]) == 2, scores
+    assert len(res.path) > 3 and res.status in ("path_extended", "path_extend_cap"), scores
+    assert len(res.path) <= 3 + 6
+    if res.status == "path_extended" and len(res.path) < 9:  # ended on two worsenings
+        assert scores[-1] < scores[-2] < scores[-3], scores
+    best = res.path[res.best_index]
+    assert all(best.score >= p.score for p in res.path)
+    meta = json.loads((tmp_path / "run" / "model" / "model.json").read_text())
+    info = meta["path"]
+    assert info["requested"] == 3 and info["fitted"] == len(res.path)
+    assert info["extended"] == len(res.path) - 3 and info["status"] == res.status
+    assert info["chosen_index"] == res.best_index and meta["step_passes"] == best.passes
+    assert meta["lam"] == pytest.approx(best.lam, rel=1e-12)
+    history = [json.loads(x) for x in (tmp_path / "run" / "history.jsonl").read_text().splitlines()]
+    steps = [h for h in history if h.get("kind") == "path"]
+    assert [h["extended"] for h in steps] == [i >= 3 for i in range(len(res.path))]
+    assert max(h["pass"] for h in history if h.get("kind") == "pass") == res.passes
