@@ -62,7 +62,7 @@ import numpy as np
 import scipy.io
 import scipy.sparse as sp
 from ranktide.ingest.build import ingest
-from ranktide.model import load_model
+from ranktide.model import load_model, save_model
 from ranktide.runs.train import train
 from ranktide.store import write_store
 from sklearn.metrics import f1_score
@@ -140,9 +140,21 @@ def run_ranktide(args: argparse.Namespace) -> dict:
     base.log(f"ranktide: fitted in {fit_s:.1f} s, rank {model.rank}, status {res.status}")
     X, y = read_split(args.data, "test", classes)
     y_train = read_split(args.data, "train", classes)[1]
-    scores = base.class_scores(y, model.predict_proba(X), base.rare_classes(y_train, k), k)
+    proba = model.predict_proba(X)
+    scores = base.class_scores(y, proba, base.rare_classes(y_train, k), k)
     return {"system": f"ranktide train --path {args.path} --valid", "fit_s": fit_s,
-            "ingest_s": ingest_s, **model_facts(res, work / "run" / "model", k), **scores}
+            "ingest_s": ingest_s, **model_facts(res, work / "run" / "model", k), **scores,
+            **float32_copy(model, proba, X, work / "model_f32")}
+
+
+def float32_copy(model, proba: np.ndarray, X: sp.csr_matrix, where: Path) -> dict:
+    """The model re-saved with float32 factors: its size and how its test predictions
+    differ from the float64 model's (top-1 agreement, max |delta probability|)."""
+    save_model(where, model, factor_dtype="float32", overwrite=True)
+    p32 = load_model(where).predict_proba(X)
+    return {"model_bytes_float32": dir_bytes(where),
+            "float32_top1_agreement": float(np.mean(p32.argmax(1) == proba.argmax(1))),
+            "float32_max_abs_dproba": float(np.max(np.abs(p32 - proba)))}
 
 
 def tag_scores(Y: np.ndarray, scores: np.ndarray) -> dict:
