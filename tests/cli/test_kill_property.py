@@ -107,7 +107,7 @@ steps = st.lists(st.tuples(st.sampled_from(sorted(COMMANDS)), st.integers(0, 1),
                            st.one_of(st.none(), st.floats(0.0, 0.6))), min_size=2, max_size=3)
 
 
-@settings(max_examples=5, deadline=None, derandomize=True,
+@settings(max_examples=4, deadline=None, derandomize=True,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(seq=steps)
 def test_killed_overwrites_leave_old_or_new(base, tmp_path_factory, seq):
