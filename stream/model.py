@@ -25,7 +25,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from importlib import metadata as _metadata
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 import scipy.sparse as sp
@@ -37,7 +37,7 @@ from ranktide.kernels.sparse import csr_matmul_dense
 from ranktide.kernels.svd import svd
 from ranktide.losses import LOSS_NAMES, get_loss
 
-__all__ = ["Model", "save_model", "load_model", "MODEL_FORMAT", "MODEL_VERSION",
+__all__ = ["Model", "TopK", "save_model", "load_model", "MODEL_FORMAT", "MODEL_VERSION",
            "NAMES_KEY", "FACTOR_DTYPES", "stored_rows"]
 
 MODEL_FORMAT = "ranktide-model"
@@ -53,6 +53,14 @@ _ARRAYS = ("U", "s", "V", "b")
 _STRUCTURAL = ("format", "format_version", "loss", "d", "k", "rank", "versions", "factors",
                *NAMES_KEY.values())
 _VERSIONED = ("numpy", "scipy", "numba", "zarr", "h5py")
+
+
+class TopK(NamedTuple):
+    """The best outputs of each row (:meth:`Model.top_k`), best first."""
+
+    labels: np.ndarray
+    scores: np.ndarray
+    indices: np.ndarray
 
 
 @dataclass(frozen=True, eq=False)
@@ -177,19 +185,24 @@ class Model:
             return sp.csr_matrix((Z >= 0.0).astype(np.float32))
         return Z
 
-    def top_k(self, X: Any, k: int) -> tuple[np.ndarray, np.ndarray]:
+    def top_k(self, X: Any, k: int) -> TopK:
         """The k best-scoring outputs of each row, best first (ties: lower index first).
 
         Returns
         -------
-        indices : ndarray, shape (n, k), int64
-        scores : ndarray, shape (n, k), float64
+        TopK
+            ``labels`` (n, k) str: the outputs' names (their ids as text when
+            the model has no names); ``scores`` (n, k) float64; ``indices``
+            (n, k) int64: the output columns.
         """
         if not (isinstance(k, (int, np.integer)) and 1 <= k <= self.n_outputs):
             raise ConfigError(f"top_k: k = {k!r} must be an integer in 1..{self.n_outputs}")
         Z = self.scores(X)
-        order = np.argsort(-Z, axis=1, kind="stable")[:, :k]
-        return order.astype(np.int64), np.take_along_axis(Z, order, axis=1)
+        order = np.argsort(-Z, axis=1, kind="stable")[:, :k].astype(np.int64)
+        names = np.asarray(self.names if self.names is not None else
+                           [str(j) for j in range(self.n_outputs)], dtype=str)
+        return TopK(labels=names[order], scores=np.take_along_axis(Z, order, axis=1),
+                    indices=order)
 
     def _project(self, X: Any) -> np.ndarray:
         """X U, shape (n, r), float64."""

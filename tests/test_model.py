@@ -63,7 +63,7 @@ def test_predictions_match_scipy_special():
 def test_top_k_matches_numpy_sort():
     X = _X(n=30)
     m = _random_model("softmax", k=8)
-    idx, val = m.top_k(X, 3)
+    labels, val, idx = m.top_k(X, 3)
     Z = m.scores(X)
     # Reference: numpy's full sort of each row (descending).
     ref = np.argsort(-Z, axis=1, kind="stable")[:, :3]
@@ -71,6 +71,12 @@ def test_top_k_matches_numpy_sort():
     np.testing.assert_allclose(val, np.sort(Z, axis=1)[:, ::-1][:, :3])
     assert idx.shape == (30, 3) and idx.dtype == np.int64
     assert np.all(np.diff(val, axis=1) <= 0)
+    # labels: the output names of those columns (ids as text without names)
+    names = [f"out-{j}" for j in range(8)]
+    named = Model(U=m.U, s=m.s, V=m.V, b=m.b, loss="softmax", names=names)
+    np.testing.assert_array_equal(named.top_k(X, 3).labels, np.asarray(names)[ref])
+    bare = Model(U=m.U, s=m.s, V=m.V, b=m.b, loss="softmax")
+    np.testing.assert_array_equal(bare.top_k(X, 3).labels, ref.astype(str))
     with pytest.raises(ConfigError, match="top_k: k = 9"):
         m.top_k(X, 9)
 

@@ -12,7 +12,7 @@ from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
 from ranktide.errors import ConfigError
 from ranktide.scoring.evaluate import evaluate
 
-HELP = "Evaluate a model on a labelled store (streamed): accuracy, F1, RMSE, ..."
+HELP = "Evaluate a model on a labelled store or .mtx/.npz file (streamed): accuracy, F1, RMSE"
 EXAMPLE = "ranktide evaluate run/model holdout.zarr --top 5 --json"
 
 #: per-output lists longer than this print only their first entries
@@ -21,7 +21,19 @@ SHOW_OUTPUTS = 20
 
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("model", metavar="MODEL_DIR", help="model directory (RUN/model)")
-    parser.add_argument("store", metavar="STORE", help="store with targets of the model's kind")
+    parser.add_argument("store", metavar="STORE",
+                        help="store with targets of the model's kind, or a Matrix Market "
+                             "(.mtx) or .npz file with --labels, --values or --tags")
+    parser.add_argument("--labels", metavar="FILE", default=None,
+                        help="with a .mtx/.npz: one class label per row (as ingest takes it)")
+    parser.add_argument("--values", metavar="FILE.npy", default=None,
+                        help="with a .mtx/.npz: target values (n, k)")
+    parser.add_argument("--tags", metavar="FILE", default=None,
+                        help="with a .mtx/.npz: the tags of each row, one line per row")
+    parser.add_argument("--weights", metavar="FILE", default=None,
+                        help="with a .mtx/.npz: one row weight per line (or .npy)")
+    parser.add_argument("--memory", default=None, metavar="SIZE",
+                        help="budget a .npz is loaded within (default a quarter of RAM)")
     parser.add_argument("--top", type=int, default=5, metavar="K",
                         help="k of top-k accuracy / precision@k (default 5)")
     parser.add_argument("--block-rows", type=int, default=None, metavar="N",
@@ -84,8 +96,10 @@ def run(args: argparse.Namespace) -> int:
     if args.top < 1:
         raise ConfigError(f"--top {args.top}: must be at least 1")
     with cluster_backend(args) as backend:
+        files = {"labels": args.labels, "values": args.values, "tags": args.tags,
+                 "weights": args.weights, "memory": args.memory}
         res = evaluate(args.model, args.store, top_k=args.top, block_rows=args.block_rows,
-                       progress=not args.quiet, backend=backend)
+                       progress=not args.quiet, backend=backend, files=files)
     if args.json:
         print(json.dumps(res, sort_keys=False))
     else:

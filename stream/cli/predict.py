@@ -16,7 +16,10 @@ EXAMPLE = "ranktide predict run/model holdout.zarr --out predictions.csv --top 5
 
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("model", metavar="MODEL_DIR", help="model directory (RUN/model)")
-    parser.add_argument("store", metavar="STORE", help="store of rows to predict")
+    parser.add_argument("store", metavar="STORE",
+                        help="store of rows to predict, or a Matrix Market (.mtx) or .npz file")
+    parser.add_argument("--memory", default=None, metavar="SIZE",
+                        help="budget a .npz is loaded within (default a quarter of RAM)")
     parser.add_argument("--out", required=True, metavar="FILE",
                         help="output: *.csv (top-K per row), *.npy (full score matrix) or "
                              "*.zarr (top-K arrays)")
@@ -46,7 +49,7 @@ def run(args: argparse.Namespace) -> int:
         info = predict_to_file(args.model, args.store, args.out, top_k=args.top,
                                proba=args.proba, block_rows=args.block_rows,
                                progress=not args.quiet, overwrite=args.overwrite,
-                               backend=backend)
+                               backend=backend, memory=args.memory)
     if args.json:
         print(json.dumps(info))
     elif not args.quiet:

@@ -20,6 +20,8 @@ from ranktide.errors import ConfigError, InputError, ModelError
 from ranktide.losses import TARGET_KIND
 from ranktide.model import load_model
 from ranktide.passes.dask_backend import map_blocks_ordered
+from ranktide.passes.engine import run_pass
+from ranktide.scoring.files import open_file_source
 from ranktide.scoring.metrics import make_metrics
 from ranktide.store import open_store
 
@@ -90,6 +92,35 @@ class DataSource:
         self._X = X
         self._targets = targets
         self._weights = weights
+
+    # the block contract of the pass engine (ranktide.passes.engine.run_pass)
+    @property
+    def path(self) -> Any:
+        return getattr(self._store, "path", None)
+
+    @property
+    def backend(self) -> Any:
+        return getattr(self._store, "backend", None)
+
+    @property
+    def verify(self) -> bool:
+        return bool(getattr(self._store, "verify", True))
+
+    def block_ranges(self, *, rows: int | None = None,
+                     block_bytes: int | None = None) -> list[tuple[int, int]]:
+        """Consecutive row ranges (the store's, or ``rows`` at a time in memory)."""
+        if self._store is not None:
+            return self._store.block_ranges(rows=rows, block_bytes=block_bytes)
+        step = int(rows) if rows else max(1, self.n_rows)
+        return [(a, min(a + step, self.n_rows)) for a in range(0, self.n_rows, step)]
+
+    def read_block(self, start: int, stop: int) -> Any:
+        """Rows ``start:stop`` (the store's block, with its read figures)."""
+        if self._store is not None:
+            return self._store.read_block(start, stop)
+        t = None if self._targets is None else self._targets[start:stop]
+        w = None if self._weights is None else self._weights[start:stop]
+        return SourceBlock(start, stop, self._X[start:stop], t, w)
 
     def blocks(self, rows: int) -> Iterator[SourceBlock]:
         """Yield consecutive row blocks of at most ``rows`` rows."""
@@ -171,17 +202,29 @@ def _in_memory(X: Any, targets: Any = None, weights: Any = None) -> DataSource:
     )
 
 
-def open_source(source: Any) -> DataSource:
+def open_source(source: Any, *, files: dict | None = None) -> DataSource:
     """Wrap a store path, an open store, a CSR matrix or ``(X, targets[, weights])``.
+
+    A path that is a Matrix Market (``.mtx``) or ``.npz`` file, not a store, is
+    read directly (:mod:`ranktide.scoring.files`); ``files`` then holds the
+    ingest-style ``labels``, ``values``, ``tags``, ``weights`` and ``memory``.
 
     Raises
     ------
     StoreError
-        When a path is not a readable store.
+        When a path is neither a store nor such a file (the message says to
+        run ``ranktide ingest`` first).
     InputError
         When in-memory input is malformed.
     """
+    files = {k: v for k, v in (files or {}).items() if v is not None}
     if isinstance(source, (str, os.PathLike)):
+        p = Path(source)
+        if p.is_file() and not _is_hdf5(p):
+            return _from_store(open_file_source(p, **files), str(source))
+        if files.keys() - {"memory"}:
+            raise ConfigError(f"{p}: --labels, --values, --tags and --weights go with a Matrix "
+                              "Market or .npz file; a store holds its own targets")
         store = open_store(source)
         return _from_store(store, str(source))
     if hasattr(source, "blocks") and hasattr(source, "shape"):
@@ -191,6 +234,12 @@ def open_source(source: Any) -> DataSource:
             raise InputError("<array>: pass (X,), (X, targets) or (X, targets, weights)")
         return _in_memory(*source)
     return _in_memory(source)
+
+
+def _is_hdf5(p: Path) -> bool:
+    """An HDF5 file (an HDF5 store) by its signature (HDF5 file format specification)."""
+    with open(p, "rb") as fh:
+        return fh.read(8) == b"\x89HDF\r\n\x1a\n"
 
 
 def _from_store(store: Any, name: str) -> DataSource:
@@ -321,6 +370,20 @@ def _metrics_of_block(blk: Any, state: tuple) -> Any:
     return acc
 
 
+def _merge_metrics(parts: list) -> Any:
+    """Fold metric sums in block order (the pass's combine)."""
+    acc = parts[0]
+    for p in parts[1:]:
+        acc = acc.merge(p)
+    return acc
+
+
+def _refuse_cluster_on_file(src: DataSource, backend: str) -> None:
+    if backend == "dask" and getattr(src._store, "backend", None) == "file":
+        raise ConfigError(f"{src.name}: --cluster reads a store the workers can open; run "
+                          f"`ranktide ingest {src.name} --out STORE` first")
+
+
 def evaluate(
     model: Any,
     source: Any,
@@ -329,6 +392,8 @@ def evaluate(
     block_rows: int | None = None,
     progress: bool = False,
     backend: str = "serial",
+    files: dict | None = None,
+    profile: Any = None,
 ) -> dict[str, Any]:
     """Evaluate ``model`` on labelled data, streamed block by block.
 
@@ -347,9 +412,17 @@ def evaluate(
         Rows per block; default keeps a block's dense scores near 64 MiB.
     progress : bool
         Show a progress bar on a terminal.
-    backend : {"serial", "dask"}
-        ``"dask"`` scores the blocks on the current dask.distributed client's
-        workers and merges their metric sums in block order.
+    backend : str
+        A pass-engine backend (:func:`ranktide.passes.engine.run_pass`):
+        ``"serial"`` (reads the next block while one is scored), ``"threads"``,
+        or ``"dask"`` (the current dask.distributed client's workers; metric
+        sums merged in block order).
+    files : dict, optional
+        With a Matrix Market or ``.npz`` file as ``source``: ``labels``,
+        ``values``, ``tags``, ``weights`` (files, as ``ranktide ingest`` takes
+        them) and ``memory`` (the budget a ``.npz`` is loaded within).
+    profile : ranktide.passes.engine.PassProfile, optional
+        Per block and phase timings of the pass.
 
     Returns
     -------
@@ -368,17 +441,21 @@ def evaluate(
     """
     model = as_model(model)
     close = isinstance(source, (str, os.PathLike))
-    src = open_source(source)
+    src = open_source(source, files=files)
     try:
+        if hasattr(src._store, "use_output_names") and model_names(model) is not None:
+            src._store.use_output_names(model_names(model))  # a labels file: by name
+            src.output_names = src._store.output_names
+            src.n_outputs = src._store.n_outputs
         _, k = check_compatible(model, src, need_targets=True)
-        acc = make_metrics(str(model.loss), n_outputs=k, top_k=top_k,
-                           output_names=model_names(model))
+        _refuse_cluster_on_file(src, backend)
+        empty = make_metrics(str(model.loss), n_outputs=k, top_k=top_k,
+                             output_names=model_names(model))
         rows = score_block_rows(k, block_rows)
         state = (model, k, top_k, src.name, src.target_kind)
-        with progress_bar(src.n_rows, enabled=progress, desc="evaluate") as bar:
-            for a, z, part in src.map_blocks(rows, _metrics_of_block, state, backend=backend):
-                acc.merge(part)
-                bar.update(z - a)
+        acc = run_pass(src, _metrics_of_block, _merge_metrics, state=state, backend=backend,
+                       block_rows=rows, progress=progress, desc="evaluate", profile=profile)
+        acc = empty if acc is None else acc
         if not acc.total_weight > 0:
             raise InputError(
                 f"{src.name}: {acc.n_rows} rows and no positive row weight; evaluate on a "

@@ -31,7 +31,9 @@ import numpy as np
 from ranktide.atomic import atomic_dir
 from ranktide.errors import ConfigError, OutputExistsError
 from ranktide.losses import get_loss
+from ranktide.passes.engine import run_pass
 from ranktide.scoring.evaluate import (
+    _refuse_cluster_on_file,
     as_model,
     check_compatible,
     model_names,
@@ -177,6 +179,7 @@ def predict_to_file(
     progress: bool = False,
     overwrite: bool = False,
     backend: str = "serial",
+    memory: Any = None,
 ) -> dict[str, Any]:
     """Predict every row of ``source`` and write the predictions to ``out``.
 
@@ -185,8 +188,9 @@ def predict_to_file(
     model : Model or path
         A loaded :class:`ranktide.model.Model` or its directory.
     source : path, Store, or scipy sparse matrix
-        The rows to predict: a store (targets are ignored) or an in-memory
-        (n, d) matrix.
+        The rows to predict: a store (targets are ignored), a Matrix Market
+        (``.mtx``) or ``.npz`` file read directly (:mod:`ranktide.scoring.files`),
+        or an in-memory (n, d) matrix.
     out : path
         Output file; its suffix picks the format (see the module docstring).
     top_k : int
@@ -199,9 +203,12 @@ def predict_to_file(
         Show a progress bar on a terminal.
     overwrite : bool
         Replace an existing ``out``.
-    backend : {"serial", "dask"}
-        ``"dask"`` scores the blocks on the current dask.distributed client's
-        workers (a few blocks in flight) and writes them here in row order.
+    backend : str
+        A pass-engine backend: ``"serial"`` (reads the next block while one is
+        scored), ``"threads"``, or ``"dask"`` (the current dask.distributed
+        client's workers, a few blocks in flight, written here in row order).
+    memory : int or str, optional
+        Budget within which a ``.npz`` source is loaded (default a quarter of RAM).
 
     Returns
     -------
@@ -227,9 +234,10 @@ def predict_to_file(
     if proba and squared:
         raise ConfigError("--proba: a squared-loss model predicts values, not probabilities")
     close = isinstance(source, (str, os.PathLike))
-    src = open_source(source)
+    src = open_source(source, files={"memory": memory})
     try:
         _, k = check_compatible(model, src, need_targets=False)
+        _refuse_cluster_on_file(src, backend)
         return _write(model, src, out, fmt, k=k, top_k=min(int(top_k), k), proba=proba,
                       squared=squared, block_rows=block_rows, progress=progress,
                       overwrite=overwrite, backend=backend)
@@ -273,15 +281,49 @@ def _write(model: Any, src: Any, out: Path, fmt: str, *, k: int, top_k: int, pro
             "top_k": top_k if top else None, "values": kind}
 
 
+class _WriteInOrder:
+    """The pass's combine for predictions: each block's rows go to the output in block order.
+
+    The engine folds partials strictly in block order on this process, so
+    ``combine([acc, block])`` writes the block and keeps only a count: memory
+    holds the blocks in flight, never the predictions.
+    """
+
+    def __init__(self, writer: Any) -> None:
+        self.writer = writer
+
+    def __call__(self, parts: list) -> int:
+        done = 0
+        for part in parts:
+            if isinstance(part, int):
+                done += part
+                continue
+            start, labels, vals = part
+            self.writer.write(start, labels, vals)
+            done += vals.shape[0]
+        return done
+
+
 def _fill(writer: Any, model: Any, src: Any, *, k: int, top_k: int, proba: bool, top: bool,
           block_rows: int | None, progress: bool, backend: str = "serial") -> None:
     rows = score_block_rows(k, block_rows)
     state = (model, top_k, proba, top)
-    with progress_bar(src.n_rows, enabled=progress, desc="predict") as bar:
-        for a, z, (labels, vals) in src.map_blocks(rows, _predict_block, state,
-                                                   backend=backend):
-            writer.write(a, labels, vals)
-            bar.update(z - a)
+    if backend == "dask":
+        # a worker's range would come back whole; the cluster map keeps a few blocks in flight
+        with progress_bar(src.n_rows, enabled=progress, desc="predict") as bar:
+            for a, z, (labels, vals) in src.map_blocks(rows, _predict_block, state,
+                                                       backend=backend):
+                writer.write(a, labels, vals)
+                bar.update(z - a)
+        return
+    run_pass(src, _predict_rows, _WriteInOrder(writer), state=state, backend=backend,
+             block_rows=rows, progress=progress, desc="predict")
+
+
+def _predict_rows(blk: Any, state: tuple) -> tuple[int, np.ndarray | None, np.ndarray]:
+    """One block's first row, top labels and values (a module-level block function)."""
+    labels, vals = _predict_block(blk, state)
+    return int(blk.start), labels, vals
 
 
 def _predict_block(blk: Any, state: tuple) -> tuple[np.ndarray | None, np.ndarray]:

@@ -182,7 +182,7 @@ def _check_predict_csv(case, proba, ranktide):
         return
     word = "prob" if proba else "score"
     assert header == ["row", "label_1", f"{word}_1", "label_2", f"{word}_2", "label_3", f"{word}_3"]
-    idx, scores = model.top_k(case["X"], 3)  # reference: the API
+    _labels, scores, idx = model.top_k(case["X"], 3)  # reference: the API
     if proba:
         scores = np.take_along_axis(model.predict_proba(case["X"]), idx, axis=1)
     name_id = {n: j for j, n in enumerate(model.names)}
@@ -209,7 +209,7 @@ def test_predict_npy_and_zarr(case, ranktide):
     if case["loss"] == "squared":
         np.testing.assert_allclose(g["values"][:], model.scores(case["X"]), rtol=1e-6)
     else:
-        idx, sc = model.top_k(case["X"], 2)
+        _labels, sc, idx = model.top_k(case["X"], 2)
         np.testing.assert_array_equal(g["labels"][:], idx)
         np.testing.assert_allclose(g["scores"][:], sc, rtol=1e-6, atol=1e-6)
         assert g.attrs["output_names"] == model.names

@@ -253,16 +253,19 @@ def test_evaluate_and_predict_on_cluster_equal_serial(tmp_path, client):
     assert (tmp_path / "serial.csv").read_text() == (tmp_path / "dask.csv").read_text()
 
 
-def test_cluster_needs_a_store_for_evaluate(client):
+def test_evaluate_in_memory_data_on_the_cluster_equals_serial(client):
+    # evaluate runs through the pass engine, whose dask backend ships in-memory sources
+    from ranktide.model import Model
     from ranktide.scoring.evaluate import evaluate
 
     rng = np.random.default_rng(0)
     X = sp.random(50, 10, density=0.2, format="csr", random_state=0)
-    from ranktide.model import Model
-
+    y = rng.integers(0, 3, 50)
     m = Model(U=np.eye(10, 2), s=np.ones(2), V=np.eye(3, 2), b=np.zeros(3), loss="softmax")
-    with pytest.raises(ConfigError, match="need a store path"):
-        evaluate(m, (X, rng.integers(0, 3, 50)), backend="dask")
+    on_cluster = evaluate(m, (X, y), backend="dask", block_rows=7)
+    serial = evaluate(m, (X, y), block_rows=7)
+    for key in ("accuracy", "log_loss", "macro_f1", "total_weight"):
+        assert on_cluster[key] == pytest.approx(serial[key], rel=1e-12)
 
 
 @pytest.mark.parametrize("dense", [True, False])
