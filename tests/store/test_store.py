@@ -398,7 +398,8 @@ class StoreContract:
         # counted from 1, as Matrix Market does
         with pytest.raises(InputError, match=r"row 2, column 2: value inf is not finite"):
             write_store(path, bad_value, backend=be)
-        with pytest.raises(InputError, match=r"row 1: column id 5 is outside 0..3 \(column 6 of 4\)"):
+        with pytest.raises(InputError,
+                           match=r"row 1: column id 5 is outside 0..3 \(column 6 of 4\)"):
             with create_store(path, n_cols=4, backend=be) as w:
                 w.append(np.array([0, 1]), np.array([5]), np.array([1.0]))
         with pytest.raises(InputError, match=r"row 2: column ids 2 then 2 are not strictly"):
