@@ -13,6 +13,14 @@ on the cached projections ``A = X U`` with a smaller ``lam``: no second solver.
 The refit whose validation score is best wins; the model without refit is the
 first candidate, so a refit is kept only when validation improves on it.
 
+Features that never occur in the training rows get zero rows in every candidate:
+the data cannot see those rows of ``U``, so zeroing them leaves the loss as it is
+and can only lower the trace norm (``||P W||_* <= ||W||_*`` for the projection
+``P`` onto the present coordinates); the solver's random fill directions leave
+tiny values there otherwise. The first candidate is the path's model with those
+rows zeroed (re-factored: same scores on every training row), and the model file
+then stores only the present rows (:mod:`ranktide.model`).
+
 Relaxed fits of this kind after a convex selection step are common in sparse
 regression (Meinshausen 2007, relaxed lasso; Belloni & Chernozhukov 2013,
 post-selection least squares); here the "selection" is the subspace.
@@ -29,6 +37,7 @@ from typing import Any
 import numpy as np
 from ranktide.errors import ConfigError
 from ranktide.kernels.sparse import csr_matmul_dense
+from ranktide.kernels.svd import svd
 from ranktide.model import Model
 from ranktide.solver.refine import refine
 
@@ -46,7 +55,8 @@ class DebiasResult:
     Attributes
     ----------
     model : Model
-        The best model by validation (the input model when no refit beat it).
+        The best model by validation (the input model, its rows of absent features
+        zeroed, when no refit beat it).
     factor : float
         ``lam`` factor of the kept model (1.0: the input model was kept).
     tried : list of dict
@@ -70,19 +80,37 @@ def projection_bytes(n: int, r: int, k: int) -> int:
     return 8 * int(n) * (int(r) + 4 * int(k))
 
 
-def _projections(src: Any, U: np.ndarray, block_rows: int | None) -> tuple[list, list, list]:
-    """``X U`` per block (n_b, r) with the blocks' targets and weights."""
+def _projections(src: Any, U: np.ndarray,
+                 block_rows: int | None) -> tuple[list, list, Any, np.ndarray]:
+    """``X U`` per block (n_b, r), the blocks' targets and weights, and which of the d
+    features occur in the data (bool (d,))."""
     A, Y, w = [], [], []
+    present = np.zeros(U.shape[0], dtype=bool)
     for a, b in src.block_ranges(rows=block_rows):
         blk = src.read_block(a, b)
         X = blk.X
+        present[X.indices] = True
         out = np.zeros((X.shape[0], U.shape[1]))
         A.append(csr_matmul_dense(X.indptr, X.indices, X.data, U, out, where="X"))
         Y.append(blk.targets)
         w.append(blk.weights)
     if all(x is None for x in w):
         w = None
-    return A, Y, w
+    return A, Y, w, present
+
+
+def _present_basis(model: Model, present: np.ndarray,
+                   A: list) -> tuple[np.ndarray, list, np.ndarray]:
+    """An orthonormal basis (d, r') of ``P U`` (rows of absent features zeroed), the
+    projections in it (``X basis = X U T``, since ``X P = X``) and the model's
+    coefficients in it (r', k): ``basis @ N0 = P U diag(s) V^T``."""
+    P, S, Qt = svd(model.U[present])
+    keep = S > (S[0] * 1e-10 if S.size else 0.0)
+    basis = np.zeros((model.n_features, int(keep.sum())))
+    basis[present] = P[:, keep]
+    T = Qt[keep].T / S[keep]
+    N0 = (S[keep, None] * Qt[keep]) @ (model.s[:, None] * model.V.T)
+    return basis, [a @ T for a in A], N0
 
 
 def debias(
@@ -132,27 +160,35 @@ def debias(
     if any(not (0 < f < 1) for f in factors):
         raise ConfigError(f"debias: factors {list(factors)!r} must lie in (0, 1)")
     t0 = time.perf_counter()
-    base = score(model)
-    tried = [{"factor": 1.0, "lam": lam, "rank": model.rank, "score": base, "iterations": 0,
-              "seconds": 0.0}]
-    n = int(src.shape[0])
-    need = projection_bytes(n, model.rank, model.n_outputs)
+
+    def unchanged(why: str) -> DebiasResult:
+        row = {"factor": 1.0, "lam": lam, "rank": model.rank, "score": score(model),
+               "iterations": 0, "seconds": 0.0}
+        return DebiasResult(model, 1.0, [row], time.perf_counter() - t0, skipped=why)
+
+    need = projection_bytes(int(src.shape[0]), model.rank, model.n_outputs)
     if model.rank == 0 or not factors:
-        return DebiasResult(model, 1.0, tried, time.perf_counter() - t0,
-                            skipped="the model has rank 0" if model.rank == 0 else "no factors")
+        return unchanged("the model has rank 0" if model.rank == 0 else "no factors")
     if max_bytes is not None and need > max_bytes:
-        return DebiasResult(model, 1.0, tried, time.perf_counter() - t0,
-                            skipped=f"the refit needs {need / 2**20:.0f} MiB, over the "
-                                    f"budget of {max_bytes / 2**20:.0f} MiB")
-    A, Y, w = _projections(src, model.U, block_rows)
-    best, best_score, best_factor = model, base, 1.0
-    N, b = model.s[:, None] * model.V.T, model.b
+        return unchanged(f"the refit needs {need / 2**20:.0f} MiB, over the budget of "
+                         f"{max_bytes / 2**20:.0f} MiB")
+    A, Y, w, present = _projections(src, model.U, block_rows)
+    basis, A, N = _present_basis(model, present, A)
+    if basis.shape[1] == 0:
+        return unchanged("the model's directions lie on features absent from the data")
+    a_, s_, bt_ = svd(N)
+    nz = s_ > 0
+    best = replace(model, U=basis @ a_[:, nz], s=s_[nz], V=bt_[nz].T)
+    best_score = score(best)
+    tried = [{"factor": 1.0, "lam": lam, "rank": best.rank, "score": best_score,
+              "iterations": 0, "seconds": time.perf_counter() - t0}]
+    best_factor, b = 1.0, model.b
     for f in factors:
         t1 = time.perf_counter()
         res = refine(A, Y, w, model.loss, f * lam, N, b, tol=tol, max_iter=max_iter,
                      class_weights=class_weights)
         N, b = res.N, res.b
-        cand = replace(model, U=model.U @ res.A, s=res.s, V=res.B, b=res.b)
+        cand = replace(model, U=basis @ res.A, s=res.s, V=res.B, b=res.b)
         sc = score(cand)
         tried.append({"factor": f, "lam": f * lam, "rank": int(res.s.size), "score": sc,
                       "iterations": res.iterations, "seconds": time.perf_counter() - t1})

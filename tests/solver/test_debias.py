@@ -39,8 +39,9 @@ def test_refit_solves_the_subspace_problem_like_clarabel():
     X, y = _problem()
     m = _model(20, 4, 3, seed=1)
     lam = 0.05
-    # a score that prefers any refit to the input model, so the refit is kept
-    res = debias(m, as_source((X, y)), lam=lam, score=lambda mm: float(mm is not m),
+    # a score that grows with each call: the last candidate (the refit) is kept
+    calls = iter(range(100))
+    res = debias(m, as_source((X, y)), lam=lam, score=lambda mm: float(next(calls)),
                  higher=True, factors=(0.4,), tol=1e-9, max_iter=3000)
     assert res.factor == 0.4 and [t["factor"] for t in res.tried] == [1.0, 0.4]
     # the kept model lives in span(U): U U^T W = W
@@ -54,11 +55,14 @@ def test_refit_solves_the_subspace_problem_like_clarabel():
 def test_refit_kept_only_when_validation_improves():
     X, y = _problem(seed=2)
     m = _model(20, 4, 3, seed=3)
-    res = debias(m, as_source((X, y)), lam=0.05, score=lambda mm: float(mm is m),
+    # a score that prefers more shrinkage: every refit (smaller penalty) scores worse
+    res = debias(m, as_source((X, y)), lam=0.05, score=lambda mm: -float(mm.s.sum()),
                  higher=True, factors=(0.3, 0.1))
-    assert res.factor == 1.0 and res.model is m  # every refit scored worse
-    assert [t["factor"] for t in res.tried] == [1.0, 0.3, 0.1]
+    assert res.factor == 1.0 and [t["factor"] for t in res.tried] == [1.0, 0.3, 0.1]
     assert res.tried[0]["score"] == max(t["score"] for t in res.tried)
+    # the kept model is the input re-factored: the same W (numpy dense products)
+    np.testing.assert_allclose(res.model.U @ (res.model.s[:, None] * res.model.V.T),
+                               m.U @ (m.s[:, None] * m.V.T), atol=1e-12)
     small = debias(m, as_source((X, y)), lam=0.05, score=lambda mm: 0.0, higher=True,
                    factors=(0.3,), max_bytes=100)
     assert small.model is m and "over the budget" in small.skipped
@@ -83,3 +87,25 @@ def test_path_records_the_refit_and_keeps_validation_at_least(tmp_path):
     assert refit["tried"][0]["score"] == pytest.approx(res.path[res.best_index].score)
     kept = max(t["score"] for t in refit["tried"])
     assert next(t for t in refit["tried"] if t["factor"] == refit["kept_factor"])["score"] == kept
+
+
+def test_rows_of_features_absent_from_training_are_zeroed(tmp_path):
+    from ranktide.model import save_model
+
+    X, y = _problem(seed=5)
+    X = sp.csr_matrix(X.multiply(np.r_[np.ones(15), np.zeros(5)][None, :]))  # 15..19 absent
+    X.eliminate_zeros()
+    m = _model(20, 4, 3, seed=6)  # random U: non-zero on every row
+    calls = iter(range(100))  # a score that falls with each call: the first candidate wins
+    res = debias(m, as_source((X, y)), lam=0.05, score=lambda mm: -float(next(calls)),
+                 higher=True, factors=(0.3,))
+    assert res.factor == 1.0
+    np.testing.assert_array_equal(res.model.U[15:], 0.0)
+    # the same scores on every training row (numpy dense products as the reference)
+    Xd = X.toarray()
+    np.testing.assert_allclose(Xd @ res.model.U @ (res.model.s[:, None] * res.model.V.T),
+                               Xd @ m.U @ (m.s[:, None] * m.V.T), atol=1e-12)
+    assert res.model.s.sum() <= m.s.sum() + 1e-12  # ||P W||_* <= ||W||_*
+    save_model(tmp_path / "m", res.model)
+    with np.load(tmp_path / "m" / "factors.npz", allow_pickle=False) as z:
+        np.testing.assert_array_equal(z["U_rows"], np.arange(15))
