@@ -13,9 +13,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from ranktide.errors import CheckpointError, ConfigError, ModelError
+from ranktide.errors import CheckpointError, ModelError
 from ranktide.model import load_model
-from ranktide.runs.checkpoint import CheckpointSchedule
+from ranktide.runs.config import TrainConfig
 from ranktide.runs.rundir import RESUME_MUTABLE, RunDir, RunRecorder, check_resume_compatible
 from ranktide.runs.train import TrainResult, train
 from ranktide.signals import StopFlag
@@ -156,22 +156,6 @@ def _resume_backend(saved: str) -> str:
     return "serial" if saved == "dask" else saved
 
 
-def _check_changes(changes: Mapping[str, Any]) -> None:
-    """Validate new budgets and cadence before anything in the run is touched."""
-    tol = changes.get("tol")
-    if tol is not None and not (0 < tol < 1):
-        raise ConfigError(f"--tol {tol}: must lie in (0, 1)")
-    passes = changes.get("max_passes")
-    if passes is not None and int(passes) < 1:
-        raise ConfigError(f"--max-passes {passes}: must be >= 1")
-    secs = changes.get("max_seconds")
-    if secs is not None and not secs > 0:
-        raise ConfigError(f"--max-seconds {secs}: must be > 0")
-    CheckpointSchedule(
-        seconds=changes.get("checkpoint_seconds", 60.0), passes=changes.get("checkpoint_passes")
-    )
-
-
 def resume(
     run_dir: str | os.PathLike,
     *,
@@ -225,38 +209,14 @@ def resume(
         "checkpoint_passes": checkpoint_passes,
     }
     changes = {k: v for k, v in given.items() if v is not None}
-    _check_changes(changes)
+    # the saved configuration with the allowed changes, validated before the run is touched
+    config = TrainConfig.from_settings(run.settings).with_changes(changes, run=str(run.path))
     with open_store(where) as src:
         point = load_resume_point(run.path, fingerprint=src.fingerprint, changes=changes)
         done = finished_result(point)
         if done is not None:  # converged and not reopened: keep its model and certificate
             return done
-        s = point.run.settings
-        cw = s.get("class_weights")
-        return train(
-            src,
-            loss=s["loss"],
-            lam=s.get("lam"),
-            lam_frac=s.get("lam_frac"),
-            path=s.get("path"),
-            path_min_frac=s.get("path_min_frac", 0.01),
-            valid=s.get("valid"),
-            tol=s["tol"],
-            max_passes=s["max_passes"],
-            max_seconds=s.get("max_seconds"),
-            memory=s.get("memory"),
-            seed=s["seed"],
-            block_rows=s.get("block_rows"),
-            backend=backend or _resume_backend(s.get("backend", "serial")),
-            class_weight=None if cw is None else np.asarray(cw, dtype=np.float64),
-            callback=callback,
-            progress=progress,
-            on_pass=on_pass,
-            dense_gradient=s.get("dense_gradient"),
-            power_size=s.get("power_size", 6),
-            expand_size=s.get("expand_size", 6),
-            checkpoint_seconds=s.get("checkpoint_seconds", 60.0),
-            checkpoint_passes=s.get("checkpoint_passes"),
-            stop=stop,
-            resume_point=point,
-        )
+        kw = config.train_kwargs()
+        kw["backend"] = backend or _resume_backend(kw["backend"])
+        return train(src, **kw, callback=callback, progress=progress, on_pass=on_pass,
+                     stop=stop, resume_point=point)
