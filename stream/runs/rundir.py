@@ -59,6 +59,7 @@ __all__ = [
 RUN_FORMAT = "ranktide-run"
 RUN_VERSION = 1
 
+
 def _show(value: Any) -> str:
     text = canonical_json(value)
     return text if len(text) <= 40 else text[:37] + "..."
