@@ -14,16 +14,16 @@ from __future__ import annotations
 
 import csv
 import io
-import json
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from ranktide.atomic import atomic_write_bytes, atomic_write_json, load_npz
+from ranktide.atomic import atomic_write_bytes, atomic_write_json
 from ranktide.errors import ConfigError, ModelError
 from ranktide.losses import LOSS_NAMES, TARGET_KIND
+from ranktide.model import load_model
 from ranktide.passes.budget import format_bytes, plan_blocks
 from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
@@ -110,32 +110,11 @@ def _request(src: Any, *, model: Any, rank: int, power_cols: int, seed: Any,
 
 
 def _load_factors(model: Any) -> tuple[np.ndarray, ...]:
-    """``U, s, V, b, loss`` of a Model or of a model directory.
-
-    The directory needs ``factors.npz`` (U, s, V, b) and ``model.json`` with
-    the key ``"loss"``; shapes are checked against the data by the pass.
-    """
-    if hasattr(model, "U") and hasattr(model, "loss"):
-        return model.U, model.s, model.V, model.b, model.loss
-    p = Path(model)
-    if not p.is_dir():
-        raise ModelError(f"{p}: no such model directory; pass the directory written by train")
-    meta = p / "model.json"
-    try:
-        doc = json.loads(meta.read_text())
-    except FileNotFoundError:
-        raise ModelError(f"{meta}: file not found; a model directory needs model.json") from None
-    except (OSError, ValueError) as exc:
-        raise ModelError(f"{meta}: not readable JSON ({exc}); re-save the model") from None
-    loss = doc.get("loss") if isinstance(doc, dict) else None
-    if loss not in LOSS_NAMES:
-        raise ModelError(f"{meta}: loss {loss!r} is not one of {', '.join(LOSS_NAMES)}; "
-                         "re-save the model")
-    arrays = load_npz(p / "factors.npz", error=ModelError)
-    missing = [k for k in ("U", "s", "V", "b") if k not in arrays]
-    if missing:
-        raise ModelError(f"{p / 'factors.npz'}: lacks {', '.join(missing)}; re-save the model")
-    return arrays["U"], arrays["s"], arrays["V"], arrays["b"], loss
+    """``U, s, V, b, loss`` of a Model or of a model directory (read by
+    :func:`ranktide.model.load_model`, every format version; shapes are checked
+    against the data by the caller)."""
+    m = model if hasattr(model, "U") and hasattr(model, "loss") else load_model(model)
+    return m.U, m.s, m.V, m.b, m.loss
 
 
 def _warm_up(src: Any, req: PassRequest) -> None:

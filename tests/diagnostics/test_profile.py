@@ -145,21 +145,24 @@ def test_cli_profile_bad_options(tmp_path, capsys, argv, msg):
 
 
 def test_cli_profile_bad_model(tmp_path, capsys):
-    from ranktide.atomic import save_npz
+    from ranktide.model import Model, save_model
     from ranktide.store import write_store
 
     src, X = _source(n=50, d=20, k=3)
     write_store(tmp_path / "s.zarr", X, src.targets).close()
     m = tmp_path / "m"
     m.mkdir()
-    (m / "model.json").write_text('{"loss": "softmax"}')
-    save_npz(m / "factors.npz", {"U": np.zeros((20, 1)), "s": np.ones(1)})
+    (m / "model.json").write_text('{"loss": "softmax"}')  # not written by ranktide
     assert main(["profile", str(tmp_path / "s.zarr"), "--model", str(m), "--quiet"]) == 2
-    assert "lacks V, b" in capsys.readouterr().err
-    # a 21-feature model on 20-feature data
-    save_npz(m / "factors.npz", {"U": np.zeros((21, 1)), "s": np.ones(1), "V": np.zeros((3, 1)),
-                                 "b": np.zeros(3)})
-    assert main(["profile", str(tmp_path / "s.zarr"), "--model", str(m), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "not a ranktide model" in err and len(err.splitlines()) == 1
+    # a 21-feature model on 20-feature data, read by the model loader (any format version)
+    rng = np.random.default_rng(0)
+    U, _ = np.linalg.qr(rng.normal(size=(21, 1)))
+    save_model(tmp_path / "m21", Model(loss="softmax", U=U, s=np.ones(1), V=np.eye(3)[:, :1],
+                                       b=np.zeros(3)))
+    assert main(["profile", str(tmp_path / "s.zarr"), "--model", str(tmp_path / "m21"),
+                 "--quiet"]) == 2
     assert "has 20 features and 3 outputs but the model is 21 x 3" in capsys.readouterr().err
 
 
