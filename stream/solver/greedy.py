@@ -1122,10 +1122,12 @@ class GreedySolver:
             est = max(est, sigma1)
         st.set_krylov(kry)
         rec["krylov_cols"] = int(kry.R.shape[1] + kry.L.shape[1])
-        if st.phase != "lam_max" and st.lam_max is not None and est > st.lam_max:
-            # still W = 0 at b0: the bound grew, and lam_max (and a lam_frac lam) with it
+        if (st.phase != "lam_max" and st.lam_max is not None and est > st.lam_max
+                and (cfg.lam is not None or cfg.lam_frac is not None)):
+            # still W = 0 at b0: the bound grew, and lam_max (and a lam_frac lam) with it;
+            # not on a regularization path, whose grid was set from the first value
             st.lam_max = est
-            if cfg.lam is None and cfg.lam_frac is not None and st.path_index == 0:
+            if cfg.lam is None:
                 st.lam = cfg.lam_frac * est
             rec["lam_max_raised"] = est
         return est
