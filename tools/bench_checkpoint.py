@@ -153,7 +153,7 @@ def main(argv: list[str] | None = None) -> int:
                             per_row=args.per_row, seed=args.seed)  # fmt: skip
         store = work / "picks.zarr"
         write_store(store, X, y, kind="classes").close()
-        settings = dict(loss="softmax", lam_frac=0.2, tol=1e-6, max_passes=args.max_passes,
+        settings = dict(loss="softmax", lam_scale=0.2, tol=1e-6, max_passes=args.max_passes,
                         seed=args.seed, dense_gradient=False)  # fmt: skip
         # warm-up: compile the kernels outside the timed runs
         train(str(store), **dict(settings, max_passes=2))

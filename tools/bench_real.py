@@ -10,7 +10,7 @@ seed):
 
 ``ranktide``
     The default workflow and nothing tuned: ``ingest`` the train, validation and test
-    ``.mtx`` + labels into stores (ranktide API), ``train(loss="softmax", path=--path,
+    ``.mtx`` + labels into stores (ranktide API), ``train(loss="softmax", path_steps=--path,
     valid=<val store>)``, then the chosen model scores the test rows.  ``fit_s`` is the
     whole ``train`` call (lam_max, every path value, the final step), ``ingest_s``
     beside it.
@@ -111,7 +111,7 @@ def model_facts(res, model_dir: Path, k: int) -> dict:
 def train_ranktide(args: argparse.Namespace, loss: str, stores: dict, run: Path) -> tuple:
     """The default workflow's training call; returns (TrainResult, seconds)."""
     t0 = time.perf_counter()
-    res = train(str(stores["train"]), loss=loss, path=args.path, valid=str(stores["val"]),
+    res = train(str(stores["train"]), loss=loss, path_steps=args.path, valid=str(stores["val"]),
                 out=str(run), overwrite=True, seed=args.seed, memory=args.memory,
                 checkpoint_seconds=None)
     return res, time.perf_counter() - t0

@@ -1,7 +1,7 @@
 """Benchmark: the exact refinement against the gradient-corrected sampled refinement.
 
 The planted low-rank softmax problem of tools/bench_solver.py (sparse rows,
-Zipf-like feature frequencies) at lam = lam_frac * lam_max, large enough in n
+Zipf-like feature frequencies) at lam = lam_scale * lam_max, large enough in n
 that the exact refinement's inner steps (n q k each) cost more than the pass.
 The same solver runs with ``refine_sample_rows`` = 0 (exact) and with each
 requested sample size (``auto`` = the solver's own choice), in one process,
@@ -109,7 +109,7 @@ def parse(argv):
     ap.add_argument("--k", type=int, default=200)
     ap.add_argument("--nnz-row", type=int, default=40)
     ap.add_argument("--rank", type=int, default=10, help="rank of the planted weights")
-    ap.add_argument("--lam-frac", type=float, default=0.1)
+    ap.add_argument("--lam-scale", type=float, default=0.1)
     ap.add_argument("--tol", type=float, default=1e-4, help="solver tolerance (stop)")
     ap.add_argument("--max-passes", type=int, default=80)
     ap.add_argument("--cap", type=float, default=1800.0, help="seconds per run")
@@ -139,7 +139,7 @@ def main(argv=None) -> int:
     probe.run()
     lam_max = float(probe.state.lam_max)
     probe.close()
-    lam = args.lam_frac * lam_max
+    lam = args.lam_scale * lam_max
     samples: list[int | None] = [None if s == "auto" else int(s)
                                  for s in args.samples.split(",")]
     runs = []
@@ -184,7 +184,7 @@ def main(argv=None) -> int:
     for r in ratios:
         print("  ", {k: (round(v, 3) if isinstance(v, float) else v) for k, v in r.items()})
     meta = {"n": args.n, "d": args.d, "k": args.k, "nnz_row": args.nnz_row, "rank": args.rank,
-            "lam_frac": args.lam_frac, "lam_max": lam_max, "lam": lam, "tol": args.tol,
+            "lam_scale": args.lam_scale, "lam_max": lam_max, "lam": lam, "tol": args.tol,
             "memory": args.memory, "f_best": f_best, "build_seconds": build_s,
             "cpu_count": os.cpu_count(), "thresholds": list(THRESHOLDS)}
     if args.out is not None:

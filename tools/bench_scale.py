@@ -11,9 +11,8 @@ planted rank-8 model plus Gumbel noise, written with the streaming writer
   numpy's BLAS reaches on blocks of that shape here, plus the softmax over the k
   classes at the measured rate of numpy's exp;
 
-then trains ``ranktide train --loss softmax --lam-scale 0.2 --memory 1GB`` (the
-flag's older spelling ``--lam-frac`` where that is what the CLI has) as a child process
-confined to a memory cgroup (v1: a child group of /sys/fs/cgroup/memory with
+then trains ``ranktide train --loss softmax --lam-scale 0.2 --memory 1GB`` as a child
+process confined to a memory cgroup (v1: a child group of /sys/fs/cgroup/memory with
 memory.limit_in_bytes; v2: a child group with memory.max), watches its checkpoints
 for the held-out accuracy over time, and writes JSON: seconds per pass by rank,
 pass / max(floors), the child's peak RSS, the cgroup's peak and OOM kills, the gap and
@@ -214,9 +213,7 @@ def accuracy(npz: Path, Xh: sp.csr_matrix, yh: np.ndarray) -> tuple[float, int]:
 
 
 def lam_flag() -> str:
-    helptext = subprocess.run([sys.executable, "-m", "ranktide.cli.main", "train", "--help"],
-                              capture_output=True, text=True).stdout
-    return "--lam-scale" if "--lam-scale" in helptext else "--lam-frac"
+    return "--lam-scale"
 
 
 def main(argv: list[str] | None = None) -> int:

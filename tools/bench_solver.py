@@ -1,7 +1,7 @@
 """Benchmark: the greedy low-rank solver against the dense reference solver.
 
 A planted low-rank softmax problem (sparse rows with Zipf-like feature
-frequencies) at lam = lam_frac * lam_max. Each solver runs in its own
+frequencies) at lam = lam_scale * lam_max. Each solver runs in its own
 subprocess (so peak RSS is its own; psutil polls it); every pass / objective /
 time record comes back as JSON. F* is the lowest objective of a long greedy run
 (certified by its gap estimate). Reported: passes and seconds to reach 1e-3
@@ -149,7 +149,7 @@ def child_greedy(args) -> dict:
     # kernel the real run calls is loaded
     tX, ty = _tiny_problem()
     for kw in ({}, {"dense_gradient": False}, {"memory": "8MB", "dense_gradient": False}):
-        train((tX, ty), loss="softmax", lam_frac=0.3, max_passes=3, seed=0, **kw)
+        train((tX, ty), loss="softmax", lam_scale=0.3, max_passes=3, seed=0, **kw)
     floor = _rss()
     kw = {}
     if args.streaming:
@@ -304,7 +304,7 @@ def summarize(results: dict, f_star: float) -> tuple[list[dict], dict]:
 
 def print_table(rows: list[dict], ratios: dict, meta: dict) -> None:
     print(f"problem: n={meta['n']} d={meta['d']} k={meta['k']} nnz={meta['nnz']} "
-          f"lam={meta['lam']:.6g} (= {meta['lam_frac']} lam_max) F*={meta['f_star']:.10g} "
+          f"lam={meta['lam']:.6g} (= {meta['lam_scale']} lam_max) F*={meta['f_star']:.10g} "
           f"(certified rel gap {meta['f_star_rel_gap']:.2e})")
     head = (f"{'solver':<18}{'status':>12}{'passes@1e-3':>13}{'s@1e-3':>10}{'passes@1e-4':>13}"
             f"{'s@1e-4':>10}{'passes':>8}{'seconds':>10}{'final subopt':>14}{'peak MB':>10}"
@@ -334,7 +334,7 @@ def parse(argv):
     ap.add_argument("--k", type=int, default=200)
     ap.add_argument("--nnz-row", type=int, default=40)
     ap.add_argument("--rank", type=int, default=10, help="rank of the planted weights")
-    ap.add_argument("--lam-frac", type=float, default=0.1)
+    ap.add_argument("--lam-scale", type=float, default=0.1)
     ap.add_argument("--cap", type=float, default=1200.0, help="reference time cap, seconds")
     ap.add_argument("--greedy-cap", type=float, default=None,
                     help="greedy time budget, seconds (default none)")
@@ -393,7 +393,7 @@ def _run_all(args) -> tuple[dict, float, float, list[int]]:
         runs = tmpd / "runs"
         runs.mkdir()
         lam_max = run_child("lam_max", data, runs, [])["lam_max"]
-        lam = args.lam_frac * lam_max
+        lam = args.lam_scale * lam_max
         common = ["--lam", repr(lam)]
         greedy = [*common, "--tol", repr(args.tol), "--max-passes", str(args.max_passes)]
         if args.greedy_cap is not None:
@@ -463,7 +463,7 @@ def main(argv=None) -> int:
     f_lower = g["objective"] - g_gap if np.isfinite(g_gap) else float("nan")
     rows, ratios = summarize(results, f_star)
     meta = {"n": shape[0], "d": shape[1], "k": shape[2], "nnz": shape[3],
-            "lam": lam, "lam_max": lam_max, "lam_frac": args.lam_frac, "f_star": f_star,
+            "lam": lam, "lam_max": lam_max, "lam_scale": args.lam_scale, "f_star": f_star,
             "f_star_from": best, "f_star_lower_bound": f_lower,
             "f_star_rel_gap": (f_star - f_lower) / abs(f_star), "reference_cap_s": args.cap,
             "greedy_tol": args.tol, "seed": args.seed, "blas_threads": args.blas_threads,

@@ -383,7 +383,7 @@ def _step_train(demo: _Demo) -> None:
     demo.run_dir = run
     demo.model_dir = run / "model"
     path = [(float(p.lam), p.rank, p.passes, float(p.score)) for p in result.path]
-    m = int(TRAIN_SETTINGS[demo.size]["path"])
+    m = int(TRAIN_SETTINGS[demo.size]["path_steps"])
     for j, (lam, rank, passes, score) in enumerate(path):
         where = f"{j + 1}/{m}" if j < m else f"{j + 1} (+{j + 1 - m})"
         best = "  <- chosen" if j == result.best_index else ""
@@ -434,10 +434,10 @@ def _step_report(demo: _Demo) -> None:
 
 #: A short regularization path with validation and checkpoints, per size.
 TRAIN_SETTINGS: dict[str, dict[str, Any]] = {
-    "small": {"loss": "softmax", "path": 3, "path_min_frac": 0.05, "path_extend": 2,
+    "small": {"loss": "softmax", "path_steps": 3, "path_floor": 0.05, "path_extend": 2,
               "max_passes": 6,
               "tol": 2e-2, "max_seconds": 60.0, "checkpoint_passes": 2},
-    "medium": {"loss": "softmax", "path": 5, "path_min_frac": 0.02, "max_passes": 20,
+    "medium": {"loss": "softmax", "path_steps": 5, "path_floor": 0.02, "max_passes": 20,
                "tol": 3e-3, "max_seconds": 900.0, "checkpoint_passes": 5},
 }
 

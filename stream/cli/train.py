@@ -250,8 +250,8 @@ def run(args: argparse.Namespace) -> int:
     # SIGINT/SIGTERM: checkpoint, then exit 130/143
     with cluster_backend(args) as backend, stop_on_signals() as stop:
         res = train(
-            args.store, loss=args.loss, lam=args.lam, lam_frac=args.lam_scale,
-            path=args.path_steps, path_min_frac=args.path_floor, path_extend=args.path_extend,
+            args.store, loss=args.loss, lam=args.lam, lam_scale=args.lam_scale,
+            path_steps=args.path_steps, path_floor=args.path_floor, path_extend=args.path_extend,
             valid=args.valid, tol=args.tol,
             max_passes=args.max_passes, max_seconds=args.max_seconds, memory=args.memory,
             seed=args.seed, block_rows=args.block_rows, backend=backend,

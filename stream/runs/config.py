@@ -48,10 +48,10 @@ class TrainConfig:
     Attributes
     ----------
     loss : {"softmax", "squared", "multilabel"}
-    lam, lam_frac, path : exactly one of them
+    lam, lam_scale, path_steps : exactly one of them
         The penalty, the penalty as a share of lam_max, or the number of values
         of a regularization path (which needs ``valid``).
-    path_min_frac : float in (0, 1)
+    path_floor : float in (0, 1)
         Smallest requested path value as a share of lam_max.
     path_extend : int >= 0
         How many values a path may add past its requested end while validation
@@ -77,9 +77,9 @@ class TrainConfig:
 
     loss: str
     lam: float | None = None
-    lam_frac: float | None = None
-    path: int | None = None
-    path_min_frac: float = PATH_FLOOR
+    lam_scale: float | None = None
+    path_steps: int | None = None
+    path_floor: float = PATH_FLOOR
     path_extend: int = PATH_EXTEND
     valid: str | None = None
     has_valid: bool = False
@@ -109,12 +109,12 @@ class TrainConfig:
     # ------------------------------------------------------------ the validator
     def _validate(self) -> None:
         loss = get_loss(self.loss)
-        given = [n for n in ("lam", "lam_frac", "path") if getattr(self, n) is not None]
+        given = [n for n in ("lam", "lam_scale", "path_steps") if getattr(self, n) is not None]
         if len(given) != 1:
-            raise ConfigError("train: give exactly one of lam, lam_frac and path "
+            raise ConfigError("train: give exactly one of lam, lam_scale and path_steps "
                               f"(got {', '.join(given) or 'none'})")
-        check_lam(self.lam, self.lam_frac)
-        if self.path is not None:
+        check_lam(self.lam, self.lam_scale)
+        if self.path_steps is not None:
             self._validate_path()
         # budgets and cadence are named as the command line spells them (a resume changes them)
         if not (isinstance(self.tol, (int, float)) and 0 < self.tol < 1):
@@ -139,13 +139,14 @@ class TrainConfig:
             raise ConfigError(f"train: seed = {self.seed!r}; give a whole number")
 
     def _validate_path(self) -> None:
-        if not _whole(self.path) or int(self.path) < 2:
-            raise ConfigError(f"train: path = {self.path!r}; give the number of lam values (>= 2)")
+        if not _whole(self.path_steps) or int(self.path_steps) < 2:
+            raise ConfigError(f"train: path_steps = {self.path_steps!r}; give the number of lam "
+                              "values (>= 2)")
         if not self.has_valid:
             raise ConfigError("train: a regularization path needs validation data; "
                               "pass valid= (--valid STORE)")
-        if not (isinstance(self.path_min_frac, (int, float)) and 0 < self.path_min_frac < 1):
-            raise ConfigError(f"train: path_min_frac = {self.path_min_frac!r}; it must lie in "
+        if not (isinstance(self.path_floor, (int, float)) and 0 < self.path_floor < 1):
+            raise ConfigError(f"train: path_floor = {self.path_floor!r}; it must lie in "
                               "(0, 1)")
         if not _whole(self.path_extend) or self.path_extend < 0:
             raise ConfigError(f"train: path_extend = {self.path_extend!r}; give a whole number "
@@ -172,6 +173,9 @@ class TrainConfig:
         as ``class_weights``; a resumed run uses those, not the file again.
         """
         names = {f.name for f in fields(cls)}
+        # run directories of earlier versions used other names for three settings
+        renamed = {"lam_frac": "lam_scale", "path_min_frac": "path_floor", "path": "path_steps"}
+        settings = {renamed.get(k, k): v for k, v in settings.items()}
         kw = {k: v for k, v in settings.items() if k in names}
         if settings.get("class_weights") is not None:  # the weights the run resolved
             kw["class_weight"] = list(settings["class_weights"])

@@ -307,9 +307,9 @@ def train(
     *,
     loss: str,
     lam: float | None = None,
-    lam_frac: float | None = None,
-    path: int | None = None,
-    path_min_frac: float = PATH_FLOOR,
+    lam_scale: float | None = None,
+    path_steps: int | None = None,
+    path_floor: float = PATH_FLOOR,
     path_extend: int = PATH_EXTEND,
     valid: Any = None,
     tol: float = 1e-4,
@@ -342,10 +342,10 @@ def train(
     source : store path, Store, ``(X, targets[, weights])`` or scipy CSR
         With a bare CSR matrix give ``targets=`` (and optionally ``weights=``).
     loss : {"softmax", "squared", "multilabel"}
-    lam, lam_frac, path : exactly one
+    lam, lam_scale, path_steps : exactly one
         A penalty, a fraction of ``lam_max``, or the number ``m`` of path values
-        ``lam_j = lam_max * path_min_frac^(j / (m - 1))``, j = 0..m-1.
-    path_min_frac : float
+        ``lam_j = lam_max * path_floor^(j / (m - 1))``, j = 0..m-1.
+    path_floor : float
         Smallest requested path value as a share of ``lam_max`` (default
         :data:`PATH_FLOOR`).
     path_extend : int
@@ -354,7 +354,7 @@ def train(
         :data:`PATH_EXTEND`; 0: never), until validation has worsened twice
         in a row.
     valid : store path, Store or tuple
-        Validation data (required with ``path``): softmax accuracy, squared
+        Validation data (required with ``path_steps``): softmax accuracy, squared
         RMSE, multilabel micro-F1 pick the best lam; the path stops early
         when validation worsens twice in a row.
     tol : float
@@ -408,8 +408,9 @@ def train(
     -------
     TrainResult
     """
-    TrainConfig(loss=loss, lam=lam, lam_frac=lam_frac, path=path, path_min_frac=path_min_frac,
-                path_extend=path_extend, valid=_path_of(valid), has_valid=valid is not None,
+    TrainConfig(loss=loss, lam=lam, lam_scale=lam_scale, path_steps=path_steps,
+                path_floor=path_floor, path_extend=path_extend, valid=_path_of(valid),
+                has_valid=valid is not None,
                 tol=tol, max_passes=max_passes, max_seconds=max_seconds, memory=memory,
                 seed=seed, block_rows=block_rows, backend=backend, class_weight=class_weight,
                 dense_gradient=dense_gradient, power_size=power_size, expand_size=expand_size,
@@ -429,7 +430,7 @@ def train(
                            expand_size=expand_size, dense_gradient=dense_gradient,
                            backend=backend, block_rows=block_rows)
         cw = resolve_class_weights(class_weight, src, backend=backend, block_rows=block_rows)
-        cfg = SolverConfig(loss=loss, lam=lam, lam_frac=lam_frac, tol=tol,
+        cfg = SolverConfig(loss=loss, lam=lam, lam_scale=lam_scale, tol=tol,
                            max_passes=int(max_passes), seed=int(seed), memory=memory,
                            block_rows=block_rows, backend=backend, class_weights=cw,
                            dense_gradient=dense_gradient, power_size=power_size,
@@ -448,8 +449,8 @@ def train(
         run = None if resume_point is None else resume_point.run
         if out is not None and run is None:
             run = _create_run(out, src, cfg, fingerprint, overwrite=overwrite,
-                              extra={"path": path, "path_min_frac": path_min_frac,
-                                     "path_extend": path_extend if path else None,
+                              extra={"path_steps": path_steps, "path_floor": path_floor,
+                                     "path_extend": path_extend if path_steps else None,
                                      "class_weight": class_weight if isinstance(
                                          class_weight, str) else None,
                                      "max_seconds": max_seconds,
@@ -466,11 +467,11 @@ def train(
             rec.history = [h for h in run.read_history() if h.get("kind") == "pass"]
         t0 = time.perf_counter()
         deadline = None if max_seconds is None else t0 + float(max_seconds)
-        if path is None:
+        if path_steps is None:
             result = _train_single(solver, rec, deadline, fingerprint, src, loss)
         else:
-            result = _train_path(solver, rec, deadline, fingerprint, src, loss, int(path),
-                                 float(path_min_frac), int(path_extend), valid, block_rows, ctx)
+            result = _train_path(solver, rec, deadline, fingerprint, src, loss, int(path_steps),
+                                 float(path_floor), int(path_extend), valid, block_rows, ctx)
         if stop is not None and stop:
             if run is not None and not run.published:  # it would replace an older run
                 run.discard()
@@ -557,7 +558,7 @@ def _checkpointing(run, solver, resume_point, seconds, passes, stop):
 def _create_run(out, src, cfg: SolverConfig, fingerprint: str, *, overwrite: bool,
                 extra: dict) -> Any:
     settings = {
-        "loss": cfg.loss, "lam": cfg.lam, "lam_frac": cfg.lam_frac, "tol": cfg.tol,
+        "loss": cfg.loss, "lam": cfg.lam, "lam_scale": cfg.lam_scale, "tol": cfg.tol,
         "max_passes": cfg.max_passes, "seed": cfg.seed,
         "memory": cfg.memory if not isinstance(cfg.memory, float) else int(cfg.memory),
         "block_rows": cfg.block_rows, "backend": cfg.backend,

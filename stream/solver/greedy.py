@@ -26,7 +26,7 @@ value over the union of every rank-0 pass's power products
 passes; the first pass, at ``b = 0``, still gives exact products of ``G(0, b0)`` on
 the directions orthogonal to ``link(b0) - link(0)``, since the two gradients
 differ by a rank-one term ``m (link(b0) - link(0))^T``). When it has not settled
-by then, fitting starts at ``lam_frac`` times the lower bound, the record and
+by then, fitting starts at ``lam_scale`` times the lower bound, the record and
 the result say so, and the bound keeps growing (lam with it) while the model is
 still ``W = 0``. The memory plan is redone before every pass, for the budget
 left above the process floor (measured once, kept in the state so a resumed
@@ -108,10 +108,10 @@ class SolverConfig:
     ----------
     loss : {"softmax", "squared", "multilabel"}
     lam : float, optional
-        Trace-norm penalty. Exactly one of ``lam`` and ``lam_frac`` (or neither,
+        Trace-norm penalty. Exactly one of ``lam`` and ``lam_scale`` (or neither,
         when a caller such as the regularization path sets ``lam`` later).
-    lam_frac : float, optional
-        ``lam = lam_frac * lam_max``, with ``0 < lam_frac``.
+    lam_scale : float, optional
+        ``lam = lam_scale * lam_max``, with ``0 < lam_scale``.
     tol : float
         Stop when the relative gap estimate ``gap / F <= tol`` (default 1e-4).
     max_passes : int
@@ -151,14 +151,14 @@ class SolverConfig:
         (simulated with this scheme on d = 2000, k = 200, eight top values within
         1% over a bulk up to 0.9 sigma_1: 10% low after 3 passes, 1% after 6),
         and every pass at ``W = 0`` is a full pass of compute with nothing
-        fitted; a lam a few percent below ``lam_frac lam_max`` is still a point
+        fitted; a lam a few percent below ``lam_scale lam_max`` is still a point
         of the path, solved exactly for the lam it records.
     lam_max_rtol : float
         ``sigma_1`` has settled when its relative change between two passes is
-        below this (default 1e-3). The tolerance ``lam_frac`` needs: lam is then
-        within about 0.1% of ``lam_frac lam_max``, and since ``dF*/dlam =
+        below this (default 1e-3). The tolerance ``lam_scale`` needs: lam is then
+        within about 0.1% of ``lam_scale lam_max``, and since ``dF*/dlam =
         ||W*||_* <= f(0, b0) / lam``, the optimal objective moves by at most
-        about ``1e-3 f(0, b0)``: below what a user picking ``lam_frac`` (or a
+        about ``1e-3 f(0, b0)``: below what a user picking ``lam_scale`` (or a
         path grid) resolves.
     lam_max_width : int
         Columns of ``Omega`` and of ``Psi`` on the passes at ``W = 0`` before the
@@ -203,7 +203,7 @@ class SolverConfig:
 
     loss: str
     lam: float | None = None
-    lam_frac: float | None = None
+    lam_scale: float | None = None
     tol: float = 1e-4
     max_passes: int = 100
     max_seconds: float | None = None
@@ -228,9 +228,9 @@ class SolverConfig:
 
     def __post_init__(self) -> None:
         get_loss(self.loss)
-        if self.lam is not None and self.lam_frac is not None:
-            raise ConfigError("solver: give lam or lam_frac, not both")
-        check_lam(self.lam, self.lam_frac, "solver")
+        if self.lam is not None and self.lam_scale is not None:
+            raise ConfigError("solver: give lam or lam_scale, not both")
+        check_lam(self.lam, self.lam_scale, "solver")
         if not (0 < self.tol < 1):
             raise ConfigError(f"solver: tol = {self.tol!r}; it must lie in (0, 1)")
         for name in ("max_passes", "power_size", "expand_size", "inner_max_iter",
@@ -776,8 +776,8 @@ class GreedySolver:
         cfg, st = self.config, self.state
         if st.lam is not None:
             return st.lam
-        if cfg.lam_frac is not None:
-            return cfg.lam_frac * st.lam_max
+        if cfg.lam_scale is not None:
+            return cfg.lam_scale * st.lam_max
         return None
 
     # ------------------------------------------------------------ one pass
@@ -1123,12 +1123,12 @@ class GreedySolver:
         st.set_krylov(kry)
         rec["krylov_cols"] = int(kry.R.shape[1] + kry.L.shape[1])
         if (st.phase != "lam_max" and st.lam_max is not None and est > st.lam_max
-                and (cfg.lam is not None or cfg.lam_frac is not None)):
-            # still W = 0 at b0: the bound grew, and lam_max (and a lam_frac lam) with it;
+                and (cfg.lam is not None or cfg.lam_scale is not None)):
+            # still W = 0 at b0: the bound grew, and lam_max (and a lam_scale lam) with it;
             # not on a regularization path, whose grid was set from the first value
             st.lam_max = est
             if cfg.lam is None:
-                st.lam = cfg.lam_frac * est
+                st.lam = cfg.lam_scale * est
             rec["lam_max_raised"] = est
         return est
 

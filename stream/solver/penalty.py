@@ -9,8 +9,8 @@ from ranktide.errors import ConfigError
 __all__ = ["check_lam"]
 
 
-def check_lam(lam: float | None, lam_frac: float | None, where: str = "train") -> None:
-    """The one check of the penalty: ``lam > 0`` finite, or ``lam_frac > 0`` finite.
+def check_lam(lam: float | None, lam_scale: float | None, where: str = "train") -> None:
+    """The one check of the penalty: ``lam > 0`` finite, or ``lam_scale > 0`` finite.
 
     Raises
     ------
@@ -20,7 +20,8 @@ def check_lam(lam: float | None, lam_frac: float | None, where: str = "train") -
     if lam is not None and not (isinstance(lam, (int, float)) and not isinstance(lam, bool)
                                 and math.isfinite(lam) and lam > 0):
         raise ConfigError(f"{where}: lam = {lam!r}; give a positive number")
-    if lam_frac is not None and not (isinstance(lam_frac, (int, float))
-                                     and not isinstance(lam_frac, bool)
-                                     and math.isfinite(lam_frac) and lam_frac > 0):
-        raise ConfigError(f"{where}: lam_frac = {lam_frac!r}; give a positive fraction of lam_max")
+    if lam_scale is not None and not (isinstance(lam_scale, (int, float))
+                                     and not isinstance(lam_scale, bool)
+                                     and math.isfinite(lam_scale) and lam_scale > 0):
+        raise ConfigError(f"{where}: lam_scale = {lam_scale!r}; give a positive fraction of "
+                          "lam_max")

@@ -30,7 +30,7 @@ def path_run(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
     X, y = _problem(11, 500)
     Xv, yv = _problem(12, 200)
-    res = train(X, targets=y, loss="softmax", path=3, path_min_frac=0.1, valid=(Xv, yv),
+    res = train(X, targets=y, loss="softmax", path_steps=3, path_floor=0.1, valid=(Xv, yv),
                 max_passes=8, tol=1e-2, seed=0, out=root / "run", checkpoint_passes=3)
     page = report.write_report(root / "run")
     return root, res, page

@@ -283,7 +283,7 @@ def test_trained_model_on_cluster_equals_serial(tmp_path, client, dense):
     # With plain range sums (before the compensated ones) they rounded differently from
     # the serial running sum and, at this tolerance, W differed by 5e-4 (dense path)
     # and 9e-4 (power path) of its largest entry, with 24 passes against 22.
-    kw = dict(loss="softmax", lam_frac=0.3, seed=3, block_rows=200, tol=1e-6,
+    kw = dict(loss="softmax", lam_scale=0.3, seed=3, block_rows=200, tol=1e-6,
               max_passes=150, dense_gradient=dense)
     serial = train(path, backend="serial", **kw)
     dist = train(path, backend="dask", **kw)

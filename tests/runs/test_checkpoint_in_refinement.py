@@ -20,7 +20,7 @@ from ranktide.signals import StopFlag
 from ranktide.store import write_store
 from sklearn.datasets import load_digits
 
-SETTINGS = dict(loss="softmax", lam_frac=0.05, tol=1e-6, seed=3, block_rows=50,
+SETTINGS = dict(loss="softmax", lam_scale=0.05, tol=1e-6, seed=3, block_rows=50,
                 dense_gradient=False)
 
 

@@ -23,13 +23,13 @@ from ranktide.solver.penalty import check_lam
     ({"lam": 0.0}, r"lam = 0.0; give a positive number"),
     ({"lam": -1.0}, r"lam = -1.0; give a positive number"),
     ({"lam": math.nan}, r"lam = nan; give a positive number"),
-    ({"lam_frac": 0.0}, r"lam_frac = 0.0; give a positive fraction"),
-    ({}, r"give exactly one of lam, lam_frac and path \(got none\)"),
-    ({"lam": 0.1, "lam_frac": 0.1}, r"exactly one .* \(got lam, lam_frac\)"),
-    ({"path": 1, "has_valid": True}, r"path = 1; give the number of lam values"),
-    ({"path": 3}, r"a regularization path needs validation data"),
-    ({"path": 3, "has_valid": True, "path_min_frac": 1.5}, r"path_min_frac = 1.5"),
-    ({"path": 3, "has_valid": True, "path_extend": -1}, r"path_extend = -1"),
+    ({"lam_scale": 0.0}, r"lam_scale = 0.0; give a positive fraction"),
+    ({}, r"give exactly one of lam, lam_scale and path_steps \(got none\)"),
+    ({"lam": 0.1, "lam_scale": 0.1}, r"exactly one .* \(got lam, lam_scale\)"),
+    ({"path_steps": 1, "has_valid": True}, r"path_steps = 1; give the number of lam"),
+    ({"path_steps": 3}, r"a regularization path needs validation data"),
+    ({"path_steps": 3, "has_valid": True, "path_floor": 1.5}, r"path_floor = 1.5"),
+    ({"path_steps": 3, "has_valid": True, "path_extend": -1}, r"path_extend = -1"),
     ({"lam": 0.1, "tol": 0.0}, r"--tol 0.0: must lie in \(0, 1\)"),
     ({"lam": 0.1, "max_passes": 0}, r"--max-passes 0: must be >= 1"),
     ({"lam": 0.1, "block_rows": 0}, r"--block-rows 0: must be >= 1"),
@@ -56,7 +56,7 @@ def test_lam_is_checked_by_one_function_for_the_run_and_the_solver():
 
 
 def test_settings_round_trip_through_json():
-    cfg = TrainConfig(loss="softmax", path=4, has_valid=True, valid="v.zarr", path_extend=2,
+    cfg = TrainConfig(loss="softmax", path_steps=4, has_valid=True, valid="v.zarr", path_extend=2,
                       class_weight=np.array([1.0, 2.0, 0.5]), memory="2GB", max_seconds=30.0)
     again = TrainConfig.from_settings(json.loads(json.dumps(cfg.settings())))
     assert again == cfg
@@ -70,6 +70,11 @@ def test_old_run_settings_read_with_their_resolved_class_weights():
            "class_weight": "balanced", "class_weights": [0.5, 1.5], "momentum": 3}
     cfg = TrainConfig.from_settings(old)
     assert cfg.class_weight == (0.5, 1.5) and cfg.seed == 3 and cfg.path_extend == 0
+    # the earlier names of the path settings and of the penalty's scale
+    older = {"loss": "softmax", "path": 4, "path_min_frac": 0.01, "valid": "v.zarr"}
+    cfg = TrainConfig.from_settings(older)
+    assert (cfg.path_steps, cfg.path_floor, cfg.has_valid) == (4, 0.01, True)
+    assert TrainConfig.from_settings({"loss": "squared", "lam_frac": 0.3}).lam_scale == 0.3
 
 
 def test_resume_changes_only_the_mutable_settings():

@@ -48,7 +48,7 @@ def test_an_old_layout_run_resumes_to_the_uninterrupted_model(tmp_path):
     X = sp.random(300, 30, density=0.2, format="csr", random_state=4, dtype=np.float32)
     y = rng.integers(0, 4, 300).astype(np.int32)
     write_store(tmp_path / "s.zarr", X, y).close()
-    kw = {"loss": "softmax", "lam_frac": 0.1, "tol": 1e-6, "seed": 2, "block_rows": 100,
+    kw = {"loss": "softmax", "lam_scale": 0.1, "tol": 1e-6, "seed": 2, "block_rows": 100,
           "dense_gradient": False, "checkpoint_passes": 1}
     full = train(str(tmp_path / "s.zarr"), out=tmp_path / "full", **kw)
     part = train(str(tmp_path / "s.zarr"), out=tmp_path / "old", max_passes=4,

@@ -70,7 +70,7 @@ def _planted(seed, n):
 def test_a_path_whose_best_is_last_goes_on_and_says_so_in_model_json(tmp_path):
     X, y = _planted(11, 500)
     Xv, yv = _planted(12, 200)
-    res = train(X, targets=y, loss="softmax", path=3, path_min_frac=0.3, path_extend=6,
+    res = train(X, targets=y, loss="softmax", path_steps=3, path_floor=0.3, path_extend=6,
                 valid=(Xv, yv), max_passes=8, tol=1e-2, seed=0, out=tmp_path / "run")
     scores = [p.score for p in res.path]
     # the requested values (down to 0.3 lam_max) all under-fit: validation improves down to

@@ -123,7 +123,7 @@ def work(tmp_path_factory):
     write_store(root / "other.zarr", X[::-1].tocsr(), y[::-1].copy(), kind="classes").close()
     (root / "driver.py").write_text(DRIVER)
     ref = train(
-        str(root / "s.zarr"), loss="softmax", lam_frac=0.05, tol=1e-6, seed=3, block_rows=50,
+        str(root / "s.zarr"), loss="softmax", lam_scale=0.05, tol=1e-6, seed=3, block_rows=50,
         dense_gradient=False, out=root / "ref", checkpoint_passes=1,
     )  # fmt: skip
     assert ref.status == "converged"
@@ -325,7 +325,7 @@ def test_stop_inside_a_pass_or_a_refinement_restores_the_state(work, monkeypatch
     monkeypatch.setattr(G, "run_pass", run_pass)
     monkeypatch.setattr(S, "refine", refine)
     run = root / f"stopped-{where}"
-    part = train(str(root / "s.zarr"), out=run, stop=flag, loss="softmax", lam_frac=0.05,
+    part = train(str(root / "s.zarr"), out=run, stop=flag, loss="softmax", lam_scale=0.05,
                  tol=1e-6, seed=3, block_rows=50, dense_gradient=False, checkpoint_passes=1)
     monkeypatch.undo()
     assert part.status == "interrupted"
@@ -414,12 +414,12 @@ def test_refuses_other_store_changed_setting_newer_format(work, partial_run, cap
     cfg_path = run / "config.json"
     original = cfg_path.read_text()
     cfg = json.loads(original)
-    cfg["settings"]["lam_frac"] = 0.5
+    cfg["settings"]["lam_scale"] = 0.5
     cfg["settings"]["seed"] = 4
     cfg_path.write_text(json.dumps(cfg))
     assert main(["resume", str(run)]) == 2
     line = capsys.readouterr().err.strip()
-    assert "lam_frac (saved 0.05, now 0.5)" in line and "seed (saved 3, now 4)" in line
+    assert "lam_scale (saved 0.05, now 0.5)" in line and "seed (saved 3, now 4)" in line
     assert "\n" not in line
 
     cfg = json.loads(original)
@@ -465,7 +465,7 @@ def test_path_stopped_at_each_kind_of_moment_resumes_exactly(work):
     write_store(root / "valid.zarr", Xv, y[N_ROWS : N_ROWS + 100].astype(np.int32),
                 kind="classes").close()  # fmt: skip
     kw = {
-        "loss": "softmax", "path": 3, "path_min_frac": 0.1, "valid": str(root / "valid.zarr"),
+        "loss": "softmax", "path_steps": 3, "path_floor": 0.1, "valid": str(root / "valid.zarr"),
         "tol": 1e-5, "seed": 5, "block_rows": 50, "dense_gradient": False,
         "checkpoint_passes": 1,
     }  # fmt: skip

@@ -80,7 +80,7 @@ def test_near_full_rank_threshold():
 def test_path_records_the_refit_and_keeps_validation_at_least(tmp_path):
     X, y = _problem(n=600, d=30, k=5, seed=4)
     Xv, yv = X[300:], y[300:]
-    res = train((X[:300], y[:300]), loss="softmax", path=3, valid=(Xv, yv), max_passes=30)
+    res = train((X[:300], y[:300]), loss="softmax", path_steps=3, valid=(Xv, yv), max_passes=30)
     refit = res.model.meta["debias"]
     assert [t["factor"] for t in refit["tried"]] == [1.0, 0.3, 0.1, 0.03]
     # the path's own choice is the first candidate: the kept one scores at least as well

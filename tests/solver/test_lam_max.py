@@ -33,7 +33,7 @@ def test_lam_max_within_three_passes_on_clustered_values():
     for seed in (0, 1):
         X, Y, sv = _clustered(seed)
         assert sv[1] > 0.9 * sv[0]  # the top values are clustered
-        cfg = SolverConfig(loss="squared", lam_frac=0.5, dense_gradient=False, seed=seed,
+        cfg = SolverConfig(loss="squared", lam_scale=0.5, dense_gradient=False, seed=seed,
                            max_passes=4)
         res = GreedySolver((X, Y), cfg).run()
         at_zero = [h for h in res.history if h["phase"] == "lam_max"]
@@ -55,7 +55,7 @@ def test_lam_max_within_three_passes_on_clustered_values():
 
 def test_more_passes_settle_lam_max():
     X, Y, sv = _clustered(2)
-    cfg = SolverConfig(loss="squared", lam_frac=0.5, dense_gradient=False, seed=2,
+    cfg = SolverConfig(loss="squared", lam_scale=0.5, dense_gradient=False, seed=2,
                        lam_max_passes=12, lam_max_rtol=1e-6, max_passes=12)
     res = GreedySolver((X, Y), cfg).run()
     assert res.lam_max_settled
@@ -64,7 +64,7 @@ def test_more_passes_settle_lam_max():
 
 def test_stopped_at_w0_says_so_and_reports_the_objective():
     X, Y, sv = _clustered(3, n=600)
-    cfg = SolverConfig(loss="squared", lam_frac=0.5, dense_gradient=False, max_passes=2)
+    cfg = SolverConfig(loss="squared", lam_scale=0.5, dense_gradient=False, max_passes=2)
     res = GreedySolver((X, Y), cfg).run()
     assert res.status == "max_passes" and res.rank == 0
     assert "nothing fitted yet" in res.message
@@ -84,7 +84,7 @@ def test_rank0_passes_keep_no_projections_and_the_deadline_cuts_a_pass(monkeypat
         seen.append((req.rank, req.keep_projections, req.projections_dir))
         return gradient_pass(src, req, **kw)
 
-    cfg = SolverConfig(loss="squared", lam_frac=0.5, dense_gradient=False, max_passes=4,
+    cfg = SolverConfig(loss="squared", lam_scale=0.5, dense_gradient=False, max_passes=4,
                        memory="500KB")  # small: the fit passes write scratch projections
     res = GreedySolver((X, Y), cfg, pass_fn=pass_fn).run()
     # the intercept's pass and the next cannot be followed by a refinement: no projections
@@ -96,7 +96,7 @@ def test_rank0_passes_keep_no_projections_and_the_deadline_cuts_a_pass(monkeypat
         time.sleep(0.3)
         return gradient_pass(src, req, **kw)
 
-    cfg = SolverConfig(loss="squared", lam_frac=0.5, dense_gradient=False, max_seconds=0.2,
+    cfg = SolverConfig(loss="squared", lam_scale=0.5, dense_gradient=False, max_seconds=0.2,
                        block_rows=50)
     solver = GreedySolver((X, Y), cfg, pass_fn=slow)
     res = solver.run()

@@ -39,7 +39,7 @@ _SCRIPT = textwrap.dedent("""
     write_store(os.path.join(root, "s.zarr"), X, y).close()
     del X, y, A
     Xs = sp.random(300, 50, density=0.1, format="csr", dtype=np.float32, random_state=2)
-    train((Xs, rng.integers(0, 5, 300).astype(np.int32)), loss="softmax", lam_frac=0.3,
+    train((Xs, rng.integers(0, 5, 300).astype(np.int32)), loss="softmax", lam_scale=0.3,
           max_passes=3, memory="1GB")  # kernels loaded before the floor is read
     floor = process_floor()
     out = []
@@ -47,7 +47,7 @@ _SCRIPT = textwrap.dedent("""
         budget = floor + mb * 2**20
         with open("/proc/self/clear_refs", "w") as fh:
             fh.write("5")  # reset VmHWM
-        res = train(os.path.join(root, "s.zarr"), loss="softmax", lam_frac=0.1, max_passes=6,
+        res = train(os.path.join(root, "s.zarr"), loss="softmax", lam_scale=0.1, max_passes=6,
                     memory=budget, dense_gradient=False, seed=0)
         out.append({"budget": budget, "floor": floor, "peak": hwm(), "rank": res.model.rank,
                     "modes": sorted({h.get("refine_mode") for h in res.history} - {None})})

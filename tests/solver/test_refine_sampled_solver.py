@@ -35,7 +35,7 @@ def _problem(loss: str, *, n=300, d=20, k=4, seed=0):
 @pytest.mark.parametrize("loss", ["softmax", "squared", "multilabel"])
 def test_sampled_refinement_reaches_the_conic_optimum(loss):
     X, y = _problem(loss, n=300, d=20, k=4, seed=8)
-    cfg = SolverConfig(loss=loss, lam_frac=0.15, tol=1e-7, seed=1, dense_gradient=False,
+    cfg = SolverConfig(loss=loss, lam_scale=0.15, tol=1e-7, seed=1, dense_gradient=False,
                        refine_sample_rows=60, max_passes=200)
     res = GreedySolver((X, y), cfg).run()
     assert res.status == "converged"
@@ -56,7 +56,7 @@ def test_pass_gradient_on_the_subspace_matches_the_projections():
     """The correction's full gradient comes from the pass (G^T U, G^T Psi): it must equal
     A^T R / sum(w) formed from the cached projections A = X Q (numpy)."""
     X, y = _problem("softmax", n=300, d=20, k=4, seed=3)
-    cfg = SolverConfig(loss="softmax", lam_frac=0.15, seed=1, dense_gradient=False)
+    cfg = SolverConfig(loss="softmax", lam_scale=0.15, seed=1, dense_gradient=False)
     solver = GreedySolver((X, y), cfg)
     seen = {}
     orig = solver._run_refinement
@@ -80,7 +80,7 @@ def test_pass_gradient_on_the_subspace_matches_the_projections():
 
 def test_sampled_run_resumes_exactly_from_a_checkpoint(tmp_path):
     X, y = _problem("softmax", n=300, d=20, k=4, seed=6)
-    cfg = SolverConfig(loss="softmax", lam_frac=0.2, dense_gradient=False, tol=1e-8,
+    cfg = SolverConfig(loss="softmax", lam_scale=0.2, dense_gradient=False, tol=1e-8,
                        refine_sample_rows=80)
     a = GreedySolver((X, y), cfg)
     for _ in range(5):
@@ -103,7 +103,7 @@ def test_sampled_run_resumes_exactly_from_a_checkpoint(tmp_path):
 
 def test_progress_reports_and_the_pre_step_state_during_a_refinement():
     X, y = _problem("multilabel", n=300, d=20, k=4, seed=2)
-    cfg = SolverConfig(loss="multilabel", lam_frac=0.15, seed=1, dense_gradient=False)
+    cfg = SolverConfig(loss="multilabel", lam_scale=0.15, seed=1, dense_gradient=False)
     solver = GreedySolver((X, y), cfg)
     seen = []
 

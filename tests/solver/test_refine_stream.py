@@ -102,7 +102,7 @@ def test_training_under_a_small_budget_streams_the_refinement(loss, tmp_path, mo
     from test_solver_internals import _problem
 
     X, y = _problem(loss, n=300, d=20, k=4, seed=8)
-    kw = {"loss": loss, "lam_frac": 0.15, "tol": 1e-7, "seed": 1, "dense_gradient": False}
+    kw = {"loss": loss, "lam_scale": 0.15, "tol": 1e-7, "seed": 1, "dense_gradient": False}
     runs = {}
     for mem in ("1GB", "120KB", "60KB"):  # memory; projections in memory; scratch files
         out = tmp_path / f"run-{mem}"

@@ -262,7 +262,7 @@ def test_digits_path_selected_model(tmp_path):
     fit.close()
     val.close()
     # lam_j = lam_max * 0.01^(j/2), j = 0, 1, 2; validation accuracy picks one
-    res = train(tmp_path / "fit", loss="softmax", path=3, path_min_frac=0.01,
+    res = train(tmp_path / "fit", loss="softmax", path_steps=3, path_floor=0.01,
                 valid=tmp_path / "val", tol=1e-3, seed=0)
     assert len(res.path) >= 3 and res.best_index is not None  # 3 requested, may go on
     acc = float(np.mean(res.model.predict(sp.csr_matrix(Xte)) == yte))

@@ -170,7 +170,7 @@ def test_sigma1_bound_is_exact_on_the_top_singular_vector():
 @pytest.mark.parametrize("dense", [True, False])
 def test_lam_max_is_sigma1_of_gradient_at_best_intercept(dense):
     X, y = _problem("softmax", n=150, d=20, k=4, seed=5)
-    cfg = SolverConfig(loss="softmax", lam_frac=2.0, dense_gradient=dense, lam_max_passes=30)
+    cfg = SolverConfig(loss="softmax", lam_scale=2.0, dense_gradient=dense, lam_max_passes=30)
     res = GreedySolver((X, y), cfg).run()
     # Reference: numpy. b0 = log class frequencies, G = X^T (softmax(b0) - E_y) / n.
     n, k = X.shape[0], 4
@@ -192,7 +192,7 @@ def test_explicit_lam_starts_fitting_before_lam_max_settles():
     lam = 0.2 * lam_max
     base = dict(loss="softmax", dense_gradient=False, tol=1e-8, max_passes=200)
     early = GreedySolver((X, y), SolverConfig(lam=lam, **base)).run()
-    settled = GreedySolver((X, y), SolverConfig(lam_frac=0.2, lam_max_passes=30, **base))
+    settled = GreedySolver((X, y), SolverConfig(lam_scale=0.2, lam_max_passes=30, **base))
     settled = settled.run()
     assert not early.lam_max_settled and settled.lam_max_settled
     # the lower bound: lam < reported lam_max <= the true lam_max
@@ -210,7 +210,7 @@ def test_explicit_lam_starts_fitting_before_lam_max_settles():
 
 def test_state_checkpoint_round_trip_gives_identical_next_pass(tmp_path):
     X, y = _problem("softmax", seed=6)
-    cfg = SolverConfig(loss="softmax", lam_frac=0.2, dense_gradient=False, tol=1e-8)
+    cfg = SolverConfig(loss="softmax", lam_scale=0.2, dense_gradient=False, tol=1e-8)
     a = GreedySolver((X, y), cfg)
     for _ in range(5):
         a.step()
@@ -234,7 +234,7 @@ def test_state_checkpoint_round_trip_gives_identical_next_pass(tmp_path):
 
 def test_version_1_checkpoint_reads_without_momentum_source():
     X, y = _problem("softmax", seed=6)
-    cfg = SolverConfig(loss="softmax", lam_frac=0.2, dense_gradient=False)
+    cfg = SolverConfig(loss="softmax", lam_scale=0.2, dense_gradient=False)
     a = GreedySolver((X, y), cfg)
     for _ in range(3):
         a.step()
@@ -273,7 +273,7 @@ def test_momentum_on_and_off_reach_the_same_conic_optimum():
     X, y = _problem("softmax", n=250, d=30, k=6, seed=12)
     out = {}
     for mom in (3, 0):
-        cfg = SolverConfig(loss="softmax", lam_frac=0.1, dense_gradient=False, tol=1e-8,
+        cfg = SolverConfig(loss="softmax", lam_scale=0.1, dense_gradient=False, tol=1e-8,
                            momentum=mom, max_passes=200)
         out[mom] = GreedySolver((X, y), cfg).run()
         assert out[mom].status == "converged"
@@ -287,7 +287,7 @@ def test_momentum_on_and_off_reach_the_same_conic_optimum():
 
 def test_same_seed_same_model_and_callback_stop():
     X, y = _problem("multilabel", seed=7)
-    cfg = SolverConfig(loss="multilabel", lam_frac=0.3, dense_gradient=False, seed=11)
+    cfg = SolverConfig(loss="multilabel", lam_scale=0.3, dense_gradient=False, seed=11)
     r1 = GreedySolver((X, y), cfg).run()
     r2 = GreedySolver((X, y), cfg).run()
     assert r1.passes == r2.passes
@@ -303,7 +303,7 @@ def test_dense_and_matrix_free_paths_agree_and_reach_cvxpy(loss):
     X, y = _problem(loss, n=150, d=20, k=4, seed=8)
     out = {}
     for dense in (True, False):
-        cfg = SolverConfig(loss=loss, lam_frac=0.15, dense_gradient=dense, tol=1e-7)
+        cfg = SolverConfig(loss=loss, lam_scale=0.15, dense_gradient=dense, tol=1e-7)
         out[dense] = GreedySolver((X, y), cfg).run()
         assert out[dense].status == "converged"
     a, b = out[True], out[False]
@@ -329,7 +329,7 @@ def test_dense_and_matrix_free_paths_agree_and_reach_cvxpy(loss):
 def test_train_smoke(loss, tmp_path):
     X, y = _problem(loss, seed=9)
     records = []
-    res = train(X, targets=y, loss=loss, lam_frac=0.2, tol=1e-4, out=tmp_path / "run",
+    res = train(X, targets=y, loss=loss, lam_scale=0.2, tol=1e-4, out=tmp_path / "run",
                 on_pass=records.append)
     assert res.status == "converged", res.message
     # converged: the relative gap (the tighter of the two bounds) is within tol; sigma_1
@@ -352,24 +352,24 @@ def test_train_smoke(loss, tmp_path):
 
 def test_train_path_class_weights_and_errors(tmp_path):
     X, y = _problem("softmax", n=240, seed=10)
-    res = train((X[:160], y[:160]), loss="softmax", path=4, valid=(X[160:], y[160:]),
-                path_min_frac=0.1, class_weight="balanced", tol=1e-3)
+    res = train((X[:160], y[:160]), loss="softmax", path_steps=4, valid=(X[160:], y[160:]),
+                path_floor=0.1, class_weight="balanced", tol=1e-3)
     assert len(res.path) >= 3 and res.best_index is not None
     assert res.lam == pytest.approx(res.path[res.best_index].lam)
     assert res.path[0].rank == 0  # lam_max: W = 0
     lams = [p.lam for p in res.path]
     assert all(b < a for a, b in zip(lams, lams[1:], strict=False))
-    with pytest.raises(ConfigError, match="exactly one of lam, lam_frac and path"):
-        train((X, y), loss="softmax", lam=0.1, lam_frac=0.1)
+    with pytest.raises(ConfigError, match="exactly one of lam, lam_scale and path"):
+        train((X, y), loss="softmax", lam=0.1, lam_scale=0.1)
     with pytest.raises(ConfigError, match="needs validation data"):
-        train((X, y), loss="softmax", path=3)
+        train((X, y), loss="softmax", path_steps=3)
     with pytest.raises(ConfigError, match="softmax loss only"):
         train((X, y.astype(np.float32)[:, None]), loss="squared", lam=0.1,
               class_weight="balanced")
     big_X, big_y = _problem("softmax", n=3000, d=30, k=5, seed=13)
     with pytest.raises(ConfigError,
                        match="raise --memory"):
-        train(big_X, targets=big_y, loss="softmax", lam_frac=0.1, memory="1kB")
+        train(big_X, targets=big_y, loss="softmax", lam_scale=0.1, memory="1kB")
     bad = tmp_path / "cw.txt"
     bad.write_text("1 2\n")
     with pytest.raises(InputError, match="2 class weights for 5 classes"):
