@@ -41,7 +41,8 @@ if str(TOOLS) not in sys.path:
     sys.path.insert(0, str(TOOLS))
 
 from bench_solver import make_problem  # noqa: E402  (the planted problem, written once)
-from ranktide.solver.greedy import GreedySolver, SolverConfig  # noqa: E402
+from ranktide.solver.config import SolverConfig  # noqa: E402
+from ranktide.solver.greedy import GreedySolver  # noqa: E402
 
 THRESHOLDS = (1e-3, 1e-4)
 

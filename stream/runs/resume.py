@@ -19,7 +19,7 @@ from ranktide.runs.config import TrainConfig
 from ranktide.runs.rundir import RESUME_MUTABLE, RunDir, RunRecorder, check_resume_compatible
 from ranktide.runs.train import TrainResult, train
 from ranktide.signals import StopFlag
-from ranktide.solver.greedy import SolverState
+from ranktide.solver.state import SolverState
 from ranktide.store import open_store
 
 
@@ -30,7 +30,7 @@ class ResumePoint:
     Attributes
     ----------
     run : RunDir
-    state : ranktide.solver.greedy.SolverState
+    state : ranktide.solver.state.SolverState
     context : dict
         The trainer's checkpoint context (planner decisions, path position).
     context_arrays : dict of str to ndarray

@@ -30,8 +30,10 @@ from ranktide.runs.checks import check_train_inputs, check_train_output
 from ranktide.runs.config import PATH_EXTEND, PATH_FLOOR, TrainConfig
 from ranktide.runs.rundir import RunDir, RunRecorder
 from ranktide.scoring.evaluate import evaluate
+from ranktide.solver.config import SolverConfig
 from ranktide.solver.debias import debias, debias_summary, near_full_rank
-from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverResult
+from ranktide.solver.greedy import GreedySolver
+from ranktide.solver.state import SolverResult
 from ranktide.store.memory_source import as_source
 
 __all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDATION_METRIC",

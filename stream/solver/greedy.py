@@ -45,15 +45,14 @@ import os
 import shutil
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field, fields
+from dataclasses import fields
 from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import CheckpointError, ConfigError
-from ranktide.jsondata import json_data
 from ranktide.kernels.svd import svd
-from ranktide.losses import get_loss, intercept_from_sums
+from ranktide.losses import intercept_from_sums
 from ranktide.passes.budget import (
     FLOOR_QUANTUM,
     Plan,
@@ -67,7 +66,8 @@ from ranktide.passes.gradient import PassRequest, gradient_pass
 from ranktide.passes.kernel_path import CHOOSER
 from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopRequested
-from ranktide.solver.penalty import check_lam
+from ranktide.solver.certificate import dual_gap, gap_estimate
+from ranktide.solver.config import SolverConfig
 from ranktide.solver.refine import _blas_one_thread, refine
 from ranktide.solver.refinement import (
     RefineBar,
@@ -75,8 +75,13 @@ from ranktide.solver.refinement import (
     refine_projections,
     sample_rows,
 )
+from ranktide.solver.state import (
+    _ARRAYS,
+    SolverResult,
+    SolverState,
+    generator_from,
+)
 from ranktide.solver.subspace import (
-    KrylovUnion,
     fill,
     momentum_directions,
     next_blocks,
@@ -87,177 +92,7 @@ from ranktide.solver.subspace import (
 from ranktide.store.memory_source import as_source
 from scipy.special import expit, softmax
 
-__all__ = ["SolverConfig", "SolverState", "GreedySolver", "SolverResult",
-           "sigma1_lower_bound", "gap_estimate"]
-
-PHASES = ("lam_max", "fit", "certify", "done")
-STATE_VERSION = 3
-#: Versions :meth:`SolverState.from_checkpoint` reads (1 has no ``U_prev``: no momentum yet;
-#: 1 and 2 have no lam_max products and no floor: a resumed run keeps their fixed blocks).
-_READABLE_VERSIONS = (1, 2, 3)
-
-
-# ---------------------------------------------------------------- configuration
-
-
-@dataclass(frozen=True)
-class SolverConfig:
-    """Settings of :class:`GreedySolver` (keyword-only, documented defaults).
-
-    Attributes
-    ----------
-    loss : {"softmax", "squared", "multilabel"}
-    lam : float, optional
-        Trace-norm penalty. Exactly one of ``lam`` and ``lam_scale`` (or neither,
-        when a caller such as the regularization path sets ``lam`` later).
-    lam_scale : float, optional
-        ``lam = lam_scale * lam_max``, with ``0 < lam_scale``.
-    tol : float
-        Stop when the relative gap estimate ``gap / F <= tol`` (default 1e-4).
-    max_passes : int
-        Passes allowed for one value of ``lam`` (default 100); the passes at
-        ``W = 0`` that find ``lam_max`` have their own budget, ``lam_max_passes``.
-    max_seconds : float, optional
-        Wall-clock budget of one :meth:`GreedySolver.run` (default none),
-        honoured within a pass: the deadline joins the ``stop`` callable, so a
-        pass or refinement it cuts short is abandoned (the model stays the one
-        before it) and the run ends with status ``"max_seconds"``.
-    power_size : int
-        Columns ``p`` of the power block ``Omega`` (default 6).
-    expand_size : int
-        ``p'``: the expansion block ``Psi`` takes up to ``p'`` new-atom
-        directions plus the rotation directions (see ``rotation_size``) (default 6).
-    seed : int
-        Seed of the random starting blocks (``numpy.random.default_rng``).
-    memory : int or str, optional
-        Memory budget (bytes or a size such as ``"4GB"``); default a quarter of RAM.
-    block_rows, block_bytes : int, optional
-        Row block bounds of every pass.
-    backend : str
-        Pass backend (``"serial"`` or ``"threads"``).
-    class_weights : ndarray (k,), optional
-        Softmax class weights (row weight ``w_i c_{y_i}``).
-    dense_gradient : bool, optional
-        None (default): use the dense-gradient path when its three ``d x k``
-        float64 arrays fit a third of the budget; True forces it, False forbids it.
-    lam_max_passes : int
-        Most passes at ``W = 0`` before fitting starts, the intercept's pass
-        included (default 3). When ``sigma_1`` has not settled by then, fitting
-        starts at the lower bound (``lam_max_settled`` False, said in the
-        record's ``lam_max_note`` and the result's message). With an explicit
-        ``lam`` the fit starts as soon as the lower bound exceeds ``lam``.
-        Why not more: from a random start no power or Krylov method pins
-        ``sigma_1`` to 1e-3 in a few products when the spectrum is flat
-        (simulated with this scheme on d = 2000, k = 200, eight top values within
-        1% over a bulk up to 0.9 sigma_1: 10% low after 3 passes, 1% after 6),
-        and every pass at ``W = 0`` is a full pass of compute with nothing
-        fitted; a lam a few percent below ``lam_scale lam_max`` is still a point
-        of the path, solved exactly for the lam it records.
-    lam_max_rtol : float
-        ``sigma_1`` has settled when its relative change between two passes is
-        below this (default 1e-3). The tolerance ``lam_scale`` needs: lam is then
-        within about 0.1% of ``lam_scale lam_max``, and since ``dF*/dlam =
-        ||W*||_* <= f(0, b0) / lam``, the optimal objective moves by at most
-        about ``1e-3 f(0, b0)``: below what a user picking ``lam_scale`` (or a
-        path grid) resolves.
-    lam_max_width : int
-        Columns of ``Omega`` and of ``Psi`` on the passes at ``W = 0`` before the
-        fit starts (default 12; at least ``power_size`` and ``expand_size``); the
-        union of their products keeps ``2 lam_max_width`` Ritz vectors a side.
-        Measured (squared loss, n = 3000, d = 150, k = 60, four top values within
-        1.5%, bulk at 0.6 sigma_1, three seeds): ``lam_max`` after 3 passes 3.0-3.6%
-        low with 6 columns, 0.66-0.98% with 12 (keeping 6 or 12 Ritz vectors a
-        side instead of twice the width: 4-5.5% and 0.8-2%). The pass's dense work
-        at ``W = 0`` grows with the width (``n k (p + p')``) beside the loss's own
-        ``n k``; the kept products are ``2 x 2 lam_max_width`` d- and k-vectors.
-    certificate_passes : int
-        Most extra power passes on the final model (default 5).
-    certificate_rtol : float
-        The final ``sigma_1`` has settled below this relative change (1e-4).
-    inner_max_iter : int
-        Most proximal steps of one refinement (default 400).
-    momentum : int
-        How many previous left factors give momentum directions to ``Psi``
-        (default 3; 0 turns them off): for each, the part outside ``[U, Psi]``
-        (and the directions already added). The refinement then also searches
-        along the directions the subspace moved in over the last passes, as a
-        block Krylov or locally optimal iteration keeps its recent directions.
-        Measured on the planted softmax problem (n = 5000, d = 2000, k = 50,
-        0.1 lam_max, rank 41), passes to 1e-4 / 1e-6 relative suboptimality:
-        none 36 / 64, one factor 25 / 42, two 21 / 33, three 18 / 28, four 18 / 26.
-    rotation_size : int, optional
-        Most rotation directions ``(I - U U^T) G V`` in ``Psi`` (default None: all
-        ``r``). Measured on a planted softmax problem (n = 1500, d = 500, k = 30,
-        rank 19 at 0.1 lam_max): all rotations reached a relative gap of 1e-3 in 39
-        passes and 1e-4 in 51, a cap of ``p'`` = 6 needed 51 passes for 1e-3 and had
-        not reached 1e-4 after 67; with many atoms a cap starves their rotations.
-    refine_sample_rows : int, optional
-        Rows of the refinement's random sample (the gradient-corrected
-        subsampled refinement, :mod:`ranktide.solver.refine_sample`): None
-        (default) chooses from the shapes and the budget
-        (:func:`ranktide.solver.refinement.sample_rows`: up to 20000 rows when the
-        data has at least four times as many, softmax and multilabel), 0 always
-        refines exactly, ``m > 0`` samples ``m`` rows whenever the data has more
-        than ``2 m``. The sample grows when its steps stop carrying over.
-    """
-
-    loss: str
-    lam: float | None = None
-    lam_scale: float | None = None
-    tol: float = 1e-4
-    max_passes: int = 100
-    max_seconds: float | None = None
-    power_size: int = 6
-    expand_size: int = 6
-    seed: int = 0
-    memory: int | str | None = None
-    block_rows: int | None = None
-    block_bytes: int | None = None
-    backend: str = "serial"
-    class_weights: Any = None
-    dense_gradient: bool | None = None
-    lam_max_passes: int = 3
-    lam_max_rtol: float = 1e-3
-    lam_max_width: int = 12
-    certificate_passes: int = 5
-    certificate_rtol: float = 1e-4
-    inner_max_iter: int = 400
-    momentum: int = 3
-    rotation_size: int | None = None
-    refine_sample_rows: int | None = None
-
-    def __post_init__(self) -> None:
-        get_loss(self.loss)
-        if self.lam is not None and self.lam_scale is not None:
-            raise ConfigError("solver: give lam or lam_scale, not both")
-        check_lam(self.lam, self.lam_scale, "solver")
-        if not (0 < self.tol < 1):
-            raise ConfigError(f"solver: tol = {self.tol!r}; it must lie in (0, 1)")
-        for name in ("max_passes", "power_size", "expand_size", "inner_max_iter",
-                     "lam_max_width"):
-            if int(getattr(self, name)) < 1:
-                raise ConfigError(f"solver: {name} = {getattr(self, name)!r}; it must be >= 1")
-        if int(self.lam_max_passes) < 2:
-            raise ConfigError(f"solver: lam_max_passes = {self.lam_max_passes!r}; it must be >= 2 "
-                              "(the intercept's pass and one at the intercept)")
-        if self.refine_sample_rows is not None and int(self.refine_sample_rows) < 0:
-            raise ConfigError(f"solver: refine_sample_rows = {self.refine_sample_rows!r}; it "
-                              "must be >= 0 (0: exact refinement)")
-        if int(self.certificate_passes) < 0:
-            raise ConfigError("solver: certificate_passes must be >= 0")
-        if self.max_seconds is not None and not self.max_seconds > 0:
-            raise ConfigError(f"solver: max_seconds = {self.max_seconds!r}; it must be > 0")
-        if self.class_weights is not None:
-            if self.loss != "softmax":
-                raise ConfigError("solver: class weights apply to the softmax loss only")
-            cw = np.asarray(self.class_weights, dtype=np.float64).reshape(-1)
-            if not np.all(np.isfinite(cw)) or np.any(cw < 0) or not np.any(cw > 0):
-                raise ConfigError("solver: class weights must be finite, >= 0, not all 0")
-            object.__setattr__(self, "class_weights", cw)
-
-
-# ---------------------------------------------------------------- state
-
+__all__ = ["GreedySolver"]
 
 # The refinement also stops once the decrease of F over its last check interval is at
 # most this fraction of its whole decrease (ranktide.solver.refine.refine, ``stall``): the outer
@@ -269,224 +104,6 @@ class SolverConfig:
 # 3.75228 (87 s) with 0.2 and 3.74986 (74 s) with 0.5. On the smaller problem a cap of 10
 # inner steps did as well as 0.5 and a cap of 5 stalled the outer loop.
 _INNER_STALL = 0.5
-
-_ARRAYS = ("U", "s", "V", "b", "Omega", "Psi", "U_prev", "K_R", "K_GR", "K_L", "K_GtL")
-#: arrays older state versions lack (filled with empty ones)
-_OPTIONAL = {1: ("U_prev", "K_R", "K_GR", "K_L", "K_GtL"), 2: ("K_R", "K_GR", "K_L", "K_GtL"),
-             3: ()}
-_SCALARS = ("lam", "lam_max", "phase", "passes", "step_passes", "outer_iterations",
-            "seconds", "sigma1", "sigma1_prev", "path_index", "intercept_ready",
-            "lam_max_settle", "lam_max_settled", "U_prev_cols", "cert_passes", "last_rel_gap",
-            "objective", "status", "refine_sample_rows", "memory_floor", "gap", "rel_gap")
-
-
-@dataclass
-class SolverState:
-    """Everything the next outer iteration needs (see :meth:`to_checkpoint`).
-
-    Attributes
-    ----------
-    U : ndarray (d, r)
-    s : ndarray (r,)
-    V : ndarray (k, r)
-    b : ndarray (k,)
-    Omega : ndarray (k, p)
-        Power block (orthogonal to ``V`` before each pass).
-    Psi : ndarray (d, p')
-        Expansion block (orthogonalized against ``U`` before each pass).
-    U_prev : ndarray (d, sum(U_prev_cols))
-        The left factors before the last refinements, newest first, side by
-        side (the momentum directions come from them; ``d x 0`` before the
-        first refinement).
-    K_R, K_GR, K_L, K_GtL : ndarray (k, c), (d, c), (d, c'), (k, c')
-        The ``lam_max`` phase's power products of ``G(0, b0)`` kept across
-        passes (:class:`ranktide.solver.subspace.KrylovUnion`); empty outside it.
-    rng_state : dict
-        ``numpy.random.Generator.bit_generator.state`` of the solver's generator.
-    lam, lam_max : float or None
-    phase : {"lam_max", "fit", "certify", "done"}
-    passes : int
-        Passes over the data so far (all phases, all path steps).
-    step_passes : int
-        Passes spent on the current ``lam``.
-    outer_iterations : int
-        Refinements done.
-    seconds : float
-        Wall-clock seconds spent so far (carried across resumes).
-    sigma1, sigma1_prev : float or None
-        The last two ``sigma_1`` estimates.
-    path_index : int
-        Position on a regularization path (0 without a path).
-    intercept_ready : bool
-        ``b`` already is the best intercept alone (set after the first pass).
-    lam_max_settle : int
-        Passes at ``b0`` in the lam_max phase.
-    U_prev_cols : list of int
-        Columns of each factor in ``U_prev``.
-    lam_max_settled : bool
-        ``lam_max`` is the settled ``sigma_1`` at ``W = 0``; False when an
-        explicit ``lam`` let fitting start as soon as the lower bound passed it
-        (``lam_max`` is then that lower bound).
-    cert_passes : int
-        Extra certificate passes spent on the current model.
-    last_rel_gap : float or None
-        The last relative gap estimate (ties the inner tolerance to it).
-    objective : float or None
-        The objective of the current model (after the last refinement).
-    gap, rel_gap : float or None
-        A bound (an estimate: ``sigma_1`` is a lower bound) on ``F - F*`` of the
-        current model, and that over ``F``: the last pass's gap less what the
-        refinement after it gained (the refinement only lowers ``F``).
-    memory_floor : int or None
-        The process floor the memory plans leave aside (bytes), measured before
-        the first pass and kept so a resumed run plans the same blocks.
-    status : str
-        ``"running"`` or the final status.
-    refine_sample_rows : int
-        The size the refinement's sample has grown to (0: not grown).
-    """
-
-    U: np.ndarray
-    s: np.ndarray
-    V: np.ndarray
-    b: np.ndarray
-    Omega: np.ndarray
-    Psi: np.ndarray
-    rng_state: dict
-    U_prev: np.ndarray | None = None
-    K_R: np.ndarray | None = None
-    K_GR: np.ndarray | None = None
-    K_L: np.ndarray | None = None
-    K_GtL: np.ndarray | None = None
-    lam: float | None = None
-    lam_max: float | None = None
-    phase: str = "lam_max"
-    passes: int = 0
-    step_passes: int = 0
-    outer_iterations: int = 0
-    seconds: float = 0.0
-    sigma1: float | None = None
-    sigma1_prev: float | None = None
-    path_index: int = 0
-    intercept_ready: bool = False
-    lam_max_settle: int = 0
-    lam_max_settled: bool = True
-    U_prev_cols: list | None = None
-    cert_passes: int = 0
-    last_rel_gap: float | None = None
-    objective: float | None = None
-    status: str = "running"
-    refine_sample_rows: int = 0
-    memory_floor: int | None = None
-    gap: float | None = None
-    rel_gap: float | None = None
-
-    def __post_init__(self) -> None:
-        d, k = self.U.shape[0], self.V.shape[0]
-        if self.U_prev is None:
-            self.U_prev = np.zeros((d, 0))
-        for name, rows in (("K_R", k), ("K_GR", d), ("K_L", d), ("K_GtL", k)):
-            if getattr(self, name) is None:
-                setattr(self, name, np.zeros((rows, 0)))
-        if self.U_prev_cols is None:  # one factor (or none)
-            self.U_prev_cols = [int(self.U_prev.shape[1])] if self.U_prev.shape[1] else []
-        self.U_prev_cols = [int(c) for c in self.U_prev_cols]
-
-    def krylov(self) -> KrylovUnion:
-        """The ``lam_max`` phase's products as a :class:`KrylovUnion` (shares the arrays)."""
-        return KrylovUnion(self.K_R, self.K_GR, self.K_L, self.K_GtL)
-
-    def set_krylov(self, kry: KrylovUnion | None) -> None:
-        """Keep ``kry``'s products (None: drop them, the phase is over)."""
-        d, k = self.U.shape[0], self.V.shape[0]
-        if kry is None:
-            kry = KrylovUnion.empty(d, k)
-        self.K_R, self.K_GR, self.K_L, self.K_GtL = kry.R, kry.GR, kry.L, kry.GtL
-
-    def momentum_factors(self) -> list[np.ndarray]:
-        """The previous left factors in ``U_prev``, newest first."""
-        edges = np.cumsum([0, *self.U_prev_cols])
-        return [self.U_prev[:, a:b] for a, b in zip(edges[:-1], edges[1:], strict=True)]
-
-    @property
-    def rank(self) -> int:
-        return int(self.s.shape[0])
-
-    def to_checkpoint(self) -> tuple[dict[str, np.ndarray], dict]:
-        """Arrays and JSON-able metadata that :meth:`from_checkpoint` restores exactly."""
-        # keep each array's memory order (C or Fortran): BLAS rounds differently by layout,
-        # and an exact resume needs the same products as the uninterrupted run (np.save keeps it)
-        arrays = {name: np.asarray(getattr(self, name), dtype=np.float64) for name in _ARRAYS}
-        meta = {name: json_data(getattr(self, name)) for name in _SCALARS}
-        meta["rng_state"] = json_data(self.rng_state)
-        meta["state_version"] = STATE_VERSION
-        return arrays, meta
-
-    @classmethod
-    def from_checkpoint(cls, arrays: dict[str, np.ndarray], meta: dict) -> SolverState:
-        """Rebuild a state written by :meth:`to_checkpoint`."""
-        version = meta.get("state_version")
-        optional = _OPTIONAL.get(version, ())
-        missing = [n for n in _ARRAYS if n not in arrays and n not in optional]
-        if missing:
-            raise CheckpointError(f"solver checkpoint: arrays {', '.join(missing)} missing; "
-                                  "the checkpoint is damaged, resume from an older one")
-        if version not in _READABLE_VERSIONS:
-            raise CheckpointError(f"solver checkpoint: state version {meta.get('state_version')!r}"
-                                  f" is not {STATE_VERSION}; resume it with the ranktide that "
-                                  "wrote it")
-        if meta.get("phase") not in PHASES or not isinstance(meta.get("rng_state"), dict):
-            raise CheckpointError("solver checkpoint: phase or rng_state unreadable; the "
-                                  "checkpoint is damaged, resume from an older one")
-        kw = {n: np.array(arrays[n], dtype=np.float64) for n in _ARRAYS if n in arrays}
-        kw.update({n: meta.get(n) for n in _SCALARS if n in meta})
-        kw["rng_state"] = meta["rng_state"]
-        return cls(**kw)
-
-
-def _generator(state: dict) -> np.random.Generator:
-    bg = getattr(np.random, state["bit_generator"])()
-    bg.state = state
-    gen = np.random.Generator(bg)
-    return gen
-
-
-# ---------------------------------------------------------------- linear algebra
-
-
-def dual_gap(*, objective: float, conjugate: float, scale: float, lam: float,
-             sigma1: float) -> float:
-    """Duality gap ``F + g*(c R)`` at a scaled residual (the Fenchel dual of DESIGN section 2).
-
-    ``g*(Theta) = sum_i omega_i loss*(theta_i / omega_i)`` is the conjugate of
-    the mean loss; ``Theta = c R`` is dual feasible when ``c sigma_1 <= lam``
-    (and ``grad_b f = 0``), and then ``F* >= -g*(c R)``. The pass summed the
-    conjugates at the scale ``c0 = scale`` chosen before it
-    (``conjugate = g*(c0 R)``). With ``c = min(1, lam / sigma_1)``:
-    ``c >= c0`` makes ``c0 R`` itself feasible; ``c < c0`` uses convexity along
-    the ray from ``g*(0) = 0`` (every loss here has infimum 0):
-    ``g*(c R) <= (c / c0) g*(c0 R)``. Near the optimum ``c0 ~ c ~ 1`` and the
-    gap loses about ``(1 - c) lam ||W||_*`` where :func:`gap_estimate` loses
-    ``(1 - c) F``. An estimate like that one (``sigma_1`` from power iteration).
-
-    Returns ``inf`` when no conjugates were summed (``scale = 0``).
-    """
-    if not scale > 0.0:
-        return math.inf
-    c = min(1.0, lam / sigma1) if sigma1 > 0.0 else 1.0
-    conj = conjugate if c >= scale else (c / scale) * conjugate
-    return max(0.0, objective + conj)
-
-
-def gap_estimate(*, inner: float, nuclear: float, objective: float, lam: float,
-                 sigma1: float) -> float:
-    """``<G, W> + lam ||W||_* + (F / lam) max(0, sigma_1 - lam)`` (DESIGN section 2).
-
-    A bound on ``F - F*`` when ``grad_b f = 0`` and ``sigma_1`` is exact; with a
-    lower-bound ``sigma_1`` it is an estimate.
-    """
-    tau = objective / lam
-    return max(0.0, inner + lam * nuclear + tau * max(0.0, sigma1 - lam))
 
 
 def _link(loss: str, b: np.ndarray) -> np.ndarray:
@@ -511,39 +128,6 @@ def _dense_top(G: np.ndarray, count: int, warm: np.ndarray | None = None
         return u[:, :count], sv[:count], vt[:count].T
     res = top_singular_pairs(G, count, tol=1e-10, warm_start=warm, seed=0)
     return res.U, res.sigma, res.V
-
-
-# ---------------------------------------------------------------- result
-
-
-@dataclass(frozen=True)
-class SolverResult:
-    """Outcome of :meth:`GreedySolver.run` (one value of ``lam``)."""
-
-    U: np.ndarray
-    s: np.ndarray
-    V: np.ndarray
-    b: np.ndarray
-    lam: float
-    lam_max: float | None
-    lam_max_settled: bool
-    objective: float
-    gap: float
-    rel_gap: float
-    sigma1: float
-    status: str
-    message: str
-    passes: int
-    seconds: float
-    history: list = field(default_factory=list)
-
-    @property
-    def rank(self) -> int:
-        return int(self.s.shape[0])
-
-    @property
-    def sigma_ratio(self) -> float:
-        return self.sigma1 / self.lam if self.lam else math.inf
 
 
 # ---------------------------------------------------------------- the solver
@@ -612,7 +196,7 @@ class GreedySolver:
         self._mode = "none"
         self.state = state if state is not None else self.initial_state()
         self._check_state(self.state)
-        self._rng = _generator(self.state.rng_state)
+        self._rng = generator_from(self.state.rng_state)
         self._plan_memory()
         self._history: list[dict] = []
 
@@ -1024,7 +608,7 @@ class GreedySolver:
             for name, value in before.items():
                 setattr(st, name, value)
             st.seconds += time.perf_counter() - t0  # spent; the work is redone on resume
-            self._rng = _generator(st.rng_state)
+            self._rng = generator_from(st.rng_state)
             raise
         finally:
             self._before = None

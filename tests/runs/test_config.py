@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from ranktide.errors import CheckpointError, ConfigError
 from ranktide.runs.config import RESUME_MUTABLE, TrainConfig
-from ranktide.solver.greedy import SolverConfig
+from ranktide.solver.config import SolverConfig
 from ranktide.solver.penalty import check_lam
 
 

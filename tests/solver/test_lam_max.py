@@ -11,7 +11,8 @@ import time
 import numpy as np
 import scipy.sparse as sp
 from ranktide.passes.gradient import gradient_pass
-from ranktide.solver.greedy import GreedySolver, SolverConfig
+from ranktide.solver.config import SolverConfig
+from ranktide.solver.greedy import GreedySolver
 
 
 def _clustered(seed, n=3000, d=150, k=60):

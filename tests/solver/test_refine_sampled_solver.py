@@ -14,8 +14,10 @@ import pytest
 import scipy.sparse as sp
 from conic import solve_conic
 from ranktide.atomic import load_npz, save_npz
-from ranktide.solver.greedy import GreedySolver, SolverConfig, SolverState
+from ranktide.solver.config import SolverConfig
+from ranktide.solver.greedy import GreedySolver
 from ranktide.solver.refinement import sample_rows
+from ranktide.solver.state import SolverState
 from scipy.special import expit
 
 

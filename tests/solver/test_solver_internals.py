@@ -21,16 +21,14 @@ from conic import solve_conic
 from ranktide.atomic import load_npz, save_npz
 from ranktide.errors import ConfigError, InputError
 from ranktide.runs.train import train
-from ranktide.solver.greedy import (
-    GreedySolver,
-    SolverConfig,
-    SolverState,
-    gap_estimate,
-    sigma1_lower_bound,
-)
+from ranktide.solver.certificate import gap_estimate
+from ranktide.solver.config import SolverConfig
+from ranktide.solver.greedy import GreedySolver
 from ranktide.solver.refine import refine
+from ranktide.solver.state import SolverState
 from ranktide.solver.subspace import fill as _fill
 from ranktide.solver.subspace import momentum_directions as _momentum
+from ranktide.solver.subspace import sigma1_lower_bound
 from scipy.special import expit, logsumexp
 
 ROOT = Path(__file__).resolve().parents[2]
