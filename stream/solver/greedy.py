@@ -82,12 +82,12 @@ from ranktide.solver.state import (
     generator_from,
 )
 from ranktide.solver.subspace import (
+    dense_top_pairs,
     fill,
     momentum_directions,
     next_blocks,
     sigma1_lower_bound,
     top_left,
-    top_singular_pairs,
 )
 from ranktide.store.memory_source import as_source
 from scipy.special import expit, softmax
@@ -114,23 +114,6 @@ def _link(loss: str, b: np.ndarray) -> np.ndarray:
     if loss == "squared":
         return np.asarray(b, dtype=np.float64)
     return expit(b)
-
-
-def _dense_top(G: np.ndarray, count: int, warm: np.ndarray | None = None
-               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Top ``count`` singular triplets of a dense matrix: LAPACK when small, else the
-    solver's block power iteration (:func:`ranktide.solver.subspace.top_singular_pairs`)
-    warm-started from ``warm``."""
-    d, k = G.shape
-    count = max(1, min(count, min(d, k)))
-    if min(d, k) <= 400 or count >= min(d, k) - 1:
-        u, sv, vt = svd(G)
-        return u[:, :count], sv[:count], vt[:count].T
-    res = top_singular_pairs(G, count, tol=1e-10, warm_start=warm, seed=0)
-    return res.U, res.sigma, res.V
-
-
-# ---------------------------------------------------------------- the solver
 
 
 class GreedySolver:
@@ -438,7 +421,7 @@ class GreedySolver:
 
     def _sigma1(self, req, res) -> float:
         if res.G is not None:
-            return float(_dense_top(res.G, 1)[1][0])
+            return float(dense_top_pairs(res.G, 1)[1][0])
         Gt_Q = np.hstack([res.Gt_U, res.Gt_Psi])
         return sigma1_lower_bound(res.G_VO, Gt_Q)
 
@@ -472,7 +455,7 @@ class GreedySolver:
             Gc = G - U_old @ (U_old.T @ G)
             rot = Gc @ V_old
             Gc = Gc - rot @ V_old.T
-            u, sv, vr = _dense_top(Gc, max(cfg.power_size, cfg.expand_size), warm=st.Omega)
+            u, sv, vr = dense_top_pairs(Gc, max(cfg.power_size, cfg.expand_size), warm=st.Omega)
             new = u[:, : cfg.expand_size] * sv[: cfg.expand_size]
             st.Omega = vr[:, : cfg.power_size]
             st.Psi = np.hstack([top_left(rot, n_rot), top_left(new, cfg.expand_size)])
@@ -543,8 +526,13 @@ class GreedySolver:
             blocks: Any = ScratchProjections.from_files([p.path for p in proj], self.k)
         else:
             blocks = MemoryProjections([(p.XQ, p.targets, p.weights) for p in proj])
+        # what the budget leaves beside the floor, the model and the cached projections
+        # (the pass's blocks and accumulators are gone)
+        room = self.plan.work_bytes - self.plan.breakdown.get("model", 0) \
+            - self.plan.breakdown.get("projections", 0)
         rows = sample_rows(n=self.n, q=q, k=self.k, loss=cfg.loss, budget=self._budget,
-                           configured=cfg.refine_sample_rows, grown=st.refine_sample_rows)
+                           configured=cfg.refine_sample_rows, grown=st.refine_sample_rows,
+                           room=room)
         bar = RefineBar(self.progress, st.passes)
         hook = self.refine_progress
 

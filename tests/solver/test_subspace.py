@@ -245,3 +245,21 @@ def test_svd_falls_back_to_gesvd_when_gesdd_fails(monkeypatch):
     np.testing.assert_allclose(s, want[1], rtol=1e-14)
     np.testing.assert_allclose((U * s) @ Vt, A, atol=1e-12)
     np.testing.assert_allclose(svd_mod.singular_values(A), want[1], rtol=1e-14)
+
+
+@pytest.mark.parametrize("shape, rank", [((4000, 40), 40), ((3000, 30), 5), ((200, 150), 150)])
+def test_dense_top_pairs_against_numpy_svd(shape, rank):
+    from ranktide.solver.subspace import dense_top_pairs
+
+    # reference: numpy.linalg.svd (LAPACK), compared sign-invariantly
+    rng = np.random.default_rng(7)
+    d, k = shape
+    scale = np.geomspace(1, 1e-3, rank)[:, None]
+    A = rng.normal(size=(d, rank)) @ (rng.normal(size=(rank, k)) * scale)
+    U, s, V = dense_top_pairs(A, 6)
+    u_ref, s_ref, vt_ref = np.linalg.svd(A, full_matrices=False)
+    np.testing.assert_allclose(s, s_ref[:6], rtol=1e-10, atol=1e-10 * s_ref[0])
+    m = min(6, rank)  # beyond the rank the directions are any orthonormal completion
+    np.testing.assert_allclose(np.abs(np.sum(U[:, :m] * u_ref[:, :m], axis=0)), 1.0, atol=1e-8)
+    np.testing.assert_allclose(np.abs(np.sum(V[:, :m] * vt_ref[:m].T, axis=0)), 1.0, atol=1e-8)
+    np.testing.assert_allclose(U.T @ U, np.eye(6), atol=1e-12)
