@@ -105,6 +105,11 @@ class Loss(ABC):
         """The best intercept alone from the weighted mean target (k,)."""
 
     @abstractmethod
+    def mean_at(self, b: np.ndarray) -> np.ndarray:
+        """The expected target (k,) at a constant score ``b`` (k,): a row's residual at
+        ``W = 0`` is ``w_i (mean_at(b) - y_i)`` (the inverse link)."""
+
+    @abstractmethod
     def probabilities(self, Z: np.ndarray, top: np.ndarray | None = None) -> np.ndarray:
         """Probabilities from all scores ``Z`` (n, k); of ``top`` (n, K) scores when given."""
 
@@ -190,6 +195,11 @@ class SoftmaxLoss(Loss):
         b = np.log(np.clip(mean, clip, None))
         return b - b.mean()
 
+    def mean_at(self, b):
+        z = np.asarray(b, dtype=np.float64)
+        e = np.exp(z - z.max())
+        return e / e.sum()
+
     def probabilities(self, Z, top=None):
         zmax = Z.max(axis=1, keepdims=True)
         lse = zmax + np.log(np.exp(Z - zmax).sum(axis=1, keepdims=True))
@@ -217,6 +227,9 @@ class SquaredLoss(Loss):
     def intercept_link(self, mean, clip=FREQ_CLIP):
         return np.asarray(mean, dtype=np.float64)
 
+    def mean_at(self, b):
+        return np.asarray(b, dtype=np.float64)
+
     def probabilities(self, Z, top=None):
         raise ConfigError("model: the squared loss predicts values, not probabilities; "
                           "use predict()")
@@ -243,6 +256,9 @@ class MultilabelLoss(Loss):
     def intercept_link(self, mean, clip=FREQ_CLIP):
         p = np.clip(mean, clip, 1.0 - clip)
         return np.log(p) - np.log1p(-p)
+
+    def mean_at(self, b):
+        return 0.5 * (1.0 + np.tanh(0.5 * np.asarray(b, dtype=np.float64)))
 
     def probabilities(self, Z, top=None):
         # sigmoid, written to avoid overflow for large |z|

@@ -52,7 +52,7 @@ import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import CheckpointError, ConfigError
 from ranktide.kernels.svd import svd
-from ranktide.losses import intercept_from_sums
+from ranktide.losses import get_loss, intercept_from_sums
 from ranktide.passes.budget import (
     FLOOR_QUANTUM,
     Plan,
@@ -90,7 +90,6 @@ from ranktide.solver.subspace import (
     top_left,
 )
 from ranktide.store.memory_source import as_source
-from scipy.special import expit, softmax
 
 __all__ = ["GreedySolver"]
 
@@ -104,16 +103,6 @@ __all__ = ["GreedySolver"]
 # 3.75228 (87 s) with 0.2 and 3.74986 (74 s) with 0.5. On the smaller problem a cap of 10
 # inner steps did as well as 0.5 and a cap of 5 stalled the outer loop.
 _INNER_STALL = 0.5
-
-
-def _link(loss: str, b: np.ndarray) -> np.ndarray:
-    """The score-to-mean map at a constant score ``b``: a row's residual is ``omega_i
-    (link(b) - y_i)`` at ``W = 0`` (softmax, identity, logistic)."""
-    if loss == "softmax":
-        return softmax(b)
-    if loss == "squared":
-        return np.asarray(b, dtype=np.float64)
-    return expit(b)
 
 
 class GreedySolver:
@@ -433,15 +422,11 @@ class GreedySolver:
         frequencies), squared ``b - grad_b``, multilabel ``sigmoid(b) - grad_b``;
         :func:`ranktide.losses.intercept_from_sums` turns them into ``b0``.
         """
-        b, g = self.state.b, res.grad_b
-        if self.config.loss == "softmax":
-            mean = softmax(b) - g
-        elif self.config.loss == "squared":
-            mean = b - g
-        else:
-            mean = expit(b) - g
-        return intercept_from_sums(self.config.loss, 1.0, np.clip(mean, 0.0, None)
-                                   if self.config.loss != "squared" else mean)
+        loss = get_loss(self.config.loss)
+        mean = loss.mean_at(self.state.b) - res.grad_b
+        # frequencies are clipped at 0; values are not
+        return intercept_from_sums(loss, 1.0, np.clip(mean, 0.0, None)
+                                   if loss.has_probabilities else mean)
 
     def _next_blocks(self, req, res) -> None:
         """Next ``Psi`` and ``Omega`` from this pass's products (before the refinement):
@@ -681,7 +666,7 @@ class GreedySolver:
         cap = 2 * max(cfg.power_size, cfg.expand_size, cfg.lam_max_width)
         if not st.intercept_ready:
             b0 = self._intercept_from_pass(res)
-            delta = _link(cfg.loss, b0) - _link(cfg.loss, req.b)
+            delta = get_loss(cfg.loss).mean_at(b0) - get_loss(cfg.loss).mean_at(req.b)
             coef = req.Omega.T @ delta
             if float(np.linalg.norm(coef)) > 1e-14 * max(float(np.linalg.norm(delta)), 1e-300):
                 N = np.linalg.svd(coef[None, :])[2][1:].T  # null space of coef^T
