@@ -435,7 +435,10 @@ def format_report(summary: dict[str, Any]) -> str:
         ["passes", summary["passes"]], ["blocks", summary["blocks"]],
         ["rows", int(tot["rows"])], ["wall seconds", tot["wall_s"]],
         ["rows/s", fmt(t["rows_per_s"], ".4g")], ["nnz/s", fmt(t["nnz_per_s"], ".4g")],
-        ["decoded MB/s", fmt(t["decoded_MB_per_s"], ".4g")],
+        # a pass that decoded nothing (chunks already decoded, or in-memory data) says so
+        ["MB decoded", fmt(tot["bytes_decoded"] / 1e6, ".4g") if tot["bytes_decoded"] else
+         "none (cached)"],
+        ["decoded MB/s", fmt(t["decoded_MB_per_s"], ".4g") if tot["bytes_decoded"] else "-"],
         ["wait seconds", tot["wait_s"]],
         ["verdict", f"{summary['verdict']} (io/compute = {summary['verdict_ratio']:.3g})"],
     ], ["figure", "value"])
