@@ -192,6 +192,21 @@ class Projection:
     path: str | None = None
 
 
+def _own(a: Any) -> Any:
+    """``a`` in memory of its own: a copy when it is a view of a larger buffer.
+
+    A store block's targets and weights are views of the reader's buffers, which
+    span whole store chunks; a kept projection holding such a view pins the whole
+    buffer. Measured (600k rows, 2662-row blocks, 131k-row chunks): 244 MiB of
+    buffers kept through the pass and the refinement for 2.3 MiB of targets.
+    """
+    if a is None:
+        return None
+    if isinstance(a, np.ndarray):
+        return a.copy() if a.base is not None else a
+    return a.copy()  # a sparse matrix (tags): copies its arrays
+
+
 @dataclass(frozen=True)
 class PassResult:
     """The figures of one gradient pass (all divided by ``weight_total``).
@@ -371,8 +386,8 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
                 start=int(block.start),
                 stop=int(block.stop),
                 XQ=XQ,
-                targets=block.targets,
-                weights=block.weights,
+                targets=_own(block.targets),
+                weights=_own(block.weights),
             )
         ]
     # the combine adds X^T D and records the block's sparse time with the path chooser

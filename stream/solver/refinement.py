@@ -38,10 +38,14 @@ MIN_SAMPLE_ROWS = 2_000
 _MIN_RATIO = 4
 # The sample's in-memory refinement may take this fraction of the memory budget.
 _BUDGET_SHARE = 0.25
+# ... and this fraction of what the budget leaves beside the floor, the model and the
+# cached projections (the rest: the refinement's other arrays and the allocator's slack;
+# measured 43 MiB above floor + model + projections before a refinement at 600k rows)
+_ROOM_SHARE = 0.5
 
 
 def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: int | None,
-                grown: int) -> int:
+                grown: int, room: int | None = None) -> int:
     """Rows of the refinement's sample (0: the exact refinement).
 
     Parameters
@@ -61,6 +65,11 @@ def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: i
     grown : int
         The size the sample has grown to (``SolverState.refine_sample_rows``;
         0: not grown yet).
+    room : int, optional
+        Bytes the budget leaves when the refinement starts (less the process
+        floor, the model and the projections held in memory): the automatic
+        sample takes at most half of it (grown past that: 0, the exact
+        refinement). None: only ``budget`` limits it.
 
     Returns
     -------
@@ -71,13 +80,18 @@ def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: i
     if configured is None:
         if loss == "squared":
             return 0
-        fit = int(_BUDGET_SHARE * budget) // (8 * (q + 5 * k))
+        share = int(_BUDGET_SHARE * budget)
+        if room is not None:
+            share = min(share, int(_ROOM_SHARE * max(0, room)))
+        fit = share // (8 * (q + 5 * k))
         m = min(DEFAULT_SAMPLE_ROWS, fit)
         if m < MIN_SAMPLE_ROWS or n < _MIN_RATIO * m:
             return 0
+        m = max(m, int(grown))
+        if room is not None and m > fit:
+            return 0  # grown past what is left: the exact refinement, planned in blocks
     else:
-        m = int(configured)
-    m = max(m, int(grown))
+        m = max(int(configured), int(grown))
     return 0 if 2 * m > n else m
 
 
