@@ -13,7 +13,7 @@ from __future__ import annotations
 import numpy as np
 
 from .errors import KernelConfigError
-from .svd import svd
+from .svd import qr_tall, svd
 
 
 def orth_rank_revealing(A: np.ndarray, tol: float = 1e-10, *, atol: float = 0.0) -> np.ndarray:
@@ -43,7 +43,7 @@ def orth_rank_revealing(A: np.ndarray, tol: float = 1e-10, *, atol: float = 0.0)
         return np.zeros((m, 0))
     if not np.all(np.isfinite(A)):
         raise KernelConfigError("orth_rank_revealing: A has a non-finite entry")
-    Q, R = np.linalg.qr(A)
+    Q, R = qr_tall(A)
     Ur, S, _ = svd(R)
     if S[0] <= 0.0:
         return np.zeros((m, 0))

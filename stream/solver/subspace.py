@@ -31,7 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 from ranktide.kernels.errors import KernelConfigError
 from ranktide.kernels.power import orth_against, orth_rank_revealing
-from ranktide.kernels.svd import svd
+from ranktide.kernels.svd import qr_tall, svd
 
 __all__ = [
     "KrylovUnion",
@@ -91,7 +91,7 @@ def top_left(M: np.ndarray, count: int, *, rtol: float = 1e-8) -> np.ndarray:
     """Top ``count`` left singular directions of ``M`` (d x c), negligible ones dropped."""
     if M.shape[1] == 0 or count <= 0:
         return np.zeros((M.shape[0], 0))
-    Q, R = np.linalg.qr(M)
+    Q, R = qr_tall(M)
     u, sv, _ = svd(R)
     if sv[0] <= 0:
         return np.zeros((M.shape[0], 0))
@@ -374,7 +374,7 @@ def dense_top_pairs(G: np.ndarray, count: int, warm: np.ndarray | None = None
     if k <= 400 and d >= 8 * k:
         _, evecs = np.linalg.eigh(G.T @ G)
         V0 = evecs[:, ::-1][:, :count]
-        Q, _ = np.linalg.qr(G @ V0)
+        Q, _ = qr_tall(G @ V0)
         ub, sv, vbt = svd(Q.T @ G)
         return Q @ ub[:, :count], sv[:count], vbt[:count].T
     if min(d, k) <= 400 or count >= min(d, k) - 1:
