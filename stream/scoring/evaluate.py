@@ -24,6 +24,12 @@ from ranktide.passes.engine import run_pass
 from ranktide.scoring.files import open_file_source
 from ranktide.scoring.metrics import make_metrics
 from ranktide.store import open_store
+from ranktide.store.memory_source import (
+    infer_kind,
+    standard_matrix,
+    standard_targets,
+    standard_weights,
+)
 
 __all__ = [
     "evaluate",
@@ -159,46 +165,17 @@ class DataSource:
 
 
 def _in_memory(X: Any, targets: Any = None, weights: Any = None) -> DataSource:
-    """Standardize in-memory input: CSR features, targets of a known kind."""
-    if not sp.issparse(X):
-        X = np.asarray(X)
-        if X.ndim != 2:
-            raise InputError(
-                f"<array>: features have shape {X.shape}; pass a 2-D (rows, cols) matrix"
-            )
-    X = sp.csr_matrix(X, dtype=np.float32)
+    """In-memory input through the one standardizer of :mod:`ranktide.store.memory_source`
+    (the same rules as training: dense or sparse X, class ids / values / tags, weights)."""
+    X = standard_matrix(X)
     n = X.shape[0]
-    kind = None
+    kind = infer_kind(targets)
     k = None
-    if targets is not None:
-        if sp.issparse(targets):
-            targets = sp.csr_matrix(targets, dtype=np.float32)
-            kind, k = "tags", targets.shape[1]
-        else:
-            targets = np.asarray(targets)
-            if targets.ndim == 1 and np.issubdtype(targets.dtype, np.integer):
-                kind, k = "classes", (int(targets.max()) + 1 if targets.size else 0)
-            elif targets.ndim == 2:
-                kind, k = "values", targets.shape[1]
-            else:
-                raise InputError(
-                    f"<array>: targets of dtype {targets.dtype} and shape {targets.shape}; pass "
-                    "integer class ids (n,), a float matrix (n, k) or a sparse tag matrix (n, k)"
-                )
-        if targets.shape[0] != n:
-            raise InputError(
-                f"<array>: {targets.shape[0]} target rows for {n} feature rows; pass one per row"
-            )
-    if weights is not None:
-        weights = np.asarray(weights, dtype=np.float32).reshape(-1)
-        if weights.shape[0] != n:
-            raise InputError(f"<array>: {weights.shape[0]} weights for {n} rows; pass one per row")
-        if not np.all(np.isfinite(weights)) or (weights < 0).any():
-            bad = int(np.flatnonzero(~(np.isfinite(weights) & (weights >= 0)))[0])
-            raise InputError(f"<array>: row {bad}: weight {weights[bad]} is not finite and >= 0")
+    if kind is not None:
+        targets, k = standard_targets(targets, kind, n)
     return DataSource(
         name="<array>", n_rows=n, n_cols=X.shape[1], target_kind=kind, n_outputs=k,
-        X=X, targets=targets, weights=weights,
+        X=X, targets=targets, weights=standard_weights(weights, n),
     )
 
 
@@ -344,8 +321,8 @@ def _check_classes(y: np.ndarray, k: int, name: str, start: int) -> None:
     if bad.size:
         i = int(bad[0])
         raise InputError(
-            f"{name}: row {start + i}: class id {int(y[i])} is outside 0..{k - 1} of the model; "
-            "evaluate with the store the model's classes came from"
+            f"{name}: row {start + i + 1}: class id {int(y[i])} is outside 0..{k - 1} of the "
+            "model; evaluate with the store the model's classes came from"
         )
 
 

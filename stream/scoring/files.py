@@ -319,7 +319,7 @@ def open_file_source(path: str | os.PathLike, *, labels: Any = None, values: Any
         if bad.any():
             j = int(np.flatnonzero(bad)[0])
             r = int(np.searchsorted(X.indptr, j, side="right")) - 1
-            raise InputError(f"{p}: entry (row {r}, column {int(X.indices[j])}) is not "
+            raise InputError(f"{p}: entry (row {r + 1}, column {int(X.indices[j]) + 1}) is not "
                              "finite; remove it or give a finite value")
     tsrc = open_targets(labels=labels, values=values, tags=tags)
     wsrc = open_weights(weights)
