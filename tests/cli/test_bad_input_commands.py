@@ -10,7 +10,6 @@ tests/ingest/test_input_text.py).
 from __future__ import annotations
 
 import re
-import shutil
 from pathlib import Path
 
 import numpy as np
@@ -42,13 +41,6 @@ def base(tmp_path_factory) -> Path:
     (root / "adir").mkdir()
     return root
 
-
-@pytest.fixture
-def ws(base, tmp_path, monkeypatch) -> Path:
-    dst = tmp_path / "ws"
-    shutil.copytree(base, dst)
-    monkeypatch.chdir(dst)
-    return dst
 
 
 TRAIN = ["train", "S.zarr", "--loss", "softmax", "--quiet"]

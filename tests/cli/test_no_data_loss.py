@@ -12,7 +12,6 @@ from __future__ import annotations
 import json
 import os
 import re
-import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -40,14 +39,6 @@ def base(tmp_path_factory) -> Path:
                  "--out", str(root / "R"), "--quiet"]) == 0
     return root
 
-
-@pytest.fixture
-def ws(base, tmp_path, monkeypatch) -> Path:
-    """A copy of the workspace, also the working directory (commands use relative paths)."""
-    dst = tmp_path / "ws"
-    shutil.copytree(base, dst, symlinks=True)
-    monkeypatch.chdir(dst)
-    return dst
 
 
 TRAIN = ("train", "S.zarr", "--loss", "softmax", "--lam", "0.01", "--quiet")

@@ -36,13 +36,6 @@ def base(tmp_path_factory) -> Path:
     return root
 
 
-@pytest.fixture
-def ws(base, tmp_path, monkeypatch) -> Path:
-    dst = tmp_path / "ws"
-    shutil.copytree(base, dst, symlinks=True)
-    monkeypatch.chdir(dst)
-    return dst
-
 
 def _commands(out: Path) -> list[tuple[str, list]]:
     return [
