@@ -5,7 +5,8 @@ Systems (each runs in its own child process so that its peak RSS is its own):
 ``lr``
     ``LogisticRegression`` (lbfgs; multinomial softmax for more than two classes, L2
     penalty, the only kind in scikit-learn >= 1.8 when ``l1_ratio=0``).  ``C`` is chosen on
-    the validation split by accuracy from ``--lr-grid``, fitting on ``train``; the chosen
+    the validation split by accuracy from ``--lr-grid``, fitting on ``train`` (a one-value
+    grid skips the selection fits: for a ``C`` already chosen by an earlier run); the chosen
     ``C`` is then refit on ``train + val`` (the whole 80 % training part), and that single
     fit is the one timed as ``fit_s`` and scored on ``test``.
 ``sgd``
@@ -16,7 +17,8 @@ Systems (each runs in its own child process so that its peak RSS is its own):
     the chunks in a fresh random order.  ``alpha`` is chosen from ``--sgd-alphas`` on the
     validation split by accuracy and refit on ``train + val``.
 ``tags``
-    One-vs-rest ``LogisticRegression(solver="liblinear")`` for the debtags.  Only tagged
+    One-vs-rest for the debtags: one binary ``LogisticRegression(solver="liblinear")``
+    per tag, fitted in a plain loop (coefficients stacked into a (T, d) matrix).  Only tagged
     rows are used (an untagged package is unlabelled, not negative).  The label space is
     the tags with at least ``--tag-min-count`` positives in ``train``; tags outside it are
     ignored in the scores, and rows left with no tag in that space are dropped.  ``C`` is
@@ -26,10 +28,10 @@ Systems (each runs in its own child process so that its peak RSS is its own):
 
 Reported per system: test accuracy, macro-F1, rare-class recall (mean recall over the
 bottom quartile, ``ceil(n_classes / 4)`` classes, of classes ranked by training-row count,
-ties by class name), log-loss, fit seconds of the final fit, the total seconds of the
-selection fits, peak RSS of the child process (``ru_maxrss``, data loading included) and
-the RSS right after loading, and model bytes: the length of an uncompressed ``numpy.savez``
-of ``coef_`` and ``intercept_``.
+ties by class index), log-loss, wall and CPU (user + system, all threads) seconds of the
+final fit, the total wall seconds of the selection fits, peak RSS of the child process
+(``ru_maxrss``, data loading included) and the RSS right after loading, and model bytes:
+the length of an uncompressed ``numpy.savez`` of ``coef_`` and ``intercept_``.
 
 Usage::
 
@@ -38,6 +40,8 @@ Usage::
         --out /tmp/bench_real
 
 Writes ``<out>/<system>.json`` per system and ``<out>/results.json``, prints a table.
+``--collect DIR [DIR ...]`` runs nothing: it gathers ``<system>.json`` files already
+written to those directories (systems run separately) into ``<out>/results.json``.
 No pickle is used anywhere (the children report through JSON files).
 """
 
@@ -64,7 +68,6 @@ import sklearn
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression, SGDClassifier
 from sklearn.metrics import accuracy_score, f1_score, log_loss, recall_score
-from sklearn.multiclass import OneVsRestClassifier
 
 SPLITS = ("train", "val", "test")
 SYSTEMS = ("lr", "sgd", "tags")
@@ -186,10 +189,14 @@ def full_proba(model, X: sp.csr_matrix, n_classes: int) -> np.ndarray:
 
 
 def timed(fn, *args):
-    """Call ``fn(*args)``; return ``(result, seconds)``."""
-    t0 = time.perf_counter()
+    """Call ``fn(*args)``; return ``(result, wall_seconds, cpu_seconds)``.
+
+    CPU seconds are this process's user + system time (all its threads), a figure that a
+    loaded, shared machine inflates less than wall time.
+    """
+    t0, c0 = time.perf_counter(), time.process_time()
     result = fn(*args)
-    return result, time.perf_counter() - t0
+    return result, time.perf_counter() - t0, time.process_time() - c0
 
 
 def log(msg: str) -> None:
@@ -208,17 +215,26 @@ def fit_lr(X: sp.csr_matrix, y: np.ndarray, C: float, max_iter: int) -> Logistic
 def run_lr(args: argparse.Namespace, X: dict, y: dict, n_classes: int) -> dict:
     """Select ``C`` on validation, refit on train + val, score on test."""
     grid = []
-    for C in args.lr_grid:
-        model, secs = timed(fit_lr, X["train"], y["train"], C, args.lr_max_iter)
+    for C in args.lr_grid if len(args.lr_grid) > 1 else []:
+        model, secs, cpu = timed(fit_lr, X["train"], y["train"], C, args.lr_max_iter)
         val_acc = float(accuracy_score(y["val"], model.predict(X["val"])))
         grid.append(
-            {"C": C, "val_accuracy": val_acc, "fit_s": secs, "n_iter": int(model.n_iter_[0])}
+            {
+                "C": C,
+                "val_accuracy": val_acc,
+                "fit_s": secs,
+                "fit_cpu_s": cpu,
+                "n_iter": int(model.n_iter_[0]),
+            }
         )
-        log(f"lr C={C:g} val_acc={val_acc:.4f} fit_s={secs:.1f} n_iter={grid[-1]['n_iter']}")
-    best = max(grid, key=lambda g: g["val_accuracy"])
+        log(
+            f"lr C={C:g} val_acc={val_acc:.4f} fit_s={secs:.1f} cpu_s={cpu:.1f} "
+            f"n_iter={grid[-1]['n_iter']}"
+        )
+    best = max(grid, key=lambda g: g["val_accuracy"]) if grid else {"C": args.lr_grid[0]}
     Xf, yf = train_full(X, y)
-    model, secs = timed(fit_lr, Xf, yf, best["C"], args.lr_max_iter)
-    log(f"lr refit C={best['C']:g} fit_s={secs:.1f}")
+    model, secs, cpu = timed(fit_lr, Xf, yf, best["C"], args.lr_max_iter)
+    log(f"lr refit C={best['C']:g} fit_s={secs:.1f} cpu_s={cpu:.1f}")
     scores = class_scores(
         y["test"],
         full_proba(model, X["test"], n_classes),
@@ -236,6 +252,7 @@ def run_lr(args: argparse.Namespace, X: dict, y: dict, n_classes: int) -> dict:
         "grid": grid,
         "select_s": sum(g["fit_s"] for g in grid),
         "fit_s": secs,
+        "fit_cpu_s": cpu,
         "model_bytes": model_bytes(model.coef_, model.intercept_),
         **scores,
     }
@@ -266,14 +283,14 @@ def run_sgd(args: argparse.Namespace, X: dict, y: dict, n_classes: int) -> dict:
     """Select ``alpha`` on validation, refit on train + val, score on test."""
     grid = []
     for alpha in args.sgd_alphas:
-        model, secs = timed(fit_sgd, X["train"], y["train"], alpha, args, n_classes)
+        model, secs, cpu = timed(fit_sgd, X["train"], y["train"], alpha, args, n_classes)
         val_acc = float(accuracy_score(y["val"], model.predict(X["val"])))
-        grid.append({"alpha": alpha, "val_accuracy": val_acc, "fit_s": secs})
-        log(f"sgd alpha={alpha:g} val_acc={val_acc:.4f} fit_s={secs:.1f}")
+        grid.append({"alpha": alpha, "val_accuracy": val_acc, "fit_s": secs, "fit_cpu_s": cpu})
+        log(f"sgd alpha={alpha:g} val_acc={val_acc:.4f} fit_s={secs:.1f} cpu_s={cpu:.1f}")
     best = max(grid, key=lambda g: g["val_accuracy"])
     Xf, yf = train_full(X, y)
-    model, secs = timed(fit_sgd, Xf, yf, best["alpha"], args, n_classes)
-    log(f"sgd refit alpha={best['alpha']:g} fit_s={secs:.1f}")
+    model, secs, cpu = timed(fit_sgd, Xf, yf, best["alpha"], args, n_classes)
+    log(f"sgd refit alpha={best['alpha']:g} fit_s={secs:.1f} cpu_s={cpu:.1f}")
     scores = class_scores(
         y["test"],
         full_proba(model, X["test"], n_classes),
@@ -290,6 +307,7 @@ def run_sgd(args: argparse.Namespace, X: dict, y: dict, n_classes: int) -> dict:
         "grid": grid,
         "select_s": sum(g["fit_s"] for g in grid),
         "fit_s": secs,
+        "fit_cpu_s": cpu,
         "model_bytes": model_bytes(model.coef_, model.intercept_),
         **scores,
     }
@@ -341,30 +359,70 @@ def precision_at(Y: np.ndarray, scores: np.ndarray, k: int) -> float:
     return float(np.take_along_axis(Y, top, axis=1).sum(axis=1).mean() / k)
 
 
-def fit_tags(X: sp.csr_matrix, Y: np.ndarray, C: float) -> OneVsRestClassifier:
-    """One-vs-rest liblinear logistic regressions, ``X`` (m, d), ``Y`` (m, T)."""
-    return OneVsRestClassifier(LogisticRegression(C=C, solver="liblinear")).fit(X, Y)
+def fit_tags(X: sp.csr_matrix, Y: np.ndarray, C: float) -> tuple[np.ndarray, np.ndarray]:
+    """One-vs-rest: one binary liblinear logistic regression per tag.
+
+    Parameters
+    ----------
+    X : csr_matrix
+        Shape (m, d).
+    Y : ndarray of int8
+        Indicator matrix, shape (m, T); every column has positives and negatives.
+    C : float
+        Inverse L2 strength of every binary problem.
+
+    Returns
+    -------
+    coef : ndarray
+        Shape (T, d).
+    intercept : ndarray
+        Shape (T,).
+    """
+    coef = np.empty((Y.shape[1], X.shape[1]))
+    intercept = np.empty(Y.shape[1])
+    for j in range(Y.shape[1]):
+        model = LogisticRegression(C=C, solver="liblinear").fit(X, Y[:, j])
+        coef[j], intercept[j] = model.coef_[0], model.intercept_[0]
+    return coef, intercept
+
+
+def tag_scores(X: sp.csr_matrix, coef: np.ndarray, intercept: np.ndarray) -> np.ndarray:
+    """Decision scores, shape (m, T); a tag is predicted where its score is > 0 (p > 0.5)."""
+    return np.asarray(X @ coef.T) + intercept
 
 
 def run_tags(args: argparse.Namespace, X: dict, tags: dict) -> dict:
     """Select ``C`` on validation micro-F1, refit on train + val, score on test."""
     space = tag_space(tags["train"], args.tag_min_count)
     D = {s: tag_matrix(X[s], tags[s], space) for s in SPLITS}
+    Xv, Yv = D["val"]
     grid = []
     for C in args.tag_grid:
-        model, secs = timed(fit_tags, *D["train"], C)
-        val_f1 = float(f1_score(D["val"][1], model.predict(D["val"][0]), average="micro"))
-        grid.append({"C": C, "val_micro_f1": val_f1, "fit_s": secs})
-        log(f"tags C={C:g} val_micro_f1={val_f1:.4f} fit_s={secs:.1f}")
+        (coef, b), secs, cpu = timed(fit_tags, *D["train"], C)
+        pred = (tag_scores(Xv, coef, b) > 0).astype(np.int8)
+        val_f1 = float(f1_score(Yv, pred, average="micro", zero_division=0))
+        grid.append(
+            {
+                "C": C,
+                "val_micro_f1": val_f1,
+                "fit_s": secs,
+                "fit_cpu_s": cpu,
+                "val_pred_pos": int(pred.sum()),
+                "val_true_pos": int(Yv.sum()),
+            }
+        )
+        log(
+            f"tags C={C:g} val_micro_f1={val_f1:.4f} fit_s={secs:.1f} cpu_s={cpu:.1f} "
+            f"pred_pos={pred.sum()} true_pos={Yv.sum()}"
+        )
     best = max(grid, key=lambda g: g["val_micro_f1"])
-    Xf = sp.vstack([D["train"][0], D["val"][0]], format="csr")
-    Yf = np.vstack([D["train"][1], D["val"][1]])
-    model, secs = timed(fit_tags, Xf, Yf, best["C"])
-    log(f"tags refit C={best['C']:g} fit_s={secs:.1f}")
+    Xf = sp.vstack([D["train"][0], Xv], format="csr")
+    Yf = np.vstack([D["train"][1], Yv])
+    (coef, b), secs, cpu = timed(fit_tags, Xf, Yf, best["C"])
+    log(f"tags refit C={best['C']:g} fit_s={secs:.1f} cpu_s={cpu:.1f}")
     Xt, Yt = D["test"]
-    scores, pred = model.decision_function(Xt), model.predict(Xt)
-    coef = np.vstack([e.coef_ for e in model.estimators_])
-    intercept = np.concatenate([e.intercept_ for e in model.estimators_])
+    scores = tag_scores(Xt, coef, b)
+    pred = (scores > 0).astype(np.int8)
     return {
         "system": f"OvR LogisticRegression(C={best['C']:g}) on {len(space)} tags",
         "params": {
@@ -376,7 +434,8 @@ def run_tags(args: argparse.Namespace, X: dict, tags: dict) -> dict:
         "grid": grid,
         "select_s": sum(g["fit_s"] for g in grid),
         "fit_s": secs,
-        "model_bytes": model_bytes(coef, intercept),
+        "fit_cpu_s": cpu,
+        "model_bytes": model_bytes(coef, b),
         "micro_f1": float(f1_score(Yt, pred, average="micro", zero_division=0)),
         "macro_f1": float(f1_score(Yt, pred, average="macro", zero_division=0)),
         "p_at_1": precision_at(Yt, scores, 1),
@@ -391,7 +450,7 @@ def run_child(args: argparse.Namespace) -> None:
     """Run one system in this process and write ``<out>/<system>.json``."""
     warnings.simplefilter("ignore", ConvergenceWarning)  # recorded as n_iter / converged
     X, y, tags, classes = load_data(args.data)
-    rss_loaded = rss_mib()
+    rss_loaded, load_start = rss_mib(), os.getloadavg()
     log(f"{args.child}: loaded {X['train'].shape} train, rss={rss_loaded:.0f} MiB")
     if args.child == "lr":
         res = run_lr(args, X, y, len(classes))
@@ -400,6 +459,7 @@ def run_child(args: argparse.Namespace) -> None:
     else:
         res = run_tags(args, X, tags)
     res.update(rss_after_load_mib=rss_loaded, peak_rss_mib=peak_rss_mib())
+    res.update(loadavg_start=load_start, loadavg_end=os.getloadavg())
     (args.out / f"{args.child}.json").write_text(json.dumps(res, indent=1) + "\n")
 
 
@@ -425,7 +485,7 @@ def table(results: list[dict]) -> str:
     """Plain-text table of the results."""
     cols = [("accuracy", ".4f"), ("macro_f1", ".4f"), ("rare_recall", ".4f"),
             ("log_loss", ".4f"), ("micro_f1", ".4f"), ("p_at_1", ".4f"), ("p_at_5", ".4f"),
-            ("fit_s", ".1f"), ("select_s", ".1f"), ("peak_rss_mib", ".0f"),
+            ("fit_s", ".1f"), ("fit_cpu_s", ".1f"), ("select_s", ".1f"), ("peak_rss_mib", ".0f"),
             ("model_bytes", ",d")]  # fmt: skip
     lines = [" | ".join(["system"] + [c for c, _ in cols])]
     for r in results:
@@ -438,8 +498,14 @@ def run_parent(args: argparse.Namespace) -> None:
     args.out.mkdir(parents=True, exist_ok=True)
     results = []
     for system in args.systems:
-        subprocess.run(child_argv(args, system), check=True)
-        results.append(json.loads((args.out / f"{system}.json").read_text()))
+        if args.collect:
+            path = next(
+                d / f"{system}.json" for d in args.collect if (d / f"{system}.json").exists()
+            )
+        else:
+            subprocess.run(child_argv(args, system), check=True)
+            path = args.out / f"{system}.json"
+        results.append(json.loads(path.read_text()))
     meta = {
         "data": str(args.data),
         "data_summary": json.loads((args.data / "summary.json").read_text())["options"],
@@ -467,13 +533,14 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     ap.add_argument("--out", type=Path, required=True)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--systems", type=lambda s: s.split(","), default=list(SYSTEMS))
-    ap.add_argument("--lr-grid", type=floats, default=[1.0, 10.0, 100.0])
+    ap.add_argument("--lr-grid", type=floats, default=[1.0, 10.0])
     ap.add_argument("--lr-max-iter", type=int, default=500)
     ap.add_argument("--sgd-alphas", type=floats, default=[1e-4, 1e-5, 1e-6])
-    ap.add_argument("--sgd-epochs", type=int, default=10)
+    ap.add_argument("--sgd-epochs", type=int, default=5)
     ap.add_argument("--chunk-rows", type=int, default=4096)
     ap.add_argument("--tag-grid", type=floats, default=[1.0, 10.0])
-    ap.add_argument("--tag-min-count", type=int, default=20)
+    ap.add_argument("--tag-min-count", type=int, default=100)
+    ap.add_argument("--collect", type=Path, nargs="+", help="gather existing <system>.json")
     ap.add_argument("--child", choices=SYSTEMS, help=argparse.SUPPRESS)
     return ap.parse_args(argv)
 
