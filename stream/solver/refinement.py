@@ -41,7 +41,7 @@ _BUDGET_SHARE = 0.25
 # ... and this fraction of what the budget leaves beside the floor, the model and the
 # cached projections (the rest: the refinement's other arrays and the allocator's slack;
 # measured 43 MiB above floor + model + projections before a refinement at 600k rows)
-_ROOM_SHARE = 0.5
+_ROOM_SHARE = 0.3
 
 
 def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: int | None,
@@ -68,8 +68,8 @@ def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: i
     room : int, optional
         Bytes the budget leaves when the refinement starts (less the process
         floor, the model and the projections held in memory): the automatic
-        sample takes at most half of it (grown past that: 0, the exact
-        refinement). None: only ``budget`` limits it.
+        sample takes at most 30% of it, grown or not. None: only ``budget``
+        limits it.
 
     Returns
     -------
@@ -88,8 +88,8 @@ def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: i
         if m < MIN_SAMPLE_ROWS or n < _MIN_RATIO * m:
             return 0
         m = max(m, int(grown))
-        if room is not None and m > fit:
-            return 0  # grown past what is left: the exact refinement, planned in blocks
+        if room is not None:
+            m = min(m, fit)  # grown past what is left: the sample stops growing
     else:
         m = max(int(configured), int(grown))
     return 0 if 2 * m > n else m

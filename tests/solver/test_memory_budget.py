@@ -150,7 +150,7 @@ def test_kept_projections_pin_only_their_own_rows(tmp_path, weighted):
 
 def test_refinement_sample_fits_in_what_the_budget_leaves():
     # the automatic sample's five m x k score arrays and its projections (8 (q + 5 k) bytes
-    # a row, the count sample_rows documents) take at most half of the room left beside
+    # a row, the count sample_rows documents) take at most 30% of the room left beside
     # the floor, the model and the cached projections, not a quarter of the whole budget
     # (measured: a 248 MiB sample on top of 835 MiB of a 954 MiB budget, peak 1333 MiB)
     q, k, n = 30, 500, 600_000
@@ -160,7 +160,7 @@ def test_refinement_sample_fits_in_what_the_budget_leaves():
     assert free * per_row <= 954 * 2**20 // 4 and free >= 2000
     room = 150 * 2**20
     m = sample_rows(grown=0, room=room, **kw)
-    assert 2000 <= m < free and m * per_row <= room // 2
-    # grown past the room: the exact refinement (0), which streams in planned blocks
-    assert sample_rows(grown=free, room=room, **kw) == 0
+    assert 2000 <= m < free and m * per_row <= room * 0.3
+    # grown past the room: capped at it (the exact refinement cost 60-118 s a step there)
+    assert sample_rows(grown=free, room=room, **kw) == m
     assert sample_rows(grown=0, room=2000 * per_row, **kw) == 0  # too little room
