@@ -51,7 +51,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import CheckpointError, ConfigError
-from ranktide.kernels.svd import svd
+from ranktide.kernels.svd import qr_tall, svd
 from ranktide.losses import get_loss, intercept_from_sums
 from ranktide.passes.budget import (
     FLOOR_QUANTUM,
@@ -485,7 +485,7 @@ class GreedySolver:
         st.U_prev_cols = [req.U.shape[1], *(f.shape[1] for f in keep)] if depth else []
         U_new = Q @ out.A
         # re-orthonormalize against rounding of the product Q A
-        Uq, Ur = np.linalg.qr(U_new)
+        Uq, Ur = qr_tall(U_new)
         uu, ss, vvt = svd(Ur * out.s)
         st.U = Uq @ uu
         st.s = ss
