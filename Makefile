@@ -17,7 +17,7 @@ demo: $(STAMP)
 
 # A fresh numba cache per test run: numba keys its cache on the defining file only.
 test: $(STAMP) browser-if-root
-	rm -rf .numba_cache && NUMBA_CACHE_DIR=$(CURDIR)/.numba_cache $(BIN)/python -m pytest -x -q tests
+	rm -rf .numba_cache && NUMBA_CACHE_DIR=$(CURDIR)/.numba_cache $(BIN)/python -m pytest -x -rs tests
 	$(BIN)/ruff check stream kernels tests tools
 
 # Headless Chromium for the report's browser test (tests/diagnostics/test_report.py), which
