@@ -479,6 +479,10 @@ class GreedySolver:
         mode = self._refine_mode(q)
         out, sample_info = self._run_refinement(req, res, proj, mode, N0, rel_gap)
         secs = time.perf_counter() - t0
+        if isinstance(proj, list):
+            # the n x q projections are spent: free them before the d x q work below (at 600k
+            # rows they were alive through it, the peak's last 16 MiB over the budget)
+            proj.clear()
         depth = max(0, int(cfg.momentum))
         keep = st.momentum_factors()[: depth - 1] if depth > 1 else []
         st.U_prev = np.hstack([req.U, *keep]) if depth else np.zeros((self.d, 0))
