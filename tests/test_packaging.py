@@ -3,6 +3,9 @@
 Run from an empty directory so that the repository's folders (``stream/``,
 ``kernels/``) are not on the path by accident; what imports there is what an
 installed environment has.
+
+No outside reference applies here: these check the project's own contract from the issue
+(common practice, no source).
 """
 
 from __future__ import annotations

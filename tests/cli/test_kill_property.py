@@ -6,6 +6,9 @@ only belong to the intended output, and the stale-sibling cleaner every command 
 first removes them.
 
 Kept small: a 40-row invented store, a few examples, derandomized (reproducible).
+
+No outside reference applies here: these check the project's own contract from the issue
+(common practice, no source).
 """
 
 from __future__ import annotations

@@ -5,6 +5,9 @@ whatever the flags; ``--overwrite`` replaces the old output only once the new on
 complete; a train that fails its checks leaves no run directory; resuming a finished
 run keeps its certificate. Each case compares a snapshot of the user's files (hidden
 entries included) before and after.
+
+No outside reference applies here: these check the project's own contract from the issue
+(common practice, no source).
 """
 
 from __future__ import annotations

@@ -1,4 +1,8 @@
-"""The README's session and Python example run as written, after `make demo`."""
+"""The README's session and Python example run as written, after `make demo`.
+
+No outside reference applies: the README itself is the specification checked
+(common practice, no source).
+"""
 
 from __future__ import annotations
 
