@@ -436,7 +436,9 @@ def train(
                            max_passes=int(max_passes), seed=int(seed), memory=memory,
                            block_rows=block_rows, backend=backend, class_weights=cw,
                            dense_gradient=dense_gradient, power_size=power_size,
-                           expand_size=expand_size)
+                           expand_size=expand_size,
+                           # a dask worker reads the store itself, by path: full columns there
+                           used_columns=backend != "dask")
         if resume_point is not None:
             cfg = resume_point.solver_config(cfg)
         scratch = None

@@ -112,6 +112,14 @@ class SolverConfig:
         data has at least four times as many, softmax and multilabel), 0 always
         refines exactly, ``m > 0`` samples ``m`` rows whenever the data has more
         than ``2 m``. The sample grows when its steps stop carrying over.
+    used_columns : bool
+        Solve on the columns that hold entries only (default False; ``train``
+        turns it on for the serial and threads backends). One read of the
+        column ids before the first pass; when some columns are empty the
+        solver works in the narrower space (:mod:`ranktide.store.column_view`)
+        and its result is put back on the full feature space. Same optimum:
+        an empty column adds nothing to the loss and its row of ``W`` is zero
+        at the optimum.
     """
 
     loss: str
@@ -138,6 +146,7 @@ class SolverConfig:
     momentum: int = 3
     rotation_size: int | None = None
     refine_sample_rows: int | None = None
+    used_columns: bool = False
 
     def __post_init__(self) -> None:
         get_loss(self.loss)

@@ -61,6 +61,7 @@ from ranktide.passes.budget import (
     process_floor,
     release_freed_memory,
 )
+from ranktide.passes.columns import used_columns
 from ranktide.passes.engine import PassProfile
 from ranktide.passes.gradient import PassRequest, gradient_pass
 from ranktide.passes.kernel_path import CHOOSER
@@ -89,6 +90,7 @@ from ranktide.solver.subspace import (
     sigma1_lower_bound,
     top_left,
 )
+from ranktide.store.column_view import ColumnView, expand_rows
 from ranktide.store.memory_source import as_source
 
 __all__ = ["GreedySolver"]
@@ -145,6 +147,8 @@ class GreedySolver:
         self.config = config
         self.source = as_source(source)
         self.n, self.d = (int(x) for x in self.source.shape)
+        self.d_full = self.d
+        self.columns: np.ndarray | None = None
         self.k = int(self.source.n_outputs)
         self.progress = progress
         # called with every refinement step's ranktide.solver.apg.ApgProgress (beside the
@@ -152,6 +156,7 @@ class GreedySolver:
         self.refine_progress: Callable[[Any], Any] | None = None
         self._before: dict | None = None
         self.stop = stop
+        self._use_columns(state)
         # where the pass writes projections that the budget cannot hold (a fresh
         # temporary directory by default, removed by close())
         self.scratch_root = None if scratch_dir is None else os.fspath(scratch_dir)
@@ -173,6 +178,23 @@ class GreedySolver:
         self._history: list[dict] = []
 
     # ------------------------------------------------------------ set-up
+    def _use_columns(self, state: SolverState | None) -> None:
+        """Narrow the source to its used columns (``config.used_columns``).
+
+        A resumed state keeps the space it was made in: a state on the full
+        feature space (an older run, or data with no empty column) is resumed
+        there.
+        """
+        cfg = self.config
+        if not cfg.used_columns or (state is not None and state.Psi.shape[0] == self.d):
+            return
+        cols = used_columns(self.source, backend=cfg.backend, block_rows=cfg.block_rows,
+                            should_stop=self.stop)
+        if cols.size < self.d:
+            self.columns = cols
+            self.source = ColumnView(self.source, cols)
+            self.d = int(cols.size)
+
     def initial_state(self) -> SolverState:
         """A fresh state: ``W = 0``, ``b = 0``, random orthonormal blocks."""
         cfg, d, k = self.config, self.d, self.k
@@ -842,7 +864,8 @@ class GreedySolver:
             message += (f"; lam_max {st.lam_max:.6g} is a lower bound (not settled in "
                         f"{self.config.lam_max_passes} passes at W = 0)")
         return SolverResult(
-            U=st.U, s=st.s, V=st.V, b=st.b, lam=lam, lam_max=st.lam_max,
+            U=expand_rows(st.U, self.columns, self.d_full), s=st.s, V=st.V, b=st.b, lam=lam,
+            lam_max=st.lam_max,
             lam_max_settled=bool(st.lam_max_settled),
             objective=float(st.objective) if st.objective is not None else math.nan,
             gap=gap, rel_gap=rel, sigma1=float(st.sigma1) if st.sigma1 is not None else math.nan,
