@@ -13,10 +13,17 @@ No real shop, brand, product or person is named; every number is synthetic.
 file; :func:`run_demo` ingests them, splits a holdout, trains a short
 regularization path with validation and checkpoints, evaluates the holdout,
 predicts it, writes the report and prints where everything is.
+
+The demo is built under a temporary sibling of its output directory and
+swapped in only once complete (:func:`ranktide.atomic.replace_with`), so an
+earlier demo stays whole until then. It replaces only a directory it made
+itself (its ``demo.json`` marker and nothing but its own entries) or an
+empty one; anything else is refused.
 """
 
 from __future__ import annotations
 
+import json
 import os
 import time
 from collections.abc import Callable
@@ -26,7 +33,14 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-from ranktide.atomic import atomic_write_bytes, atomic_write_json, remove_path
+from ranktide.atomic import (
+    atomic_write_bytes,
+    atomic_write_json,
+    fsync_tree,
+    remove_path,
+    replace_with,
+    temp_sibling,
+)
 from ranktide.diagnostics.report import write_report
 from ranktide.errors import ConfigError, OutputExistsError
 from ranktide.ingest.build import ingest
@@ -298,14 +312,20 @@ MARKER = "demo.json"
 
 
 class _Demo:
-    """State shared by the demo's steps: where things go, what was made, how to talk."""
+    """State shared by the demo's steps: where things go, what was made, how to talk.
 
-    def __init__(self, out: Path, *, size: str, seed: int, quiet: bool) -> None:
+    ``out`` is where the steps write (the temporary sibling of ``final``);
+    messages and ``demo.json`` name the paths as they will be under ``final``.
+    """
+
+    def __init__(self, out: Path, *, final: Path, size: str, seed: int, quiet: bool) -> None:
         self.out = out
+        self.final = final
         self.size = size
         self.seed = seed
         self.quiet = quiet
         self.made: dict[str, Any] = {
+            "made_by": MADE_BY,
             "size": size,
             "seed": seed,
             "complete": False,
@@ -313,28 +333,127 @@ class _Demo:
         }
         self.t0 = time.perf_counter()
 
+    def shown(self, obj: Any) -> Any:
+        """``obj`` (str, Path, or dicts and lists of them) with paths named under ``final``."""
+        if isinstance(obj, (str, Path)):
+            text = str(obj)
+            for old, new in _moved_prefixes(self.out, self.final):
+                text = text.replace(old, new)
+            return text if isinstance(obj, str) else Path(text)
+        if isinstance(obj, dict):
+            return {k: self.shown(v) for k, v in obj.items()}
+        if isinstance(obj, list):
+            return [self.shown(v) for v in obj]
+        return obj
+
     def say(self, text: str) -> None:
         if not self.quiet:
-            print(text, flush=True)
+            print(self.shown(text), flush=True)
 
     def record(self, step: str, **info: Any) -> None:
-        self.made["steps"][step] = info
+        self.made["steps"][step] = self.shown(info)
         atomic_write_json(self.out / MARKER, self.made)
 
 
+#: ``made_by`` in ``demo.json``: the mark of a directory the demo made
+MADE_BY = "ranktide demo"
 
-def _prepare_out(out: Path, *, overwrite: bool) -> None:
-    """Refuse a non-empty directory that is not an earlier demo; clear an earlier demo."""
-    if out.exists() and not out.is_dir():
-        raise OutputExistsError(f"{out}: exists and is not a directory; choose another --out")
-    if out.is_dir() and any(out.iterdir()):
-        if not (out / MARKER).is_file() and not overwrite:
-            raise OutputExistsError(
-                f"{out}: not empty and not an earlier demo; choose another --out or pass "
-                "--overwrite to replace it"
-            )
-        remove_path(out)
-    out.mkdir(parents=True, exist_ok=True)
+#: every top-level entry a demo writes; anything else in its directory is the user's
+DEMO_ENTRIES = frozenset({
+    MARKER, "data", "catalogue.zarr", "train.zarr", "holdout.zarr", "fit.zarr", "valid.zarr",
+    "run", "holdout_metrics.json", "holdout_predictions.csv",
+})
+
+#: text files of the run that name the stores by path, for reading (``config.json``'s
+#: settings, ``--valid`` among them, must stay as the checkpoints recorded them)
+_RUN_TEXT_WITH_PATHS = ("history.jsonl", "report/report.html")
+
+
+def _moved_prefixes(stage: Path, final: Path) -> list[tuple[str, str]]:
+    """(old, new) path prefixes, absolute (symbolic links resolved) first, then as given."""
+    parent = final.parent if str(final.parent) else Path(".")
+    absolute = (os.path.realpath(stage), os.path.join(os.path.realpath(parent), final.name))
+    return [absolute, (str(stage), str(final))]
+
+
+def _is_demo_marker(path: Path) -> bool:
+    """Whether ``path`` is a ``demo.json`` written by the demo (this or an earlier version)."""
+    try:
+        doc = json.loads(path.read_text())
+    except (OSError, ValueError):
+        return False
+    if not isinstance(doc, dict) or not isinstance(doc.get("steps"), dict):
+        return False
+    return doc.get("made_by") == MADE_BY or ("made_by" not in doc and {"size", "seed"} <= set(doc))
+
+
+def _own_entry(name: str) -> bool:
+    """A demo entry, or a temporary sibling of one left by an interrupted earlier demo."""
+    return name in DEMO_ENTRIES or any(name.startswith(f".{e}.") for e in DEMO_ENTRIES)
+
+
+def check_replaceable(out: Path) -> None:
+    """Refuse an existing ``out`` that the demo may not replace.
+
+    The demo replaces nothing but a missing or empty directory or an earlier
+    demo: a directory with the demo's ``demo.json`` and only the demo's own
+    entries. A user's folder is never cleared, whatever the flags.
+
+    Raises
+    ------
+    OutputExistsError
+        One line naming ``out``, what is in the way and what to do.
+    """
+    if not os.path.lexists(out):
+        return
+    if out.is_symlink() or not out.is_dir():
+        what = "a symbolic link" if out.is_symlink() else "not a directory"
+        raise OutputExistsError(f"{out}: is {what}; the demo replaces only a directory it "
+                                "made: choose another --out")
+    names = sorted(p.name for p in out.iterdir())
+    if not names:
+        return
+    if not _is_demo_marker(out / MARKER):
+        raise OutputExistsError(
+            f"{out}: not empty and not an earlier demo (no {MARKER} written by the demo); the "
+            "demo replaces only a directory it made: choose another --out"
+        )
+    foreign = [n for n in names if not _own_entry(n)]
+    if foreign:
+        raise OutputExistsError(
+            f"{out}: an earlier demo, but {foreign[0]!r} in it is not the demo's; move it out "
+            "or choose another --out (the demo replaces only what it made)"
+        )
+
+
+def _relocate_run(stage: Path, final: Path) -> None:
+    """Name the demo's stores in its run directory by their paths under ``final``.
+
+    The run was trained inside the temporary ``stage``. ``config.json``'s
+    store path (which ``resume`` opens, checking its fingerprint) and the
+    history and report, which are for reading, are rewritten. The settings
+    (``--valid`` among them) stay as the checkpoints recorded them: resume
+    checks that they agree.
+    """
+    prefixes = _moved_prefixes(stage, final)
+
+    def moved(text: str) -> str:
+        for old, new in prefixes:
+            text = text.replace(old, new)
+        return text
+
+    config_path = stage / "run" / "config.json"
+    config = json.loads(config_path.read_text())
+    store = config.get("store") or {}
+    if isinstance(store.get("path"), str):
+        store["path"] = moved(store["path"])
+        atomic_write_json(config_path, config)
+    for rel in _RUN_TEXT_WITH_PATHS:
+        path = stage / "run" / rel
+        if path.is_file():
+            text = path.read_text()
+            if moved(text) != text:
+                atomic_write_bytes(path, moved(text).encode())
 
 
 def _step_data(demo: _Demo) -> None:
@@ -406,7 +525,7 @@ def _step_evaluate(demo: _Demo) -> None:
     model = demo.model_dir
     hold = demo.holdout_store
     res = evaluate(model, hold, top_k=5, progress=not demo.quiet)
-    atomic_write_json(demo.out / "holdout_metrics.json", res)
+    atomic_write_json(demo.out / "holdout_metrics.json", demo.shown(res))
     demo.metrics = res
     demo.say(f"  holdout accuracy {res['accuracy']:.3f}, top-5 accuracy "
              f"{res['top_k_accuracy']:.3f}, macro-F1 {res['macro_f1']:.3f}, log-loss "
@@ -453,7 +572,7 @@ STEPS: tuple[tuple[str, str, Callable[[_Demo], None]], ...] = (
 
 
 def _next_steps(demo: _Demo) -> str:
-    o = demo.out
+    o = demo.final
     lines = [
         "",
         f"done in {time.perf_counter() - demo.t0:.1f} s; everything is under {o}/:",
@@ -483,7 +602,6 @@ def run_demo(
     size: str = "small",
     seed: int = 0,
     quiet: bool = False,
-    overwrite: bool = False,
 ) -> dict[str, Any]:
     """Run the whole workflow on invented data.
 
@@ -491,17 +609,20 @@ def run_demo(
     holdout, train a short regularization path with validation and
     checkpoints, evaluate the holdout, predict it, write the report.
 
+    Everything is built in a temporary sibling of ``out_dir`` and swapped in
+    once complete: until then an earlier demo there is untouched, and a
+    failure or kill leaves it as it was.
+
     Parameters
     ----------
     out_dir : path
-        Where everything goes. An earlier demo there is replaced; any other
-        non-empty directory is refused unless ``overwrite``.
+        Where everything goes: a missing or empty directory, or an earlier
+        demo (which is replaced); anything else is refused
+        (:func:`check_replaceable`).
     size : {"small", "medium"}
     seed : int
     quiet : bool
         Print nothing (and show no progress bars).
-    overwrite : bool
-        Replace a non-empty ``out_dir`` that is not an earlier demo.
 
     Returns
     -------
@@ -511,16 +632,26 @@ def run_demo(
     if size not in SIZES:
         raise ConfigError(f"--size {size!r}: unknown; choose one of {', '.join(SIZES)}")
     out = Path(out_dir)
-    _prepare_out(out, overwrite=overwrite)
-    demo = _Demo(out, size=size, seed=int(seed), quiet=quiet)
-    demo.record("start", out=str(out))
-    for i, (name, what, step) in enumerate(STEPS, 1):
-        t = time.perf_counter()
-        demo.say(f"[{i}/{len(STEPS)}] {what}")
-        step(demo)
-        demo.made["steps"][name]["seconds"] = round(time.perf_counter() - t, 3)
-    demo.made["complete"] = True
-    demo.made["seconds"] = round(time.perf_counter() - demo.t0, 3)
-    atomic_write_json(out / MARKER, demo.made)
+    check_replaceable(out)
+    stage = temp_sibling(out)
+    stage.mkdir()
+    try:
+        demo = _Demo(stage, final=out, size=size, seed=int(seed), quiet=quiet)
+        demo.record("start", out=str(stage))
+        for i, (name, what, step) in enumerate(STEPS, 1):
+            t = time.perf_counter()
+            demo.say(f"[{i}/{len(STEPS)}] {what}")
+            step(demo)
+            demo.made["steps"][name]["seconds"] = round(time.perf_counter() - t, 3)
+        _relocate_run(stage, out)
+        demo.made["complete"] = True
+        demo.made["seconds"] = round(time.perf_counter() - demo.t0, 3)
+        atomic_write_json(stage / MARKER, demo.made)
+        fsync_tree(stage)
+        check_replaceable(out)  # again: the build took a while, the user may have written there
+        replace_with(stage, out)
+    except BaseException:
+        remove_path(stage)
+        raise
     demo.say(_next_steps(demo))
     return demo.made
