@@ -25,6 +25,7 @@ the values, or the logit of the tag frequencies
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -70,6 +71,10 @@ class Loss(ABC):
         Whether scores map to probabilities.
     class_weights_ok : bool
         Whether per-class weights apply.
+    quadratic : bool
+        Whether the loss is a quadratic in the scores (a constant Hessian): its
+        refinement then runs on sufficient statistics with the exact step (no
+        n x k work per step, no stall test) and samples rows only on request.
     """
 
     name: str
@@ -80,6 +85,7 @@ class Loss(ABC):
     higher_is_better: bool
     has_probabilities: bool = True
     class_weights_ok: bool = False
+    quadratic: bool = False
 
     def __repr__(self) -> str:
         return f"<loss {self.name}>"
@@ -112,6 +118,59 @@ class Loss(ABC):
     @abstractmethod
     def probabilities(self, Z: np.ndarray, top: np.ndarray | None = None) -> np.ndarray:
         """Probabilities from all scores ``Z`` (n, k); of ``top`` (n, K) scores when given."""
+
+    @abstractmethod
+    def predict(self, Z: np.ndarray) -> Any:
+        """Predictions from scores ``Z`` (n, k): class ids (n,) int64, a CSR (n, k) indicator
+        of the tags whose probability is >= 0.5, or the values (n, k) themselves."""
+
+    @abstractmethod
+    def refine_targets(self, Y: Any, n: int, k: int, where: str = "refine") -> Any:
+        """The targets of ``n`` rows as the refinement's dense evaluators take them: int64
+        class ids (n,), CSR tags (n, k) or float64 values (n, k); shapes checked."""
+
+    @abstractmethod
+    def dense_value_residual(self, Z: np.ndarray, Y: Any, w: np.ndarray, *,
+                             want_residual: bool = True) -> tuple[float, np.ndarray | None]:
+        """Weighted mean loss and residual of dense scores, in vectorized numpy.
+
+        Parameters
+        ----------
+        Z : ndarray, shape (n, k)
+            Scores (left unchanged).
+        Y : ndarray
+            Targets as :meth:`refine_targets` gives them, tags as a dense (n, k) array.
+        w : ndarray, shape (n,)
+            Row weights already divided by their total (they sum to 1).
+        want_residual : bool
+            Also return ``R = w_i * dloss/dz_i`` (n, k).
+
+        Returns
+        -------
+        f : float
+        R : ndarray, shape (n, k), or None
+        """
+
+    def fused_evaluators(self, Y: Any, w: np.ndarray) -> tuple[Callable, Callable]:
+        """The fused kernels of :mod:`ranktide.kernels.losses` bound to targets and weights.
+
+        Parameters
+        ----------
+        Y :
+            Targets as :meth:`refine_targets` gives them.
+        w : float64 C-contiguous ndarray, shape (n,)
+            Row weights summing to 1 (the kernels' weighted sums are then means).
+
+        Returns
+        -------
+        value : callable
+            ``value(Z, out)``: adds the loss of scores ``Z`` (n, k) to ``out[0]``.
+        residual : callable
+            ``residual(Z, out, gb) -> R``: overwrites ``Z`` by the residual, adds
+            the loss to ``out[0]`` and the residual's column sums to ``gb`` (k,).
+        """
+        raise ConfigError(f"loss {self.name!r}: refines from its sufficient statistics; it has "
+                          "no score evaluators")
 
     def value_residual(
         self,
@@ -205,6 +264,39 @@ class SoftmaxLoss(Loss):
         lse = zmax + np.log(np.exp(Z - zmax).sum(axis=1, keepdims=True))
         return np.exp((Z if top is None else top) - lse)
 
+    def predict(self, Z):
+        return np.argmax(Z, axis=1).astype(np.int64)
+
+    def refine_targets(self, Y, n, k, where="refine"):
+        y = np.asarray(Y).reshape(-1)
+        if y.shape[0] != n:
+            raise ConfigError(f"{where}: {y.shape[0]} class ids for {n} rows; give one per row")
+        if y.size and (y.min() < 0 or y.max() >= k):
+            raise ConfigError(
+                f"{where}: class ids must lie in 0..{k - 1}; found {y.min()}..{y.max()}"
+            )
+        return y.astype(np.int64, copy=False)
+
+    def dense_value_residual(self, Z, Y, w, *, want_residual=True):
+        n = Z.shape[0]
+        m = Z.max(axis=1, keepdims=True)
+        E = np.exp(Z - m)
+        se = E.sum(axis=1, keepdims=True)
+        lse = m[:, 0] + np.log(se[:, 0])
+        zy = Z[np.arange(n), Y]
+        f = float(w @ (lse - zy))
+        if not want_residual:
+            return f, None
+        E /= se
+        E[np.arange(n), Y] -= 1.0
+        E *= w[:, None]
+        return f, E
+
+    def fused_evaluators(self, Y, w):
+        y = np.ascontiguousarray(Y, dtype=np.int64)
+        return (lambda Z, out: kl.softmax_loss_only(Z, y, w, out),
+                lambda Z, out, gb: kl.softmax_residual(Z, y, w, out, gb))
+
 
 class SquaredLoss(Loss):
     """Half the squared error over k real outputs: ``0.5 ||z - y||^2``."""
@@ -216,6 +308,7 @@ class SquaredLoss(Loss):
     metric = "rmse"
     higher_is_better = False
     has_probabilities = False
+    quadratic = True
 
     def residual_kernel(self, R, targets, w, loss, gradb, where):
         kl.squared_residual(R, np.ascontiguousarray(targets, dtype=np.float64), w, loss, gradb,
@@ -233,6 +326,25 @@ class SquaredLoss(Loss):
     def probabilities(self, Z, top=None):
         raise ConfigError("model: the squared loss predicts values, not probabilities; "
                           "use predict()")
+
+    def predict(self, Z):
+        return Z
+
+    def refine_targets(self, Y, n, k, where="refine"):
+        if sp.issparse(Y):
+            Y = Y.toarray()
+        Y = np.asarray(Y, dtype=np.float64)
+        if Y.shape != (n, k):
+            raise ConfigError(f"{where}: targets have shape {Y.shape}, expected ({n}, {k})")
+        return Y
+
+    def dense_value_residual(self, Z, Y, w, *, want_residual=True):
+        D = Z - Y
+        f = float(0.5 * (w @ (D * D).sum(axis=1)))
+        if not want_residual:
+            return f, None
+        D *= w[:, None]
+        return f, D
 
 
 class MultilabelLoss(Loss):
@@ -263,6 +375,34 @@ class MultilabelLoss(Loss):
     def probabilities(self, Z, top=None):
         # sigmoid, written to avoid overflow for large |z|
         return 0.5 * (1.0 + np.tanh(0.5 * (Z if top is None else top)))
+
+    def predict(self, Z):
+        # sigmoid(z) >= 0.5  <=>  z >= 0
+        return sp.csr_matrix((Z >= 0.0).astype(np.float32))
+
+    def refine_targets(self, Y, n, k, where="refine"):
+        T = sp.csr_matrix(Y)
+        if T.shape != (n, k):
+            raise ConfigError(f"{where}: tags have shape {T.shape}, expected ({n}, {k})")
+        return T
+
+    def dense_value_residual(self, Z, Y, w, *, want_residual=True):
+        # log(1 + exp(z)) - y z, written stably as logaddexp(0, z)
+        f = float(w @ (np.logaddexp(0.0, Z) - Y * Z).sum(axis=1))
+        if not want_residual:
+            return f, None
+        R = 0.5 * (1.0 + np.tanh(0.5 * Z))  # sigmoid without overflow
+        R -= Y
+        R *= w[:, None]
+        return f, R
+
+    def fused_evaluators(self, Y, w):
+        T = sp.csr_matrix(Y)
+        T.sum_duplicates()
+        ip = T.indptr.astype(np.int64)
+        ix = T.indices.astype(np.int64)
+        return (lambda Z, out: kl.multilabel_loss_only(Z, ip, ix, w, out),
+                lambda Z, out, gb: kl.multilabel_residual(Z, ip, ix, w, out, gb))
 
 
 _LOSSES: dict[str, Loss] = {c.name: c() for c in (SoftmaxLoss, SquaredLoss, MultilabelLoss)}

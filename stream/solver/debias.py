@@ -40,6 +40,7 @@ from ranktide.kernels.sparse import csr_matmul_dense
 from ranktide.kernels.svd import svd
 from ranktide.model import Model
 from ranktide.solver.refine import refine
+from ranktide.solver.refine_common import RefineSettings
 
 __all__ = ["DebiasResult", "debias", "debias_summary", "near_full_rank", "DEBIAS_FACTORS",
            "projection_bytes"]
@@ -185,8 +186,8 @@ def debias(
     best_factor, b = 1.0, model.b
     for f in factors:
         t1 = time.perf_counter()
-        res = refine(A, Y, w, model.loss, f * lam, N, b, tol=tol, max_iter=max_iter,
-                     class_weights=class_weights)
+        res = refine(A, Y, w, N, b, RefineSettings(loss=model.loss, lam=f * lam, tol=tol,
+                                                   max_iter=max_iter, class_weights=class_weights))
         N, b = res.N, res.b
         cand = replace(model, U=basis @ res.A, s=res.s, V=res.B, b=res.b)
         sc = score(cand)

@@ -70,12 +70,8 @@ from ranktide.signals import StopRequested
 from ranktide.solver.certificate import dual_gap, gap_estimate
 from ranktide.solver.config import SolverConfig
 from ranktide.solver.refine import _blas_one_thread, refine
-from ranktide.solver.refinement import (
-    RefineBar,
-    RefineSettings,
-    refine_projections,
-    sample_rows,
-)
+from ranktide.solver.refine_common import RefineSettings
+from ranktide.solver.refinement import RefineBar, refine_projections, sample_rows
 from ranktide.solver.state import (
     _ARRAYS,
     SolverResult,
@@ -96,7 +92,7 @@ from ranktide.store.memory_source import as_source
 __all__ = ["GreedySolver"]
 
 # The refinement also stops once the decrease of F over its last check interval is at
-# most this fraction of its whole decrease (ranktide.solver.refine.refine, ``stall``): the outer
+# most this fraction of its whole decrease (``RefineSettings.stall``): the outer
 # loop gains nothing from a subproblem solved past its subspace's worth. Measured on the
 # planted softmax problem of tools/bench_solver.py: relative suboptimality 1e-4 reached
 # (n = 5000, d = 2000, k = 50) after 40 passes / 13.4 s with the inner certificate alone,
@@ -267,8 +263,9 @@ class GreedySolver:
         A = np.concatenate([p_.XQ for p_ in proj], axis=0)
         N0 = np.zeros((A.shape[1], k))
         N0[0] = V[:, 0]
-        refine(A, [p_.targets for p_ in proj], [p_.weights for p_ in proj], cfg.loss, 0.1, N0,
-               np.zeros(k), tol=1e-3, max_iter=3, class_weights=cfg.class_weights)
+        refine(A, [p_.targets for p_ in proj], [p_.weights for p_ in proj], N0, np.zeros(k),
+               RefineSettings(loss=cfg.loss, lam=0.1, tol=1e-3, max_iter=3,
+                              class_weights=cfg.class_weights))
 
     def _floor_after_first_pass(self, rec: dict) -> None:
         """Measure the floor again once a pass has run (the store's readers, thread pools

@@ -19,77 +19,29 @@ from __future__ import annotations
 
 import contextlib
 import weakref
-from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError
-from ranktide.kernels import losses as kl
 from ranktide.kernels.dense import add_row, extrapolate
-from ranktide.solver.apg import ApgProgress, ApgResult, Curvature, apg, certificate, svt
+from ranktide.losses import Loss
+from ranktide.solver.apg import Curvature
+from ranktide.solver.refine_common import (
+    RefineResult,
+    RefineSettings,
+    refine_result,
+    run_apg,
+    start_point,
+)
 
-__all__ = ["RefineResult", "refine", "svt", "certificate", "loss_and_residual", "DenseOracle",
-           "SquaredOracle", "refine_result", "CURVATURE"]
+__all__ = ["refine", "DenseOracle", "SquaredOracle", "rows_for_loss", "make_oracle"]
 
 # Score matrices with fewer entries than this use vectorized numpy instead of the fused
 # parallel kernels. Measured on the shared 2-core machine (n = 3000, k = 50, q = 20): numpy
 # 9 ms per step, the kernels 59 ms with 2 threads (their thread team stalls when the cores
 # are shared) and 7 ms with 1; below ~1e6 entries the kernels' gain is not worth that risk.
 _KERNEL_MIN_ENTRIES = 1_000_000
-_LOSSES = ("softmax", "squared", "multilabel")
-# Curvature bound of each loss in the scores: the Hessian of logsumexp is
-# diag(p) - p p^T, whose largest eigenvalue is <= 1/2; sigmoid' <= 1/4;
-# the squared loss has Hessian I (standard bounds, e.g. Boehning 1992 for softmax).
-CURVATURE = {"softmax": 0.5, "multilabel": 0.25, "squared": 1.0}
-
-
-@dataclass(frozen=True)
-class RefineResult:
-    """Outcome of :func:`refine`.
-
-    Attributes
-    ----------
-    N : ndarray, shape (q, k)
-        Coefficients in the basis ``Q`` (the prox output, exactly low-rank).
-    b : ndarray, shape (k,)
-        Intercept.
-    A : ndarray, shape (q, r)
-        Left singular vectors of ``N`` with positive singular values.
-    s : ndarray, shape (r,)
-        The positive singular values of ``N``, descending.
-    B : ndarray, shape (k, r)
-        Right singular vectors of ``N``.
-    objective : float
-        ``f + lam * ||N||_*`` at ``(N, b)``.
-    loss : float
-        The smooth part ``f`` at ``(N, b)``.
-    iterations : int
-        Proximal steps taken (accepted or rejected by restart).
-    converged : bool
-        Whether a stopping test passed (the inner certificate reached ``tol``,
-        or the decrease stalled, see :func:`refine`) before ``max_iter``.
-    gap_estimate : float
-        Relative inner gap estimate at the last check (conditional-gradient bound).
-    grad_b_norm : float
-        Infinity norm of the intercept gradient at the last check.
-    evaluations : int
-        Dense ``n x q x k`` products spent (0 for the squared loss).
-    """
-
-    N: np.ndarray
-    b: np.ndarray
-    A: np.ndarray
-    s: np.ndarray
-    B: np.ndarray
-    objective: float
-    loss: float
-    iterations: int
-    converged: bool
-    gap_estimate: float
-    grad_b_norm: float
-    evaluations: int
 
 
 # ---------------------------------------------------------------- helpers
@@ -113,100 +65,19 @@ def _as_array(parts, name: str):
     return parts
 
 
-def _dense_targets(Y, n: int, k: int, loss: str):
-    """Targets as the loss needs them: int64 (n,), CSR tags (n, k) or float64 (n, k)."""
-    if loss == "softmax":
-        y = np.asarray(Y).reshape(-1)
-        if y.shape[0] != n:
-            raise ConfigError(f"refine: {y.shape[0]} class ids for {n} rows; give one per row")
-        if y.size and (y.min() < 0 or y.max() >= k):
-            raise ConfigError(
-                f"refine: class ids must lie in 0..{k - 1}; found {y.min()}..{y.max()}"
-            )
-        return y.astype(np.int64, copy=False)
-    if loss == "multilabel":
-        T = sp.csr_matrix(Y)
-        if T.shape != (n, k):
-            raise ConfigError(f"refine: tags have shape {T.shape}, expected ({n}, {k})")
-        return T
-    if sp.issparse(Y):
-        Y = Y.toarray()
-    Y = np.asarray(Y, dtype=np.float64)
-    if Y.shape != (n, k):
-        raise ConfigError(f"refine: targets have shape {Y.shape}, expected ({n}, {k})")
-    return Y
-
-
-def loss_and_residual(
-    Z: np.ndarray,
-    Y: np.ndarray,
-    w: np.ndarray,
-    loss: str,
-    *,
-    want_residual: bool = True,
-) -> tuple[float, np.ndarray | None]:
-    """Weighted mean loss and residual of dense scores (vectorized numpy).
-
-    Parameters
-    ----------
-    Z : ndarray, shape (n, k)
-        Scores.
-    Y : ndarray, shape (n,) int (softmax) or (n, k) float (squared, multilabel)
-    w : ndarray, shape (n,)
-        Row weights already divided by their total (they sum to 1).
-    loss : {"softmax", "squared", "multilabel"}
-    want_residual : bool
-        Also return ``R = w_i * dloss/dz_i`` (n, k).
-
-    Returns
-    -------
-    f : float
-    R : ndarray, shape (n, k), or None
-    """
-    n = Z.shape[0]
-    if loss == "softmax":
-        m = Z.max(axis=1, keepdims=True)
-        E = np.exp(Z - m)
-        se = E.sum(axis=1, keepdims=True)
-        lse = m[:, 0] + np.log(se[:, 0])
-        zy = Z[np.arange(n), Y]
-        f = float(w @ (lse - zy))
-        if not want_residual:
-            return f, None
-        E /= se
-        E[np.arange(n), Y] -= 1.0
-        E *= w[:, None]
-        return f, E
-    if loss == "multilabel":
-        # log(1 + exp(z)) - y z, written stably as logaddexp(0, z)
-        f = float(w @ (np.logaddexp(0.0, Z) - Y * Z).sum(axis=1))
-        if not want_residual:
-            return f, None
-        R = 0.5 * (1.0 + np.tanh(0.5 * Z))  # sigmoid without overflow
-        R -= Y
-        R *= w[:, None]
-        return f, R
-    D = Z - Y
-    f = float(0.5 * (w @ (D * D).sum(axis=1)))
-    if not want_residual:
-        return f, None
-    D *= w[:, None]
-    return f, D
-
-
 class _NumpyLoss:
     """Loss value and residual of dense scores in vectorized numpy (small problems)."""
 
-    def __init__(self, loss: str, Y, w: np.ndarray, k: int) -> None:
+    def __init__(self, loss: Loss, Y, w: np.ndarray, k: int) -> None:
         self.loss = loss
         self.Y = Y.toarray() if sp.issparse(Y) else Y
         self.w = w
 
     def value(self, Z: np.ndarray) -> float:
-        return loss_and_residual(Z, self.Y, self.w, self.loss, want_residual=False)[0]
+        return self.loss.dense_value_residual(Z, self.Y, self.w, want_residual=False)[0]
 
     def residual(self, Z: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
-        f, R = loss_and_residual(Z, self.Y, self.w, self.loss)
+        f, R = self.loss.dense_value_residual(Z, self.Y, self.w)
         return f, R, R.sum(axis=0)
 
     @staticmethod
@@ -227,20 +98,10 @@ class _KernelLoss:
     ``w`` sums to 1, so the kernels' weighted sums are the weighted means.
     """
 
-    def __init__(self, loss: str, Y, w: np.ndarray, k: int) -> None:
+    def __init__(self, loss: Loss, Y, w: np.ndarray, k: int) -> None:
         self.k = k
         self.w = np.ascontiguousarray(w, dtype=np.float64)
-        if loss == "softmax":
-            y = np.ascontiguousarray(Y, dtype=np.int64)
-            self._value = lambda Z, out: kl.softmax_loss_only(Z, y, self.w, out)
-            self._resid = lambda Z, out, gb: kl.softmax_residual(Z, y, self.w, out, gb)
-        else:
-            T = sp.csr_matrix(Y)
-            T.sum_duplicates()
-            ip = T.indptr.astype(np.int64)
-            ix = T.indices.astype(np.int64)
-            self._value = lambda Z, out: kl.multilabel_loss_only(Z, ip, ix, self.w, out)
-            self._resid = lambda Z, out, gb: kl.multilabel_residual(Z, ip, ix, self.w, out, gb)
+        self._value, self._resid = loss.fused_evaluators(Y, self.w)
 
     def value(self, Z: np.ndarray) -> float:
         out = np.zeros(1)
@@ -279,22 +140,6 @@ def _blas_one_thread():
     return threadpool_limits(1, user_api="blas")
 
 
-def _validate(A, N0, b0, lam, tol, max_iter, loss):
-    if loss not in _LOSSES:
-        raise ConfigError(f"refine: unknown loss {loss!r}; use one of {', '.join(_LOSSES)}")
-    if not np.isfinite(lam) or lam <= 0:
-        raise ConfigError(f"refine: lam must be a positive finite number, got {lam!r}")
-    if not (tol > 0):
-        raise ConfigError(f"refine: tol must be positive, got {tol!r}")
-    if int(max_iter) < 1:
-        raise ConfigError(f"refine: max_iter must be >= 1, got {max_iter!r}")
-    if A.ndim != 2 or N0.ndim != 2 or N0.shape[0] != A.shape[1] or b0.shape != (N0.shape[1],):
-        raise ConfigError(
-            f"refine: shapes disagree: XQ {A.shape}, N0 {N0.shape}, b0 {b0.shape}; "
-            "N0 must be (q, k) and b0 (k,)"
-        )
-
-
 # ---------------------------------------------------------------- oracles
 
 
@@ -326,18 +171,19 @@ class DenseOracle:
     Y : targets as :func:`rows_for_loss` returns them
     w : ndarray, shape (n,)
         Row weights summing to 1.
-    loss : {"softmax", "multilabel"}
+    loss : Loss
+        A loss with score evaluators (softmax, multilabel: not quadratic).
     k : int
         Outputs.
     """
 
-    def __init__(self, A: np.ndarray, Y, w: np.ndarray, loss: str, k: int) -> None:
+    def __init__(self, A: np.ndarray, Y, w: np.ndarray, loss: Loss, k: int) -> None:
         self.abar = A.T @ w
         self.Ac = A - self.abar
         n, q = A.shape
         self.k = k = int(k)
         lmax = float(np.linalg.eigvalsh(self.Ac.T @ (self.Ac * w[:, None]))[-1]) if q else 0.0
-        cv = CURVATURE[loss]
+        cv = loss.curvature
         self._curv = Curvature(LN=cv * lmax * (1.0 + 1e-12), Lc=cv * (1.0 + 1e-12))
         # tiny score matrices: the parallel kernels' start-up costs more than the arithmetic
         self.ev = (_KernelLoss if n * k >= _KERNEL_MIN_ENTRIES else _NumpyLoss)(loss, Y, w, k)
@@ -429,23 +275,8 @@ class SquaredOracle:
 # ---------------------------------------------------------------- main entry
 
 
-def refine(
-    XQ_blocks,
-    targets,
-    weights,
-    loss: str,
-    lam: float,
-    N0: np.ndarray,
-    b0: np.ndarray,
-    *,
-    tol: float,
-    max_iter: int,
-    class_weights: np.ndarray | None = None,
-    check_every: int = 5,
-    should_stop: Callable[[], bool] | None = None,
-    stall: float = 0.0,
-    progress: Callable[[ApgProgress], Any] | None = None,
-) -> RefineResult:
+def refine(XQ_blocks: Any, targets: Any, weights: Any, N0: np.ndarray, b0: np.ndarray,
+           settings: RefineSettings) -> RefineResult:
     """Solve the refinement ``min f(XQ N + b) + lam ||N||_*`` on cached projections.
 
     Parameters
@@ -453,37 +284,17 @@ def refine(
     XQ_blocks : list of ndarray (n_b, q), or ndarray (n, q)
         Cached projections ``X Q`` per row block (or already concatenated).
     targets : list or array
-        Per block (or concatenated): int class ids (n_b,) for softmax, float
-        values (n_b, k) for squared, 0/1 tags (n_b, k; dense or CSR) for multilabel.
+        Per block (or concatenated), of the loss's target kind: int class ids
+        (n_b,), float values (n_b, k) or 0/1 tags (n_b, k; dense or CSR).
     weights : list of ndarray (n_b,), ndarray (n,), or None
         Raw row weights (None: all ones). They are normalized by their total.
-    loss : {"softmax", "squared", "multilabel"}
-    lam : float
-        Trace-norm penalty (> 0).
     N0 : ndarray, shape (q, k)
         Warm start (the current model expressed in ``Q``: ``[diag(s) V^T; 0]``).
     b0 : ndarray, shape (k,)
         Warm-start intercept.
-    tol : float
-        Relative inner tolerance on the subproblem's conditional-gradient gap
-        estimate; the solver ties it to the current outer gap.
-    max_iter : int
-        Maximum number of proximal steps.
-    class_weights : ndarray, shape (k,), optional
-        Softmax only: row ``i`` weighs ``w_i * class_weights[y_i]``.
-    check_every : int
-        Steps between two certificate checks (each costs one extra ``n q k`` product).
-    should_stop : callable, optional
-        Checked before every step; when it returns True the refinement is
-        abandoned with :class:`ranktide.signals.StopRequested`.
-    stall : float
-        Also stop when the decrease of F over the last ``check_every`` steps is
-        at most this fraction of the decrease since the start (0: never; the
-        solver passes 0.5, see ``ranktide.solver.greedy._INNER_STALL``). Softmax and
-        multilabel only.
-    progress : callable, optional
-        Called after every step with a :class:`ranktide.solver.apg.ApgProgress`
-        (step, objective, gap estimate, elapsed seconds, ETA).
+    settings : RefineSettings
+        Loss, ``lam`` and the loop's settings (tolerance, step limit, class
+        weights, check interval, stall test, stop check, progress callback).
 
     Returns
     -------
@@ -543,20 +354,16 @@ def refine(
     O'Donoghue & Candes (2015), Adaptive restart for accelerated gradient schemes.
     """
     A = np.ascontiguousarray(_as_array(XQ_blocks, "XQ_blocks"), dtype=np.float64)
-    N0 = np.array(N0, dtype=np.float64, ndmin=2)
-    b0 = np.array(b0, dtype=np.float64).reshape(-1)
-    _validate(A, N0, b0, lam, tol, max_iter, loss)
-    Y, w = rows_for_loss(A.shape[0], N0.shape[1], targets, weights, loss, class_weights)
+    N0, b0 = start_point(N0, b0, A)
+    Y, w = rows_for_loss(A.shape[0], N0.shape[1], targets, weights, settings)
     with _blas_one_thread():
-        oracle = make_oracle(A, Y, w, loss, N0.shape[1])
-        out = apg(oracle, lam, N0, b0 + N0.T @ oracle.abar, tol=tol, max_iter=int(max_iter),
-                  check_every=check_every, should_stop=should_stop, progress=progress,
-                  stall=0.0 if loss == "squared" else float(stall))
+        oracle = make_oracle(A, Y, w, settings.loss, N0.shape[1])
+        out = run_apg(oracle, N0, b0, settings)
     return refine_result(out, oracle)
 
 
-def rows_for_loss(n: int, k: int, targets, weights, loss: str,
-                  class_weights: np.ndarray | None) -> tuple[Any, np.ndarray]:
+def rows_for_loss(n: int, k: int, targets: Any, weights: Any,
+                  settings: RefineSettings) -> tuple[Any, np.ndarray]:
     """Targets as the loss needs them and the row weights normalized to sum 1.
 
     Parameters
@@ -565,46 +372,33 @@ def rows_for_loss(n: int, k: int, targets, weights, loss: str,
         Rows and outputs.
     targets, weights :
         As :func:`refine` takes them (per block or concatenated).
-    loss : {"softmax", "squared", "multilabel"}
-    class_weights : (k,) array or None
-        Softmax only: folded into the row weights.
+    settings : RefineSettings
+        The loss, and the class weights folded into the row weights.
 
     Returns
     -------
     Y : int64 (n,), CSR (n, k) or float64 (n, k)
     w : float64 (n,), summing to 1
     """
-    Y = _dense_targets(_as_array(targets, "targets"), n, k, loss)
+    Y = settings.loss.refine_targets(_as_array(targets, "targets"), n, k)
     wraw = _as_array(weights, "weights")
     w = np.ones(n) if wraw is None else np.asarray(wraw, dtype=np.float64).reshape(-1)
     if w.shape[0] != n:
         raise ConfigError(f"refine: {w.shape[0]} weights for {n} rows; give one per row")
-    if class_weights is not None:
-        if loss != "softmax":
-            raise ConfigError("refine: class_weights apply to the softmax loss only; drop them")
-        w = w * np.asarray(class_weights, dtype=np.float64)[Y]
+    if settings.class_weights is not None:
+        w = w * settings.class_weights[Y]
     total = float(w.sum())
     if not total > 0:
         raise ConfigError("refine: the row weights sum to zero; give some rows positive weight")
     return Y, w / total
 
 
-def make_oracle(A: np.ndarray, Y, w: np.ndarray, loss: str,
+def make_oracle(A: np.ndarray, Y: Any, w: np.ndarray, loss: Loss,
                 k: int) -> DenseOracle | SquaredOracle:
-    """The in-memory oracle of a loss: statistics for squared, scores otherwise.
+    """The in-memory oracle of a loss: statistics for a quadratic loss, scores otherwise.
 
     ``w`` sums to 1 (see :func:`rows_for_loss`).
     """
-    if loss == "squared":
+    if loss.quadratic:
         return SquaredOracle.from_rows(A, Y, w)
     return DenseOracle(A, Y, w, loss, k)
-
-
-def refine_result(out: ApgResult, oracle: Any) -> RefineResult:
-    """The loop's result in the caller's parametrization (``b = c - N^T abar``)."""
-    return RefineResult(
-        N=out.N, b=out.c - out.N.T @ oracle.abar, A=out.A, s=out.s, B=out.B,
-        objective=out.objective, loss=out.loss, iterations=out.iterations,
-        converged=out.converged, gap_estimate=out.gap_estimate,
-        grad_b_norm=out.grad_c_norm, evaluations=int(oracle.evaluations),
-    )

@@ -27,16 +27,22 @@ using an approximate Newton-type method (ICML).
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError
-from ranktide.losses import get_loss
-from ranktide.solver.apg import ApgProgress, Curvature, apg
-from ranktide.solver.refine import RefineResult, make_oracle, refine_result, rows_for_loss
+from ranktide.solver.apg import Curvature
+from ranktide.solver.refine import make_oracle, rows_for_loss
+from ranktide.solver.refine_common import (
+    RefineResult,
+    RefineSettings,
+    refine_result,
+    run_apg,
+    start_point,
+)
 from ranktide.solver.refine_stream import _block_weights
 
 __all__ = ["CorrectedOracle", "SampledRefinement", "refine_sampled", "draw_sample",
@@ -96,25 +102,9 @@ class SampledRefinement:
     predicted: float
 
 
-def refine_sampled(
-    XQ: np.ndarray,
-    targets: Any,
-    weights: np.ndarray | None,
-    loss: str,
-    lam: float,
-    N0: np.ndarray,
-    b0: np.ndarray,
-    full_grad_N: np.ndarray,
-    full_grad_b: np.ndarray,
-    *,
-    tol: float,
-    max_iter: int,
-    class_weights: np.ndarray | None = None,
-    check_every: int = 5,
-    should_stop: Callable[[], bool] | None = None,
-    stall: float = 0.0,
-    progress: Callable[[ApgProgress], Any] | None = None,
-) -> SampledRefinement:
+def refine_sampled(XQ: np.ndarray, targets: Any, weights: np.ndarray | None, N0: np.ndarray,
+                   b0: np.ndarray, full_grad_N: np.ndarray, full_grad_b: np.ndarray,
+                   settings: RefineSettings) -> SampledRefinement:
     """Solve the gradient-corrected refinement on a row sample.
 
     Parameters
@@ -123,8 +113,6 @@ def refine_sampled(
         The sample's projections.
     targets, weights :
         The sample's targets and raw row weights (as :func:`ranktide.solver.refine.refine`).
-    loss : {"softmax", "squared", "multilabel"}
-    lam : float
     N0 : ndarray, shape (q, k)
     b0 : ndarray, shape (k,)
         The current iterate (where the full gradient was taken).
@@ -133,34 +121,31 @@ def refine_sampled(
         ``[Gt_U, Gt_Psi]^T``).
     full_grad_b : ndarray, shape (k,)
         The full problem's intercept gradient at ``(N0, b0)``.
-    tol, max_iter, class_weights, check_every, should_stop, stall, progress :
-        As :func:`ranktide.solver.refine.refine`; the certificate is the surrogate's.
+    settings : RefineSettings
+        As :func:`ranktide.solver.refine.refine` takes them; the certificate is
+        the surrogate's.
 
     Returns
     -------
     SampledRefinement
     """
     A = np.ascontiguousarray(XQ, dtype=np.float64)
-    N0 = np.array(N0, dtype=np.float64, ndmin=2)
-    b0 = np.array(b0, dtype=np.float64).reshape(-1)
+    N0, b0 = start_point(N0, b0, A)
     q, k = N0.shape
-    if A.ndim != 2 or A.shape[1] != q or full_grad_N.shape != (q, k) or b0.shape != (k,):
-        raise ConfigError(f"refine: shapes disagree: sample {A.shape}, N0 {N0.shape}, b0 "
-                          f"{b0.shape}, gradient {full_grad_N.shape}")
-    if not lam > 0:
-        raise ConfigError(f"refine: lam must be > 0, got {lam!r}")
-    Y, w = rows_for_loss(A.shape[0], k, targets, weights, loss, class_weights)
-    base = make_oracle(A, Y, w, loss, k)
+    if full_grad_N.shape != (q, k):
+        raise ConfigError(f"refine: the full gradient has shape {full_grad_N.shape}; it must "
+                          f"be N0's, {(q, k)}")
+    Y, w = rows_for_loss(A.shape[0], k, targets, weights, settings)
+    base = make_oracle(A, Y, w, settings.loss, k)
     c0 = b0 + N0.T @ base.abar
     _, G_S, g_S = base.value_and_grad(N0, c0)
     # the full gradient in the sample's centered parametrization (c = b + N^T abar_S)
     G_full = full_grad_N - np.outer(base.abar, full_grad_b)
     oracle = CorrectedOracle(base, G_full - G_S, np.asarray(full_grad_b, np.float64) - g_S)
     f0, _ = oracle.value(N0, c0)
+    lam = settings.lam
     F0 = f0 + lam * float(np.linalg.svd(N0, compute_uv=False).sum()) if N0.size else f0
-    out = apg(oracle, lam, N0, c0, tol=tol, max_iter=int(max_iter), check_every=check_every,
-              should_stop=should_stop, progress=progress,
-              stall=0.0 if loss == "squared" else float(stall))
+    out = run_apg(oracle, N0, b0, settings)
     return SampledRefinement(refine_result(out, oracle), max(0.0, F0 - out.objective))
 
 
@@ -209,30 +194,29 @@ def gather_rows(blocks: Iterable, rows: np.ndarray) -> tuple[np.ndarray, Any, An
     return np.concatenate(parts, axis=0), T, W
 
 
-def full_objective(blocks: Iterable, loss: str, lam: float, N: np.ndarray, b: np.ndarray,
-                   nuclear: float, *, class_weights: np.ndarray | None = None) -> float:
+def full_objective(blocks: Iterable, N: np.ndarray, b: np.ndarray, nuclear: float,
+                   settings: RefineSettings) -> float:
     """``f(A N + b) + lam * nuclear`` over every block (one stream, ``n q k`` work).
 
     Parameters
     ----------
     blocks : iterable of (XQ_b, targets_b, weights_b)
-    loss : {"softmax", "squared", "multilabel"}
-    lam : float
     N : (q, k) array
     b : (k,) array
     nuclear : float
         ``||N||_*`` (the caller has the singular values).
-    class_weights : (k,) array, optional
+    settings : RefineSettings
+        The loss, ``lam`` and the class weights.
     """
-    lf = get_loss(loss)
+    lf, cw = settings.loss, settings.class_weights
     f, total = 0.0, 0.0
     for XQ, targets, w in blocks:
         Z = XQ @ N
         Z += b
-        loss_sum, _, _ = lf.value_residual(Z, targets, w, class_weights=class_weights, out=Z,
+        loss_sum, _, _ = lf.value_residual(Z, targets, w, class_weights=cw, out=Z,
                                            where="refinement block")
         f += loss_sum
-        total += float(_block_weights(XQ.shape[0], targets, w, class_weights).sum())
+        total += float(_block_weights(XQ.shape[0], targets, w, cw).sum())
     if not total > 0:
         raise ConfigError("refine: the row weights sum to zero; give some rows positive weight")
-    return f / total + lam * float(nuclear)
+    return f / total + settings.lam * float(nuclear)

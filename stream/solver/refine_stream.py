@@ -19,15 +19,22 @@ for the squared loss, by the sufficient statistics that one stream gives
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable
+from collections.abc import Iterable
 from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError
-from ranktide.losses import get_loss
-from ranktide.solver.apg import ApgProgress, Curvature, apg
-from ranktide.solver.refine import CURVATURE, RefineResult, SquaredOracle, refine_result
+from ranktide.losses import Loss
+from ranktide.solver.apg import Curvature
+from ranktide.solver.refine import SquaredOracle
+from ranktide.solver.refine_common import (
+    RefineResult,
+    RefineSettings,
+    refine_result,
+    run_apg,
+    start_point,
+)
 
 __all__ = ["refine_streamed", "StreamOracle", "squared_oracle"]
 
@@ -44,15 +51,16 @@ class StreamOracle:
     Parameters
     ----------
     blocks : re-iterable of (XQ_b, targets_b, weights_b)
-    loss : {"softmax", "multilabel"}
+    loss : Loss
+        Not quadratic (softmax, multilabel).
     k : int
     class_weights : (k,) array, optional
     """
 
-    def __init__(self, blocks: Iterable, loss: str, k: int,
+    def __init__(self, blocks: Iterable, loss: Loss, k: int,
                  class_weights: np.ndarray | None) -> None:
         self.blocks = blocks
-        self.loss = get_loss(loss)
+        self.loss = loss
         self.k = k
         self.cw = class_weights
         self.evaluations = 0
@@ -62,7 +70,7 @@ class StreamOracle:
         # weighted covariance of A: the curvature of the centered problem in N
         cov = gram[:q, :q] - np.outer(self.abar, self.abar)
         lmax = float(np.linalg.eigvalsh(cov)[-1]) if cov.size else 0.0
-        cv = CURVATURE[loss]
+        cv = loss.curvature
         self._curv = Curvature(LN=cv * lmax * (1.0 + 1e-12), Lc=cv * (1.0 + 1e-12))
 
     def curvature(self) -> Curvature:
@@ -143,21 +151,8 @@ def squared_oracle(blocks: Iterable, k: int) -> SquaredOracle:
     return SquaredOracle(gram[:q, :q], gram[:q, q].copy(), M_AY, m_Y, m_YY)
 
 
-def refine_streamed(
-    blocks: Iterable[tuple[np.ndarray, Any, np.ndarray | None]],
-    loss: str,
-    lam: float,
-    N0: np.ndarray,
-    b0: np.ndarray,
-    *,
-    tol: float,
-    max_iter: int,
-    class_weights: np.ndarray | None = None,
-    check_every: int = 5,
-    should_stop: Callable[[], bool] | None = None,
-    stall: float = 0.0,
-    progress: Callable[[ApgProgress], Any] | None = None,
-) -> RefineResult:
+def refine_streamed(blocks: Iterable[tuple[np.ndarray, Any, np.ndarray | None]],
+                    N0: np.ndarray, b0: np.ndarray, settings: RefineSettings) -> RefineResult:
     """Solve the refinement subproblem streaming over projection blocks.
 
     Parameters
@@ -165,48 +160,24 @@ def refine_streamed(
     blocks : iterable of (XQ_b, targets_b, weights_b), re-iterable
         :class:`MemoryProjections` or :class:`ScratchProjections`: ``XQ_b``
         (n_b, q) float64, the block's targets, raw row weights or None.
-    loss : {"softmax", "squared", "multilabel"}
-    lam : float
-        Trace-norm penalty (> 0).
     N0 : (q, k) array
         Warm start.
     b0 : (k,) array
         Warm-start intercept.
-    tol : float
-        Relative tolerance on the subproblem's gap estimate (and on ``grad_b``).
-    max_iter : int
-        Maximum proximal steps.
-    class_weights : (k,) array, optional
-        Softmax only.
-    check_every : int
-        Steps between two certificate checks (each costs one extra stream).
-    should_stop : callable, optional
-        Checked before every step (:class:`ranktide.signals.StopRequested`).
-    stall : float
-        As in :func:`ranktide.solver.refine.refine`: also stop once the decrease over the
-        last ``check_every`` steps is at most this fraction of the whole
-        decrease so far (0 turns it off; softmax and multilabel only).
-    progress : callable, optional
-        As in :func:`ranktide.solver.refine.refine`.
+    settings : RefineSettings
+        As :func:`ranktide.solver.refine.refine` takes them; a certificate
+        check costs one extra stream here.
 
     Returns
     -------
     RefineResult
         As :func:`ranktide.solver.refine.refine`; ``evaluations`` counts streams
-        (the squared loss streams once, for its statistics, and reports 0).
+        (a quadratic loss streams once, for its statistics, and reports 0).
     """
-    if not lam > 0:
-        raise ConfigError(f"refine: lam must be > 0, got {lam!r}")
-    if int(max_iter) < 1:
-        raise ConfigError(f"refine: max_iter must be >= 1, got {max_iter!r}")
-    N0 = np.array(N0, dtype=np.float64, ndmin=2)
-    b0 = np.array(b0, dtype=np.float64).reshape(-1)
+    N0, b0 = start_point(N0, b0)
     k = N0.shape[1]
-    if loss == "squared":
+    if settings.loss.quadratic:
         oracle: Any = squared_oracle(blocks, k)
     else:
-        oracle = StreamOracle(blocks, loss, k, class_weights)
-    out = apg(oracle, lam, N0, b0 + N0.T @ oracle.abar, tol=tol, max_iter=int(max_iter),
-              check_every=check_every, should_stop=should_stop, progress=progress,
-              stall=0.0 if loss == "squared" else float(stall))
-    return refine_result(out, oracle)
+        oracle = StreamOracle(blocks, settings.loss, k, settings.class_weights)
+    return refine_result(run_apg(oracle, N0, b0, settings), oracle)

@@ -14,19 +14,20 @@ from __future__ import annotations
 
 import math
 import sys
-from collections.abc import Callable
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
+from ranktide.losses import Loss, get_loss
 from ranktide.solver.apg import ApgProgress
-from ranktide.solver.refine import RefineResult, refine
+from ranktide.solver.refine import refine
+from ranktide.solver.refine_common import RefineResult, RefineSettings
 from ranktide.solver.refine_sample import draw_sample, full_objective, gather_rows, refine_sampled
 from ranktide.solver.refine_stream import refine_streamed
 from tqdm import tqdm
 
-__all__ = ["DEFAULT_SAMPLE_ROWS", "MIN_SAMPLE_ROWS", "sample_rows", "RefineSettings",
-           "refine_projections", "RefineBar"]
+__all__ = ["DEFAULT_SAMPLE_ROWS", "MIN_SAMPLE_ROWS", "sample_rows", "refine_projections",
+           "RefineBar"]
 
 #: Most rows of the automatic sample. Each inner step then costs ``m q k`` whatever ``n`` is;
 #: see tools/bench_refine.py for the measured trade-off.
@@ -44,18 +45,18 @@ _BUDGET_SHARE = 0.25
 _ROOM_SHARE = 0.3
 
 
-def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: int | None,
-                grown: int, room: int | None = None) -> int:
+def sample_rows(*, n: int, q: int, k: int, loss: str | Loss, budget: int,
+                configured: int | None, grown: int, room: int | None = None) -> int:
     """Rows of the refinement's sample (0: the exact refinement).
 
     Parameters
     ----------
     n, q, k : int
         Rows, subspace width, outputs.
-    loss : str
-        The squared loss refines exactly from its sufficient statistics (one
-        ``n q (q + k)`` stream, no per-step cost), so it samples only when
-        ``configured`` asks.
+    loss : str or Loss
+        A quadratic loss (``Loss.quadratic``: squared) refines exactly from its
+        sufficient statistics (one ``n q (q + k)`` stream, no per-step cost), so
+        it samples only when ``configured`` asks.
     budget : int
         Memory budget in bytes: the sample's scores (five ``m x k`` arrays)
         and projections take at most a quarter of it.
@@ -78,7 +79,7 @@ def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: i
     if configured is not None and int(configured) <= 0:
         return 0
     if configured is None:
-        if loss == "squared":
+        if get_loss(loss).quadratic:
             return 0
         share = int(_BUDGET_SHARE * budget)
         if room is not None:
@@ -95,30 +96,13 @@ def sample_rows(*, n: int, q: int, k: int, loss: str, budget: int, configured: i
     return 0 if 2 * m > n else m
 
 
-@dataclass(frozen=True)
-class RefineSettings:
-    """What every refinement of one solver shares (see :func:`ranktide.solver.refine.refine`)."""
-
-    loss: str
-    lam: float
-    tol: float
-    max_iter: int
-    stall: float
-    class_weights: np.ndarray | None = None
-    should_stop: Callable[[], bool] | None = None
-    progress: Callable[[ApgProgress], Any] | None = None
-
-
 def _exact(blocks: Any, mode: str, N0: np.ndarray, b0: np.ndarray,
            cfg: RefineSettings) -> RefineResult:
-    kw = dict(tol=cfg.tol, max_iter=cfg.max_iter, class_weights=cfg.class_weights,
-              should_stop=cfg.should_stop, stall=cfg.stall, progress=cfg.progress)
     if mode == "memory":
         parts = list(blocks)
         A = np.concatenate([p[0] for p in parts], axis=0)
-        return refine(A, [p[1] for p in parts], [p[2] for p in parts], cfg.loss, cfg.lam,
-                      N0, b0, **kw)
-    return refine_streamed(blocks, cfg.loss, cfg.lam, N0, b0, **kw)
+        return refine(A, [p[1] for p in parts], [p[2] for p in parts], N0, b0, cfg)
+    return refine_streamed(blocks, N0, b0, cfg)
 
 
 def refine_projections(
@@ -148,6 +132,8 @@ def refine_projections(
     N0, b0 : (q, k), (k,) arrays
         The current model in the basis ``Q``.
     cfg : RefineSettings
+        The loss, ``lam`` and the loop's settings
+        (:class:`ranktide.solver.refine_common.RefineSettings`).
     rows : int
         Sample rows (from :func:`sample_rows`); 0 for the exact refinement.
     n : int
@@ -173,13 +159,10 @@ def refine_projections(
         return _exact(blocks, mode, N0, b0, cfg), {"refine_sample_rows": 0}
     idx = draw_sample(n, rows, rng)
     XQ, T, W = gather_rows(blocks, idx)
-    out = refine_sampled(XQ, T, W, cfg.loss, cfg.lam, N0, b0, full_grad_N, full_grad_b,
-                         tol=cfg.tol, max_iter=cfg.max_iter, class_weights=cfg.class_weights,
-                         should_stop=cfg.should_stop, stall=cfg.stall, progress=cfg.progress)
+    out = refine_sampled(XQ, T, W, N0, b0, full_grad_N, full_grad_b, cfg)
     res = out.result
     nuc = float(res.s.sum())
-    F = full_objective(blocks, cfg.loss, cfg.lam, res.N, res.b, nuc,
-                       class_weights=cfg.class_weights)
+    F = full_objective(blocks, res.N, res.b, nuc, cfg)
     decrease = objective - F
     ratio = decrease / out.predicted if out.predicted > 0 else (1.0 if decrease >= 0 else 0.0)
     info = {"refine_sample_rows": rows, "refine_sample_ratio": float(ratio),

@@ -7,9 +7,12 @@ the solver suites check against CVXPY + Clarabel).
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 from ranktide.kernels.dense import add_row, extrapolate
 from ranktide.solver.refine import refine
+from ranktide.solver.refine_common import RefineSettings
 
 
 def test_fused_extrapolation_and_row_add_equal_numpy_bitwise():
@@ -36,9 +39,10 @@ def test_stall_test_stops_early_near_the_optimum():
     A, y = _problem()
     q, k = A.shape[1], 12
     N0, b0 = np.zeros((q, k)), np.zeros(k)
-    tight = refine(A, y, None, "softmax", 0.02, N0, b0, tol=1e-9, max_iter=5000)
+    cfg = RefineSettings(loss="softmax", lam=0.02, tol=1e-9, max_iter=5000)
+    tight = refine(A, y, None, N0, b0, cfg)
     assert tight.converged
-    loose = refine(A, y, None, "softmax", 0.02, N0, b0, tol=1e-9, max_iter=5000, stall=0.5)
+    loose = refine(A, y, None, N0, b0, replace(cfg, stall=0.5))
     assert loose.converged and loose.iterations < tight.iterations
     F0 = float(np.log(k))  # W = 0, b = 0: every row's loss is log k
     # the stalled solve keeps most of the decrease (common practice, no source: 1%)

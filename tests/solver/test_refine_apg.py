@@ -12,9 +12,12 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from conic import solve_conic
+from ranktide.errors import ConfigError
+from ranktide.losses import get_loss
 from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopFlag, StopRequested
-from ranktide.solver.refine import loss_and_residual, refine, rows_for_loss
+from ranktide.solver.refine import refine, rows_for_loss
+from ranktide.solver.refine_common import RefineSettings
 from ranktide.solver.refine_sample import (
     draw_sample,
     full_objective,
@@ -22,7 +25,7 @@ from ranktide.solver.refine_sample import (
     refine_sampled,
 )
 from ranktide.solver.refine_stream import refine_streamed
-from ranktide.solver.refinement import RefineSettings, refine_projections
+from ranktide.solver.refinement import refine_projections
 
 LOSSES = ["softmax", "squared", "multilabel"]
 ORACLES = ["memory", "blocks", "scratch"]
@@ -52,16 +55,17 @@ def _blocks(A, Y, w, loss):
 
 def _run(where, A, Y, w, loss, lam, N0, b0, tmp_path, **kw):
     """The same refinement through one oracle: memory, streamed blocks or scratch files."""
+    cfg = RefineSettings(loss=loss, lam=lam, **kw)
     if where == "memory":
-        return refine(A, Y, w, loss, lam, N0, b0, **kw)
+        return refine(A, Y, w, N0, b0, cfg)
     blocks = _blocks(A, Y, w, loss)
     if where == "blocks":
-        return refine_streamed(MemoryProjections(blocks), loss, lam, N0, b0, **kw)
+        return refine_streamed(MemoryProjections(blocks), N0, b0, cfg)
     src = ScratchProjections(tmp_path / "scratch", N0.shape[1])
     for i, (XQ, t, wb) in enumerate(blocks):
         src.add(CUTS[i], XQ, t, wb)
     try:
-        return refine_streamed(src, loss, lam, N0, b0, **kw)
+        return refine_streamed(src, N0, b0, cfg)
     finally:
         src.remove()
 
@@ -105,9 +109,10 @@ def test_apg_loop_over_each_oracle(loss, where, tmp_path):
 
 def _full_gradient(A, Y, w, loss, N, b, k):
     """Q^T G and grad_b of the full problem at (N, b) (what the pass supplies), in numpy."""
-    Yd, wn = rows_for_loss(A.shape[0], k, Y, w, loss, None)
+    cfg = RefineSettings(loss=loss, lam=1.0, tol=1.0, max_iter=1)
+    Yd, wn = rows_for_loss(A.shape[0], k, Y, w, cfg)
     Yd = Yd.toarray() if sp.issparse(Yd) else Yd
-    _, R = loss_and_residual(A @ N + b, Yd, wn, loss)
+    _, R = get_loss(loss).dense_value_residual(A @ N + b, Yd, wn)
     return A.T @ R, R.sum(axis=0)
 
 
@@ -122,12 +127,13 @@ def test_sampled_surrogate_reaches_the_conic_optimum(loss):
     N, b = np.zeros((q, k)), np.zeros(k)
     blocks = _blocks(A, Y, w, loss)
     F = []
+    cfg = RefineSettings(loss=loss, lam=lam, tol=1e-10, max_iter=3000)
     for _ in range(60):
         GN, gb = _full_gradient(A, Y, w, loss, N, b, k)
         XQ, T, W = gather_rows(blocks, draw_sample(n, n // 3, rng))
-        out = refine_sampled(XQ, T, W, loss, lam, N, b, GN, gb, tol=1e-10, max_iter=3000)
+        out = refine_sampled(XQ, T, W, N, b, GN, gb, cfg)
         N, b = out.result.N, out.result.b
-        F.append(full_objective(blocks, loss, lam, N, b, float(out.result.s.sum())))
+        F.append(full_objective(blocks, N, b, float(out.result.s.sum()), cfg))
         if F[-1] - con.objective <= 1e-9 * abs(con.objective):
             break
     assert F[-1] == pytest.approx(con.objective, rel=1e-8, abs=1e-10)
@@ -138,17 +144,19 @@ def test_sampled_surrogate_reaches_the_conic_optimum(loss):
 def test_the_full_optimum_is_the_surrogate_fixed_point(loss):
     A, Y, w = _sub(loss, seed=6)
     n, q, k, lam = A.shape[0], A.shape[1], 4, 0.03
-    opt = refine(A, Y, w, loss, lam, np.zeros((q, k)), np.zeros(k), tol=1e-11, max_iter=20000)
+    opt = refine(A, Y, w, np.zeros((q, k)), np.zeros(k),
+                 RefineSettings(loss=loss, lam=lam, tol=1e-11, max_iter=20000))
     assert opt.converged
     GN, gb = _full_gradient(A, Y, w, loss, opt.N, opt.b, k)
     rng = np.random.default_rng(1)
     XQ, T, W = gather_rows(_blocks(A, Y, w, loss), draw_sample(n, 40, rng))
-    out = refine_sampled(XQ, T, W, loss, lam, opt.N, opt.b, GN, gb, tol=1e-11, max_iter=5000)
+    cfg = RefineSettings(loss=loss, lam=lam, tol=1e-11, max_iter=5000)
+    out = refine_sampled(XQ, T, W, opt.N, opt.b, GN, gb, cfg)
     # a tiny sample (40 of 240 rows) with the correction stays at the full optimum
     # (Shamir, Srebro & Zhang 2014); without it the sample's own optimum is elsewhere
     scale = np.abs(opt.N).max()
     assert np.abs(out.result.N - opt.N).max() <= 1e-4 * scale
-    alone = refine(XQ, T, W, loss, lam, opt.N, opt.b, tol=1e-11, max_iter=5000)
+    alone = refine(XQ, T, W, opt.N, opt.b, cfg)
     assert np.abs(alone.N - opt.N).max() > 100 * np.abs(out.result.N - opt.N).max()
 
 
@@ -167,7 +175,8 @@ def test_gather_rows_and_full_objective_match_numpy():
     # reference: the logistic loss log(1 + e^z) - y z in numpy, weighted mean
     f = float(w @ (np.logaddexp(0, Z) - Y * Z).sum(axis=1) / w.sum())
     nuc = float(np.linalg.svd(N, compute_uv=False).sum())
-    got = full_objective(blocks, "multilabel", 0.05, N, b, nuc)
+    got = full_objective(blocks, N, b, nuc,
+                         RefineSettings(loss="multilabel", lam=0.05, tol=1e-6, max_iter=1))
     assert got == pytest.approx(f + 0.05 * nuc, rel=1e-12)
 
 
@@ -180,24 +189,52 @@ def test_refine_projections_keeps_falls_back_and_grows(loss):
     N0, b0 = np.zeros((q, k)), np.zeros(k)
     blocks = MemoryProjections(_blocks(A, Y, w, loss))
     GN, gb = _full_gradient(A, Y, w, loss, N0, b0, k)
-    F0 = full_objective(blocks, loss, lam, N0, b0, 0.0)
     cfg = RefineSettings(loss=loss, lam=lam, tol=1e-9, max_iter=3000, stall=0.0)
+    F0 = full_objective(blocks, N0, b0, 0.0, cfg)
     kw = dict(n=n, full_grad_N=GN, full_grad_b=gb)
     res, info = refine_projections(blocks, "memory", N0, b0, cfg, rows=80,
                                    rng=np.random.default_rng(0), objective=F0, **kw)
     assert info["refine_sample_rows"] == 80 and not info["refine_fallback"]
     nuc = float(res.s.sum())
     # the objective it reports is the full one at its answer (reference: numpy, below)
-    assert res.objective == pytest.approx(full_objective(blocks, loss, lam, res.N, res.b, nuc))
+    assert res.objective == pytest.approx(full_objective(blocks, res.N, res.b, nuc, cfg))
     assert res.objective < F0
     # told that the start was better than it is, the sampled answer looks like an increase:
     # the exact refinement replaces it and the sample grows four-fold
     res2, info2 = refine_projections(blocks, "blocks", N0, b0, cfg, rows=80,
                                      rng=np.random.default_rng(0), objective=-1.0, **kw)
-    exact = refine(A, Y, w, loss, lam, N0, b0, tol=1e-9, max_iter=3000)
+    exact = refine(A, Y, w, N0, b0, cfg)
     assert info2["refine_fallback"] and info2["refine_sample_next"] == 320
     assert res2.objective == pytest.approx(exact.objective, rel=1e-9)
     res3, info3 = refine_projections(blocks, "memory", N0, b0, cfg, rows=0,
                                      rng=np.random.default_rng(0), objective=F0, **kw)
     assert info3 == {"refine_sample_rows": 0}
     assert res3.objective == exact.objective
+
+
+def test_refine_settings_are_checked_once_when_made():
+    """Every refinement takes its settings from one validated object (contract test:
+    no outside reference applies; common practice, no source)."""
+    ok = RefineSettings(loss="softmax", lam=0.1, tol=1e-6, max_iter=10)
+    assert ok.loss is get_loss("softmax") and ok.check_every == 5 and ok.stall == 0.0
+    assert ok.loop_stall == 0.0
+    assert RefineSettings(loss="softmax", lam=0.1, tol=1e-6, max_iter=10,
+                          stall=0.5).loop_stall == 0.5
+    # a quadratic loss takes exact steps: the stall test is off for it
+    assert RefineSettings(loss="squared", lam=0.1, tol=1e-6, max_iter=10,
+                          stall=0.5).loop_stall == 0.0
+    bad = [
+        (dict(loss="hinge"), "loss 'hinge': unknown"),
+        (dict(lam=0.0), "lam = 0.0; give a positive number"),
+        (dict(lam=float("inf")), "lam = inf; give a positive number"),
+        (dict(tol=0.0), "tol = 0.0; give a positive number"),
+        (dict(max_iter=0), "max_iter = 0; give an integer >= 1"),
+        (dict(check_every=2.5), "check_every = 2.5; give an integer >= 1"),
+        (dict(stall=-0.1), "stall = -0.1; give a fraction >= 0"),
+        (dict(loss="squared", class_weights=np.ones(4)), "softmax loss only"),
+    ]
+    for change, message in bad:
+        kw = dict(loss="softmax", lam=0.1, tol=1e-6, max_iter=10)
+        kw.update(change)
+        with pytest.raises(ConfigError, match=message):
+            RefineSettings(**kw)

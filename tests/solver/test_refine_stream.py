@@ -14,6 +14,7 @@ from ranktide.errors import ConfigError
 from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopFlag, StopRequested
 from ranktide.solver.refine import refine
+from ranktide.solver.refine_common import RefineSettings
 from ranktide.solver.refine_stream import refine_streamed
 
 
@@ -52,13 +53,13 @@ def test_streamed_refinement_matches_cvxpy_and_in_memory(loss, where, tmp_path):
         for i, (XQ, t, wb) in enumerate(blocks):
             src.add(i, XQ, t, wb)
         assert len(list((tmp_path / "scratch").glob("xq-*.npz"))) == len(blocks)
-    res = refine_streamed(src, loss, lam, np.zeros((q, k)), np.zeros(k), tol=1e-9,
-                          max_iter=4000)
+    cfg = RefineSettings(loss=loss, lam=lam, tol=1e-9, max_iter=4000)
+    res = refine_streamed(src, np.zeros((q, k)), np.zeros(k), cfg)
     con = solve_conic(A, Y, loss=loss, lam=lam, weights=w, n_outputs=k)  # CVXPY + Clarabel
     assert res.converged
     assert res.objective == pytest.approx(con.objective, rel=1e-7, abs=1e-9)
-    mem = refine([b[0] for b in blocks], [b[1] for b in blocks], [b[2] for b in blocks], loss,
-                 lam, np.zeros((q, k)), np.zeros(k), tol=1e-9, max_iter=4000)
+    mem = refine([b[0] for b in blocks], [b[1] for b in blocks], [b[2] for b in blocks],
+                 np.zeros((q, k)), np.zeros(k), cfg)
     assert res.objective == pytest.approx(mem.objective, rel=1e-8)
     np.testing.assert_allclose(res.s, mem.s, rtol=1e-4, atol=1e-7)
     if where == "scratch":
@@ -70,19 +71,21 @@ def test_streamed_refinement_class_weights_stop_and_errors():
     A, Y, w = _sub("softmax", seed=3)
     cw = np.array([1.0, 2.0, 0.5, 1.5])
     blocks = MemoryProjections(_blocks(A, Y, w, "softmax"))
-    res = refine_streamed(blocks, "softmax", 0.03, np.zeros((5, 4)), np.zeros(4), tol=1e-9,
-                          max_iter=4000, class_weights=cw)
+    res = refine_streamed(blocks, np.zeros((5, 4)), np.zeros(4),
+                          RefineSettings(loss="softmax", lam=0.03, tol=1e-9, max_iter=4000,
+                                         class_weights=cw))
     # CVXPY + Clarabel with the row weights w_i c_{y_i} folded in
     con = solve_conic(A, Y, loss="softmax", lam=0.03, weights=w * cw[Y], n_outputs=4)
     assert res.objective == pytest.approx(con.objective, rel=1e-7, abs=1e-9)
     flag = StopFlag()
     flag.request()
     with pytest.raises(StopRequested):
-        refine_streamed(blocks, "softmax", 0.03, np.zeros((5, 4)), np.zeros(4), tol=1e-6,
-                        max_iter=10, should_stop=flag)
-    with pytest.raises(ConfigError, match="lam must be > 0"):
-        refine_streamed(blocks, "softmax", 0.0, np.zeros((5, 4)), np.zeros(4), tol=1e-6,
-                        max_iter=10)
+        refine_streamed(blocks, np.zeros((5, 4)), np.zeros(4),
+                        RefineSettings(loss="softmax", lam=0.03, tol=1e-6, max_iter=10,
+                                       should_stop=flag))
+    with pytest.raises(ConfigError, match="shapes disagree"):
+        refine_streamed(blocks, np.zeros((5, 4)), np.zeros(3),
+                        RefineSettings(loss="softmax", lam=0.03, tol=1e-6, max_iter=10))
     with pytest.raises(ConfigError, match="no projection blocks"):
         MemoryProjections([])
 

@@ -25,6 +25,7 @@ from ranktide.solver.certificate import gap_estimate
 from ranktide.solver.config import SolverConfig
 from ranktide.solver.greedy import GreedySolver
 from ranktide.solver.refine import refine
+from ranktide.solver.refine_common import RefineSettings
 from ranktide.solver.state import SolverState
 from ranktide.solver.subspace import fill as _fill
 from ranktide.solver.subspace import momentum_directions as _momentum
@@ -85,8 +86,8 @@ def test_refine_matches_cvxpy_on_fixed_basis(loss):
     blocks = [A[:70], A[70:]]
     tb = [Y[:70], Y[70:]]
     wb = [w[:70], w[70:]]
-    res = refine(blocks, tb, wb, loss, lam, np.zeros((q, k)), np.zeros(k), tol=1e-9,
-                 max_iter=3000)
+    res = refine(blocks, tb, wb, np.zeros((q, k)), np.zeros(k),
+                 RefineSettings(loss=loss, lam=lam, tol=1e-9, max_iter=3000))
     # Reference: CVXPY + Clarabel on min f(A N + b) + lam ||N||_* (tests/conic.py).
     con = solve_conic(A, Y, loss=loss, lam=lam, weights=w, n_outputs=k)
     assert res.converged
@@ -101,21 +102,19 @@ def test_refine_warm_start_and_bad_input():
     rng = np.random.default_rng(2)
     A = rng.standard_normal((80, 3))
     y = rng.integers(0, 3, 80)
-    cold = refine(A, y, None, "softmax", 0.05, np.zeros((3, 3)), np.zeros(3), tol=1e-8,
-                  max_iter=2000)
-    warm = refine(A, y, None, "softmax", 0.05, cold.N, cold.b, tol=1e-8, max_iter=2000)
+    cfg = RefineSettings(loss="softmax", lam=0.05, tol=1e-8, max_iter=2000)
+    cold = refine(A, y, None, np.zeros((3, 3)), np.zeros(3), cfg)
+    warm = refine(A, y, None, cold.N, cold.b, cfg)
     # a warm start at the solution stays there and stops at the first check
     assert warm.iterations <= 5
     assert warm.objective == pytest.approx(cold.objective, rel=1e-10)
-    with pytest.raises(ConfigError, match="lam must be a positive"):
-        refine(A, y, None, "softmax", -1.0, np.zeros((3, 3)), np.zeros(3), tol=1e-6,
-               max_iter=10)
+    short = RefineSettings(loss="softmax", lam=0.1, tol=1e-6, max_iter=10)
+    with pytest.raises(ConfigError, match="lam = -1.0; give a positive number"):
+        RefineSettings(loss="softmax", lam=-1.0, tol=1e-6, max_iter=10)
     with pytest.raises(ConfigError, match="class ids must lie in 0..2"):
-        refine(A, y + 5, None, "softmax", 0.1, np.zeros((3, 3)), np.zeros(3), tol=1e-6,
-               max_iter=10)
+        refine(A, y + 5, None, np.zeros((3, 3)), np.zeros(3), short)
     with pytest.raises(ConfigError, match="shapes disagree"):
-        refine(A, y, None, "softmax", 0.1, np.zeros((4, 3)), np.zeros(3), tol=1e-6,
-               max_iter=10)
+        refine(A, y, None, np.zeros((4, 3)), np.zeros(3), short)
 
 
 # ---------------------------------------------------------------- sigma_1 bound
