@@ -42,6 +42,7 @@ __all__ = [
     "remove_path",
     "exchange_paths",
     "replace_with",
+    "replace_together",
     "stale_siblings",
     "clean_stale_siblings",
     "user_path",
@@ -168,17 +169,68 @@ def replace_with(tmp: str | os.PathLike, final: str | os.PathLike) -> None:
     in, and the old one removed; a kill between the two renames is repaired
     by :func:`clean_stale_siblings` on the next run.
     """
-    tmp_p, fin = Path(tmp), Path(final)
+    replace_together([(tmp, final)])
+
+
+def _put_in_place(tmp: Path, fin: Path) -> Path | None:
+    """Give ``tmp`` the name ``fin``; return where the old ``fin`` now is (None: none)."""
     if not os.path.lexists(fin):
-        os.rename(tmp_p, fin)
-    elif exchange_paths(tmp_p, fin):
-        remove_path(tmp_p)
+        os.rename(tmp, fin)
+        return None
+    if exchange_paths(tmp, fin):
+        return tmp
+    old = temp_sibling(fin, "old")
+    os.rename(fin, old)
+    os.rename(tmp, fin)
+    return old
+
+
+def _put_back(tmp: Path, fin: Path, old: Path | None) -> None:
+    """Undo :func:`_put_in_place`: the new one back at ``tmp``, the old one at ``fin``."""
+    if old is None:
+        os.rename(fin, tmp)
+    elif old == tmp:
+        exchange_paths(tmp, fin)
     else:
-        old = temp_sibling(fin, "old")
-        os.rename(fin, old)
-        os.rename(tmp_p, fin)
-        remove_path(old)
-    fsync_dir(fin.parent if str(fin.parent) else ".")
+        os.rename(fin, tmp)
+        os.rename(old, fin)
+
+
+def replace_together(pairs: list[tuple[str | os.PathLike, str | os.PathLike]]) -> None:
+    """Put several complete temporaries at their final names, one right after another.
+
+    Every old output is kept until every new one has its name, and only
+    then removed; an error on the way puts back the ones already replaced,
+    so the outputs are all old or all new.
+
+    A kill cannot be undone that way: POSIX changes one directory entry (or,
+    with ``renameat2(RENAME_EXCHANGE)``, exchanges two entries) per call,
+    and no call replaces two names by two other files at once, so between
+    the first and the last rename some outputs are new and some old. The
+    window holds only renames (everything is built and fsynced before);
+    callers whose outputs belong together mark them with a shared id that
+    their readers check (:func:`ranktide.store.split.split_store`).
+
+    Parameters
+    ----------
+    pairs : list of (tmp, final)
+        Each complete temporary sibling and the name it should have.
+    """
+    done: list[tuple[Path, Path, Path | None]] = []
+    try:
+        for tmp, final in pairs:
+            tmp_p, fin = Path(tmp), Path(final)
+            done.append((tmp_p, fin, _put_in_place(tmp_p, fin)))
+    except BaseException:
+        for tmp_p, fin, old in reversed(done):
+            _put_back(tmp_p, fin, old)
+        raise
+    for _tmp, _fin, old in done:
+        if old is not None:
+            remove_path(old)
+    for parent in dict.fromkeys(fin.parent if str(fin.parent) else Path(".")
+                                for _t, fin, _o in done):
+        fsync_dir(parent)
 
 
 def fsync_dir(path: str | os.PathLike) -> None:

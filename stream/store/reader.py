@@ -470,6 +470,48 @@ def _check_attrs(p: Path, be: StoreBackend, attrs: dict[str, Any] | None) -> dic
     return attrs
 
 
+def _peek_attrs(path: Path) -> dict[str, Any] | None:
+    """The attributes of the store at ``path``; None when there is none to read."""
+    try:
+        be = backend_class(_sniff_backend(path)).open(path)
+    except Exception:  # missing, not a store, unreadable: not this store's business
+        return None
+    try:
+        attrs = be.get_attrs()
+    except Exception:
+        attrs = None
+    finally:
+        be.close()
+    return attrs if isinstance(attrs, dict) else None
+
+
+def _check_split_partner(p: Path, attrs: dict[str, Any]) -> None:
+    """Refuse a part of a split whose partner names it back under another split id.
+
+    Both parts of a split carry ``split`` = {id, part, partner} (the partner
+    relative to this store's directory). A kill between the two renames that
+    put a new pair in place leaves one new part next to an old one: each then
+    names the other with a different id. A partner that is gone, moved, or
+    now belongs to another split (or to none) is not checked.
+    """
+    mine = attrs.get("split")
+    if not isinstance(mine, dict) or not isinstance(mine.get("partner"), str):
+        return
+    home = Path(os.path.realpath(p)).parent
+    partner = home / mine["partner"]
+    other = (_peek_attrs(partner) or {}).get("split")
+    if not isinstance(other, dict) or not isinstance(other.get("partner"), str):
+        return
+    back = os.path.realpath(Path(os.path.realpath(partner)).parent / other["partner"])
+    if back != os.path.realpath(p) or other.get("id") == mine.get("id"):
+        return
+    raise StoreError(
+        f"{p}: this {mine.get('part', 'part')} store and its {other.get('part', 'partner')} "
+        f"store {os.path.relpath(partner)} come from different runs of `ranktide split` (one "
+        "was interrupted between replacing the two); run the split again with --overwrite"
+    )
+
+
 def open_store(path: str | os.PathLike, *, verify: bool = True) -> Store:
     """Open a store for reading.
 
@@ -487,13 +529,15 @@ def open_store(path: str | os.PathLike, *, verify: bool = True) -> Store:
     Raises
     ------
     StoreError
-        The path is missing or not a store, is of a newer format version, or
-        is incomplete or damaged.
+        The path is missing or not a store, is of a newer format version, is
+        incomplete or damaged, or is a part of a split whose other part comes
+        from another run of the split.
     """
     p = Path(path)
     be = backend_class(_sniff_backend(p)).open(p)
     try:
         attrs = _check_attrs(p, be, be.get_attrs())
+        _check_split_partner(p, attrs)
     except BaseException:
         be.close()
         raise

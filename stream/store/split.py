@@ -6,10 +6,22 @@ class ``j``, exactly ``round(holdout * c_j)`` (round half to even, as
 ``numpy.rint``) go to the holdout part, chosen uniformly at random by the
 seeded generator. For other targets exactly ``round(holdout * n)`` rows are
 chosen uniformly. The same seed gives the same split.
+
+The two parts are written aside, both finished and fsynced, then put in
+place one right after the other (:func:`ranktide.store.writer.place_together`:
+an error on the way puts the old pair back). A kill between those two renames
+cannot be undone (POSIX has no call that replaces two names at once), so both
+parts carry the attribute ``split``: a shared build id, which part this is and
+where its partner is (relative to this store's directory). Every reader checks
+it when opening a part (:func:`ranktide.store.reader.open_store`) and refuses a
+part whose partner names it back under another id, with one line saying to
+run the split again.
 """
 
 from __future__ import annotations
 
+import os
+import uuid
 from pathlib import Path
 from typing import Any
 
@@ -17,9 +29,21 @@ import numpy as np
 from ranktide.errors import ConfigError
 from ranktide.outputs import check_not_overlapping, check_output, real_path
 from ranktide.store.reader import open_store
-from ranktide.store.writer import create_store
+from ranktide.store.writer import create_store, place_together
 
-__all__ = ["split_store", "holdout_mask_counts"]
+__all__ = ["split_store", "holdout_mask_counts", "split_attrs"]
+
+
+def split_attrs(build: str, part: str, path: Path, partner: Path,
+                settings: dict[str, Any]) -> dict[str, Any]:
+    """The ``split`` attribute of one part: build id, part, partner path, settings.
+
+    ``partner`` is stored relative to the directory holding ``path`` (symbolic
+    links resolved), so a pair moved together still finds itself.
+    """
+    home = real_path(path).parent
+    return {"id": build, "part": part,
+            "partner": os.path.relpath(real_path(partner), home), **settings}
 
 
 def holdout_mask_counts(counts: np.ndarray, holdout: float, rng: np.random.Generator):
@@ -156,17 +180,22 @@ def split_store(
         mask, offset = holdout_mask_counts(counts, holdout, rng)
         seen = np.zeros(counts.size, dtype=np.int64)
 
-        def make(p: Path):
+        build = uuid.uuid4().hex
+        settings = {"seed": seed if isinstance(seed, int) else None,
+                    "holdout_fraction": float(holdout)}
+
+        def make(p: Path, part: str, partner: Path):
             return create_store(
                 p, n_cols=d, kind=kind, n_outputs=st.n_outputs, names=st.output_names,
                 backend=backend or st.backend, codec=codec or st.codec, overwrite=overwrite,
-                source=str(st.path),
+                source=str(st.path), attrs={"split": split_attrs(build, part, p, partner,
+                                                                 settings)},
             )  # fmt: skip
 
-        w_tr = make(tr_p)
+        w_tr = make(tr_p, "train", ho_p)
         w_ho = None
         try:
-            w_ho = make(ho_p)
+            w_ho = make(ho_p, "holdout", tr_p)
             for b in st.blocks(block_bytes=block_bytes):
                 if kind == "classes":
                     hold = _block_holdout(b.targets, seen, mask, offset)
@@ -175,8 +204,9 @@ def split_store(
                 _append_rows(w_ho, b, np.flatnonzero(hold), kind)
                 _append_rows(w_tr, b, np.flatnonzero(~hold), kind)
             n_tr, n_ho = w_tr.n_rows, w_ho.n_rows
-            w_tr.commit()
-            w_ho.commit()
+            w_tr.finish_aside()
+            w_ho.finish_aside()
+            place_together([w_tr, w_ho])
         except BaseException:
             w_tr.abort()
             if w_ho is not None:
@@ -191,6 +221,7 @@ def split_store(
             "holdout_fraction": float(holdout),
             "seed": seed if isinstance(seed, int) else None,
             "stratified": kind == "classes",
+            "split_id": build,
         }
         if kind == "classes":
             out["holdout_per_class"] = np.rint(holdout * counts).astype(np.int64).tolist()

@@ -4,7 +4,10 @@ Rows, targets and weights arrive in row order and go out through one fixed
 slab buffer per array (:class:`_Appender`), with per-segment checksums taken
 as slabs are written. Everything is written into a temporary sibling that
 :meth:`StoreWriter.commit` renames into place; an error or :meth:`abort`
-removes it. The layout is documented in :mod:`ranktide.store`.
+removes it. Stores that belong together (a split's two parts) are finished
+aside first (:meth:`StoreWriter.finish_aside`) and put in place one right
+after the other (:func:`place_together`). The layout is documented in
+:mod:`ranktide.store`.
 """
 
 from __future__ import annotations
@@ -12,14 +15,20 @@ from __future__ import annotations
 import datetime as _dt
 import functools
 import os
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import ranktide.store.format as _fmt
 from ranktide import __version__
-from ranktide.atomic import atomic_dir
+from ranktide.atomic import (
+    clean_stale_siblings,
+    fsync_tree,
+    remove_path,
+    replace_together,
+    temp_sibling,
+)
 from ranktide.errors import ConfigError, InputError, OutputExistsError
 from ranktide.store.backends import backend_class
 from ranktide.store.checksums import ALGORITHM, SegmentHasher, fingerprint
@@ -33,7 +42,7 @@ from ranktide.store.format import (
     _choose_backend,
 )
 
-__all__ = ["StoreWriter", "create_store"]
+__all__ = ["StoreWriter", "create_store", "place_together"]
 
 
 class _Appender:
@@ -204,6 +213,7 @@ class StoreWriter:
         codec: str,
         overwrite: bool,
         source: str | None = None,
+        attrs: Mapping[str, Any] | None = None,
     ) -> None:
         self.path = path
         self.n_cols = int(n_cols)
@@ -213,8 +223,12 @@ class StoreWriter:
         self.backend_name = backend
         self.codec = codec
         self._where = source or str(path)
-        self._ctx = atomic_dir(path, overwrite=overwrite)
-        self._tmp = self._ctx.__enter__()
+        self._extra_attrs = dict(attrs or {})
+        clean_stale_siblings(path)
+        if path.exists() and not overwrite:
+            raise OutputExistsError(f"{path}: already exists; pass --overwrite to replace it")
+        self._tmp = temp_sibling(path)
+        self._aside = False  # finished under the temporary name, not yet placed
         self._open = True
         try:
             self._create_backend()
@@ -272,7 +286,7 @@ class StoreWriter:
 
     def __del__(self) -> None:
         # A writer dropped without commit() must not leave its temporary behind.
-        if getattr(self, "_open", False):
+        if getattr(self, "_open", False) or getattr(self, "_aside", False):
             try:
                 self._abort_quietly()
             except Exception:  # interpreter shutdown: modules may already be gone
@@ -600,15 +614,19 @@ class StoreWriter:
                 "created_at": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
             }
         )
+        attrs.update(self._extra_attrs)
         return attrs
 
-    def commit(self) -> Path:
-        """Finish the store and rename it to its final name.
+    def finish_aside(self) -> Path:
+        """Finish the store under its temporary name, fsynced, without placing it.
+
+        :func:`place_together` then gives it its name (with the stores that
+        belong with it); until then an :meth:`abort` still removes it.
 
         Returns
         -------
         Path
-            The final path of the store.
+            The temporary sibling holding the complete store.
 
         Raises
         ------
@@ -626,11 +644,33 @@ class StoreWriter:
             attrs["complete"] = True
             self._be.set_attrs(attrs)  # the completeness flag goes last
             self._be.close()
-            self._open = False
-            self._ctx.__exit__(None, None, None)
+            fsync_tree(self._tmp)
         except BaseException:
             self._abort_quietly()
             raise
+        self._open = False
+        self._aside = True
+        return self._tmp
+
+    def commit(self) -> Path:
+        """Finish the store and rename it to its final name.
+
+        An existing store at the final name stays whole until the new one
+        has its name (:func:`ranktide.atomic.replace_together`).
+
+        Returns
+        -------
+        Path
+            The final path of the store.
+
+        Raises
+        ------
+        InputError
+            When targets or weights do not have one entry per row (the
+            temporary is removed).
+        """
+        self.finish_aside()
+        place_together([self])
         return self.path
 
     def abort(self) -> None:
@@ -641,16 +681,32 @@ class StoreWriter:
         be = getattr(self, "_be", None)
         if be is not None:
             be.close()
-        ctx = getattr(self, "_ctx", None)
-        was_open = getattr(self, "_open", False)
-        self._open = False
-        if ctx is not None and was_open:
-            err = _Aborted()
-            ctx.__exit__(_Aborted, err, None)
+        pending = getattr(self, "_open", False) or getattr(self, "_aside", False)
+        self._open = self._aside = False
+        if pending and getattr(self, "_tmp", None) is not None:
+            remove_path(self._tmp)
 
 
-class _Aborted(Exception):
-    """Thrown into the atomic-directory context so it removes the temporary."""
+def place_together(writers: Sequence[StoreWriter]) -> None:
+    """Give stores finished aside (:meth:`StoreWriter.finish_aside`) their names.
+
+    One rename (or exchange) after another with nothing else between; every
+    old store is kept until all are placed, and an error on the way puts the
+    old ones back (:func:`ranktide.atomic.replace_together`) and removes the
+    new ones. A kill between the renames leaves some new and some old: stores
+    that must agree carry a shared id their readers check.
+    """
+    for w in writers:
+        if not w._aside:
+            raise ConfigError(f"{w.path}: the store is not finished aside; call finish_aside()")
+    try:
+        replace_together([(w._tmp, w.path) for w in writers])
+    except BaseException:
+        for w in writers:
+            w._abort_quietly()
+        raise
+    for w in writers:
+        w._aside = False
 
 
 def _check_create_args(
@@ -691,6 +747,7 @@ def create_store(
     codec: str = DEFAULT_CODEC,
     overwrite: bool = False,
     source: str | None = None,
+    attrs: Mapping[str, Any] | None = None,
 ) -> StoreWriter:
     """Start writing a store row block by row block.
 
@@ -714,6 +771,9 @@ def create_store(
         Replace an existing store at ``path`` on commit.
     source : str, optional
         Name of the input file, used in error messages instead of ``path``.
+    attrs : mapping, optional
+        More attributes (JSON data) stored with the store's own, outside its
+        fingerprint (e.g. ``split``: the split the store is a part of).
 
     Returns
     -------
@@ -740,4 +800,5 @@ def create_store(
         codec=codec,
         overwrite=overwrite,
         source=source,
+        attrs=attrs,
     )
