@@ -120,6 +120,11 @@ class Loss(ABC):
         """Probabilities from all scores ``Z`` (n, k); of ``top`` (n, K) scores when given."""
 
     @abstractmethod
+    def random_targets(self, rng: np.random.Generator, n: int, k: int) -> Any:
+        """Invented targets of ``n`` rows and ``k`` outputs, as a store block holds them
+        (for a tiny problem that loads the kernels before the memory floor is measured)."""
+
+    @abstractmethod
     def predict(self, Z: np.ndarray) -> Any:
         """Predictions from scores ``Z`` (n, k): class ids (n,) int64, a CSR (n, k) indicator
         of the tags whose probability is >= 0.5, or the values (n, k) themselves."""
@@ -264,6 +269,9 @@ class SoftmaxLoss(Loss):
         lse = zmax + np.log(np.exp(Z - zmax).sum(axis=1, keepdims=True))
         return np.exp((Z if top is None else top) - lse)
 
+    def random_targets(self, rng, n, k):
+        return rng.integers(0, k, n).astype(np.int32)
+
     def predict(self, Z):
         return np.argmax(Z, axis=1).astype(np.int64)
 
@@ -327,6 +335,9 @@ class SquaredLoss(Loss):
         raise ConfigError("model: the squared loss predicts values, not probabilities; "
                           "use predict()")
 
+    def random_targets(self, rng, n, k):
+        return rng.standard_normal((n, k)).astype(np.float32)
+
     def predict(self, Z):
         return Z
 
@@ -375,6 +386,9 @@ class MultilabelLoss(Loss):
     def probabilities(self, Z, top=None):
         # sigmoid, written to avoid overflow for large |z|
         return 0.5 * (1.0 + np.tanh(0.5 * (Z if top is None else top)))
+
+    def random_targets(self, rng, n, k):
+        return sp.csr_matrix((rng.random((n, k)) < 0.5).astype(np.float32))
 
     def predict(self, Z):
         # sigmoid(z) >= 0.5  <=>  z >= 0

@@ -177,13 +177,7 @@ class Model:
     def predict(self, X: Any) -> Any:
         """Predictions: class ids (n,) int64 (softmax), a CSR (n, k) tag indicator of the
         tags whose probability is >= 0.5 (multilabel), or values (n, k) float64 (squared)."""
-        Z = self.scores(X)
-        if self.loss == "softmax":
-            return np.argmax(Z, axis=1).astype(np.int64)
-        if self.loss == "multilabel":
-            # sigmoid(z) >= 0.5  <=>  z >= 0
-            return sp.csr_matrix((Z >= 0.0).astype(np.float32))
-        return Z
+        return get_loss(self.loss).predict(self.scores(X))
 
     def top_k(self, X: Any, k: int) -> TopK:
         """The k best-scoring outputs of each row, best first (ties: lower index first).

@@ -1,4 +1,4 @@
-"""Fused loss + residual kernels.
+"""Fused loss + residual kernels, and the loss objects' evaluators and predictions.
 
 References: ``sklearn.metrics.log_loss`` (softmax and per-tag logistic
 losses), ``scipy.special.logsumexp`` / ``softmax`` / ``expit`` (closed forms
@@ -12,6 +12,7 @@ import numba
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from ranktide.errors import ConfigError
 from ranktide.kernels.errors import KernelInputError
 from ranktide.kernels.losses import (
     exp_nonpositive_kernel,
@@ -23,6 +24,7 @@ from ranktide.kernels.losses import (
     squared_loss_only,
     squared_residual,
 )
+from ranktide.losses import get_loss
 from scipy.optimize import approx_fprime
 from scipy.special import expit, logsumexp, softmax
 from sklearn.metrics import log_loss
@@ -275,3 +277,57 @@ def test_more_error_messages():
     for call, msg in cases:
         with pytest.raises(KernelInputError, match=msg):
             call()
+
+
+@pytest.mark.parametrize("name", ["softmax", "squared", "multilabel"])
+def test_loss_objects_dense_evaluators_and_predictions(name):
+    """What the refinement and the model ask a loss object, against scipy closed forms."""
+    loss = get_loss(name)
+    Z, y, w, T, Y = _data(n=60, k=4, seed=7)
+    wn = w.astype(np.float64) / w.sum()
+    targets = {"softmax": y, "squared": Y, "multilabel": T}[name]
+    Yr = loss.refine_targets(targets, 60, 4)
+    Yd = Yr.toarray() if sp.issparse(Yr) else Yr
+    f, R = loss.dense_value_residual(Z, Yd, wn)
+    # references: logsumexp - z_y / softmax - onehot (scipy.special); 0.5 ||z - y||^2 / z - y;
+    # log(1 + e^z) - y z / expit(z) - y (scipy.special), each weighted by w / sum(w)
+    if name == "softmax":
+        onehot = np.eye(4)[y]
+        ref_f = float(wn @ (logsumexp(Z, axis=1) - Z[np.arange(60), y]))
+        ref_R = wn[:, None] * (softmax(Z, axis=1) - onehot)
+    elif name == "squared":
+        ref_f = float(wn @ (0.5 * ((Z - Yd) ** 2).sum(axis=1)))
+        ref_R = wn[:, None] * (Z - Yd)
+    else:
+        ref_f = float(wn @ (np.logaddexp(0, Z) - Yd * Z).sum(axis=1))
+        ref_R = wn[:, None] * (expit(Z) - Yd)
+    assert f == pytest.approx(ref_f, rel=1e-12)
+    np.testing.assert_allclose(R, ref_R, rtol=1e-10, atol=1e-15)
+    assert loss.dense_value_residual(Z, Yd, wn, want_residual=False) == (f, None)
+    if loss.quadratic:
+        # the squared loss refines from its statistics: no score evaluators
+        with pytest.raises(ConfigError, match="sufficient statistics"):
+            loss.fused_evaluators(Yr, wn)
+        assert name == "squared"
+    else:
+        value, residual = loss.fused_evaluators(Yr, np.ascontiguousarray(wn))
+        out = np.zeros(1)
+        value(Z, out)
+        assert out[0] == pytest.approx(ref_f, rel=1e-10)
+        out, gb = np.zeros(1), np.zeros(4)
+        Rk = residual(Z.copy(), out, gb)
+        np.testing.assert_allclose(Rk, ref_R, rtol=1e-8, atol=1e-14)
+        np.testing.assert_allclose(gb, ref_R.sum(axis=0), rtol=1e-8, atol=1e-14)
+    # predictions: argmax, expit(z) >= 0.5 (scipy), or the values themselves
+    P = loss.predict(Z)
+    if name == "softmax":
+        np.testing.assert_array_equal(P, np.argmax(Z, axis=1))
+    elif name == "multilabel":
+        np.testing.assert_array_equal(P.toarray(), (expit(Z) >= 0.5).astype(np.float32))
+    else:
+        assert P is Z
+    # invented targets have the kind the loss's residual kernel takes
+    t = loss.random_targets(np.random.default_rng(0), 8, 4)
+    loss.value_residual(np.zeros((8, 4)), t)
+    with pytest.raises(ConfigError, match="expected|for 59 rows"):
+        loss.refine_targets(targets, 59, 4)

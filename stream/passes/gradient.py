@@ -76,7 +76,8 @@ class PassRequest:
 
     Parameters
     ----------
-    loss : {"softmax", "squared", "multilabel"}
+    loss : str
+        A name in :data:`ranktide.losses.LOSS_NAMES`.
     U : (d, r) array
         Left factor (orthonormal columns).
     s : (r,) array
@@ -150,7 +151,7 @@ class PassRequest:
             cw = _mat("class_weights", self.class_weights, 1)
             if cw.shape != (k,) or np.any(cw < 0):
                 raise ConfigError(f"pass request: class_weights must be {k} values >= 0")
-            if self.loss != "softmax":
+            if not get_loss(self.loss).class_weights_ok:
                 raise ConfigError("pass request: class weights apply to the softmax loss only; "
                                   f"drop them for loss {self.loss!r}")
         for name, val in (

@@ -61,7 +61,8 @@ def best_intercept(
     ----------
     source : Store, path, CSR tuple or source
         The data (see :func:`ranktide.store.memory_source.as_source`).
-    loss : {"softmax", "squared", "multilabel"}
+    loss : str
+        A name in :data:`ranktide.losses.LOSS_NAMES`.
     class_weights : (k,) array, optional
         Per-class weights (softmax only).
     clip : float

@@ -445,17 +445,16 @@ class SquaredMetrics(_Base):
         return out
 
 
+# the accumulators by the name of the loss each one scores (its ``loss`` attribute)
 _BY_LOSS: dict[str, type[_Base]] = {
-    "softmax": SoftmaxMetrics,
-    "multilabel": MultilabelMetrics,
-    "squared": SquaredMetrics,
+    cls.loss: cls for cls in (SoftmaxMetrics, MultilabelMetrics, SquaredMetrics)
 }
 
 
 def make_metrics(
     loss: str, *, n_outputs: int, top_k: int = 5, output_names: Sequence[str] | None = None
 ) -> SoftmaxMetrics | MultilabelMetrics | SquaredMetrics:
-    """Return the accumulator for ``loss`` (``"softmax"``, ``"multilabel"`` or ``"squared"``)."""
+    """Return the accumulator for ``loss`` (a name in :data:`ranktide.losses.LOSS_NAMES`)."""
     cls = _BY_LOSS.get(str(loss))
     if cls is None:
         raise InputError(f"loss {loss!r}: unknown; expected one of {', '.join(_BY_LOSS)}")

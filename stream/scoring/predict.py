@@ -230,8 +230,8 @@ def predict_to_file(
     if out.exists() and not overwrite:
         raise OutputExistsError(f"{out}: already exists; pass --overwrite to replace it")
     model = as_model(model)
-    squared = str(model.loss) == "squared"
-    if proba and squared:
+    values = not get_loss(model.loss).has_probabilities
+    if proba and values:
         raise ConfigError("--proba: a squared-loss model predicts values, not probabilities")
     close = isinstance(source, (str, os.PathLike))
     src = open_source(source, files={"memory": memory})
@@ -239,7 +239,7 @@ def predict_to_file(
         _, k = check_compatible(model, src, need_targets=False)
         _refuse_cluster_on_file(src, backend)
         return _write(model, src, out, fmt, k=k, top_k=min(int(top_k), k), proba=proba,
-                      squared=squared, block_rows=block_rows, progress=progress,
+                      values=values, block_rows=block_rows, progress=progress,
                       overwrite=overwrite, backend=backend)
     finally:
         if close:
@@ -247,11 +247,11 @@ def predict_to_file(
 
 
 def _write(model: Any, src: Any, out: Path, fmt: str, *, k: int, top_k: int, proba: bool,
-           squared: bool, block_rows: int | None, progress: bool, overwrite: bool,
+           values: bool, block_rows: int | None, progress: bool, overwrite: bool,
            backend: str = "serial") -> dict:
     names_list = model_names(model) or [str(i) for i in range(k)]
-    top = not squared and fmt != ".npy"
-    kind = "values" if squared else ("probabilities" if proba else "scores")
+    top = not values and fmt != ".npy"
+    kind = "values" if values else ("probabilities" if proba else "scores")
     with atomic_dir(out, overwrite=overwrite) as tmp:
         if fmt == ".csv":
             header = ["row"]

@@ -19,7 +19,8 @@ class SolverConfig:
 
     Attributes
     ----------
-    loss : {"softmax", "squared", "multilabel"}
+    loss : str
+        A name in :data:`ranktide.losses.LOSS_NAMES`.
     lam : float, optional
         Trace-norm penalty. Exactly one of ``lam`` and ``lam_scale`` (or neither,
         when a caller such as the regularization path sets ``lam`` later).
@@ -170,7 +171,7 @@ class SolverConfig:
         if self.max_seconds is not None and not self.max_seconds > 0:
             raise ConfigError(f"solver: max_seconds = {self.max_seconds!r}; it must be > 0")
         if self.class_weights is not None:
-            if self.loss != "softmax":
+            if not get_loss(self.loss).class_weights_ok:
                 raise ConfigError("solver: class weights apply to the softmax loss only")
             cw = np.asarray(self.class_weights, dtype=np.float64).reshape(-1)
             if not np.all(np.isfinite(cw)) or np.any(cw < 0) or not np.any(cw > 0):

@@ -240,12 +240,7 @@ class GreedySolver:
         rng = np.random.default_rng(0)
         X = sp.random(n, d, density=0.5, format="csr", dtype=np.float32, random_state=0)
         X.sort_indices()
-        if cfg.loss == "softmax":
-            y: Any = rng.integers(0, k, n).astype(np.int32)
-        elif cfg.loss == "squared":
-            y = rng.standard_normal((n, k)).astype(np.float32)
-        else:
-            y = sp.csr_matrix((rng.random((n, k)) < 0.5).astype(np.float32))
+        y = get_loss(cfg.loss).random_targets(rng, n, k)
         w = np.ones(n, np.float32) if getattr(self.source, "has_weights", False) else None
         tiny = as_source((X, y, w) if w is not None else (X, y), n_outputs=k)
         U = np.linalg.qr(rng.standard_normal((d, 1)))[0]
