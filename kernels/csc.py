@@ -226,6 +226,7 @@ def block_csc(
     *,
     n_parts: int | None = None,
     where: str = "CSR block",
+    row_offset: int = 0,
 ) -> BlockCSC:
     """Transpose a CSR row block for :func:`csc_matmul_dense` and :func:`csc_t_matmul_accumulate`.
 
@@ -240,6 +241,9 @@ def block_csc(
         Row parts transposed in parallel (default: numba's thread count).
     where : str
         Data source name for error messages.
+    row_offset : int
+        Index of the block's first row in the data source (0-based), so that
+        messages name rows as the user counts them (from 1).
 
     Returns
     -------
@@ -261,7 +265,7 @@ def block_csc(
     with kernel_guard():
         bad = csc_count_kernel(indptr, indices, cuts, seg)
         if bad:
-            _raise_bad_entries(indptr, indices, d, where)
+            _raise_bad_entries(indptr, indices, d, where, row_offset)
         nnz = int(csc_scan_kernel(seg))
         rows = np.empty(nnz, dtype=np.int32)
         vals = np.empty(nnz, dtype=data.dtype)

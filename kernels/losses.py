@@ -458,9 +458,10 @@ def _check_tags(
 
 
 def _bad_class(y, bad: int, k: int, row_offset: int, where: str) -> None:
+    # rows count from 1 in messages, as the user (and Matrix Market) counts them
     if bad >= 0:
         raise KernelInputError(
-            f"{where}: row {row_offset + bad} has class id {int(y[bad])} outside 0..{k - 1}; "
+            f"{where}: row {row_offset + bad + 1} has class id {int(y[bad])} outside 0..{k - 1}; "
             "fix the targets or train with the right number of classes"
         )
 
@@ -468,7 +469,7 @@ def _bad_class(y, bad: int, k: int, row_offset: int, where: str) -> None:
 def _bad_tags(bad: int, k: int, row_offset: int, where: str) -> None:
     if bad >= 0:
         raise KernelInputError(
-            f"{where}: row {row_offset + bad} has a tag id outside 0..{k - 1} or broken tag "
+            f"{where}: row {row_offset + bad + 1} has a tag id outside 0..{k - 1} or broken tag "
             "pointers; fix the tag list or train with the right number of tags"
         )
 

@@ -302,6 +302,7 @@ def block_projections(
     out_XQ: np.ndarray | None = None,
     csc: BlockCSC | None = None,
     where: str = "block",
+    row_offset: int = 0,
 ) -> np.ndarray:
     """``XQ = X [U, Psi]`` for one block (sparse kernels).
 
@@ -315,6 +316,9 @@ def block_projections(
         The block transposed by :func:`kernels.csc.block_csc` (same results).
     where : str
         Data source name (error messages).
+    row_offset : int
+        Index of the block's first row in the data source (0-based), so that
+        messages name rows as the user counts them (from 1).
 
     Returns
     -------
@@ -335,7 +339,8 @@ def block_projections(
             )
         csc_matmul_dense(csc, ops.Q, out_XQ, where=where)
     else:
-        csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where)
+        csr_matmul_dense(X.indptr, X.indices, X.data, ops.Q, out_XQ, where=where,
+                         row_offset=row_offset)
     return out_XQ
 
 
@@ -524,7 +529,7 @@ def block_products(
     _check_buffers(bufs, ops)
     n = X.shape[0]
     k, m = ops.k, ops.VO.shape[1]
-    XQ = block_projections(X, ops, out_XQ=out_XQ, csc=csc, where=where)
+    XQ = block_projections(X, ops, out_XQ=out_XQ, csc=csc, where=where, row_offset=row_offset)
     R = None
     if scratch is not None:
         if (

@@ -163,24 +163,30 @@ def _check_dense(name: str, arr: np.ndarray, rows: int | None, where: str) -> No
         )
 
 
-def _raise_bad_entries(indptr, indices, n_cols: int, where: str) -> None:
-    """Locate the first bad pointer or column id (error path only)."""
+def _raise_bad_entries(indptr, indices, n_cols: int, where: str, row_offset: int = 0) -> None:
+    """Locate the first bad pointer or column id (error path only).
+
+    Rows and columns are named as the user counts them: from 1, the block's
+    first row being ``row_offset + 1`` (as Matrix Market and the ingest
+    messages count).
+    """
     nnz = indices.shape[0]
     ptr = np.asarray(indptr, dtype=np.int64)
     bad_rows = np.flatnonzero((ptr[:-1] < 0) | (ptr[1:] > nnz) | (ptr[:-1] > ptr[1:]))
     if bad_rows.size:
         r = int(bad_rows[0])
         raise KernelInputError(
-            f"{where}: row {r} has pointers indptr[{r}]={int(ptr[r])}, "
-            f"indptr[{r + 1}]={int(ptr[r + 1])} outside 0..{nnz} or decreasing; "
+            f"{where}: row {row_offset + r + 1}: its row pointers (indptr[{r}]={int(ptr[r])}, "
+            f"indptr[{r + 1}]={int(ptr[r + 1])} in the block) lie outside 0..{nnz} or decrease; "
             "rebuild the block from a valid CSR matrix"
         )
     bad = np.flatnonzero((indices < 0) | (indices >= n_cols))
     q = int(bad[0]) if bad.size else -1
     row = int(np.searchsorted(ptr, q, side="right") - 1) if q >= 0 else -1
+    c = int(indices[q]) if q >= 0 else None
+    col = "?" if c is None else f"{c} (column {c + 1} of {n_cols})"
     raise KernelInputError(
-        f"{where}: entry {q} (row {row}) has column id "
-        f"{int(indices[q]) if q >= 0 else '?'} outside 0..{n_cols - 1}; "
+        f"{where}: row {row_offset + row + 1}: column id {col} is outside 0..{n_cols - 1}; "
         "the dense operand must have one row per column of the matrix"
     )
 
@@ -193,6 +199,7 @@ def csr_matmul_dense(
     out: np.ndarray,
     *,
     where: str = "CSR block",
+    row_offset: int = 0,
 ) -> np.ndarray:
     """Dense product of a CSR row block: ``out[:] = X @ B``.
 
@@ -209,6 +216,9 @@ def csr_matmul_dense(
         Caller-owned output, overwritten.
     where : str
         Name of the data source for error messages.
+    row_offset : int
+        Index of the block's first row in the data source (0-based), so that
+        messages name rows as the user counts them (from 1).
 
     Returns
     -------
@@ -230,7 +240,7 @@ def csr_matmul_dense(
     with kernel_guard():
         bad = csr_matmul_dense_kernel(indptr, indices, data, B, out)
     if bad:
-        _raise_bad_entries(indptr, indices, B.shape[0], where)
+        _raise_bad_entries(indptr, indices, B.shape[0], where, row_offset)
     return out
 
 
@@ -242,6 +252,7 @@ def csr_t_matmul_accumulate(
     out: np.ndarray,
     *,
     where: str = "CSR block",
+    row_offset: int = 0,
 ) -> np.ndarray:
     """Accumulate the transposed product of a CSR row block: ``out += X^T @ D``.
 
@@ -260,6 +271,8 @@ def csr_t_matmul_accumulate(
         Caller-owned accumulator (not zeroed).
     where : str
         Name of the data source for error messages.
+    row_offset : int
+        Index of the block's first row in the data source (0-based), for messages.
 
     Returns
     -------
@@ -286,5 +299,5 @@ def csr_t_matmul_accumulate(
     with kernel_guard():
         bad = csr_t_matmul_accumulate_kernel(indptr, indices, data, D, out, n_parts)
     if bad:
-        _raise_bad_entries(indptr, indices, out.shape[0], where)
+        _raise_bad_entries(indptr, indices, out.shape[0], where, row_offset)
     return out

@@ -438,13 +438,14 @@ class WeightSource:
 
 
 def _check_weights(p: Path, w: np.ndarray, first: int, unit: str) -> None:
+    """Weights ``w`` of the file's rows ``first, first + 1, ...`` (0-based) must be >= 0."""
     if w.ndim != 1:
         raise InputError(f"{p}: weights must be a 1-D array, got shape {w.shape}")
     bad = ~np.isfinite(w) | (w < 0)
     if bad.any():
         j = int(np.flatnonzero(bad)[0])
-        raise InputError(
-            f"{p}: {unit} {first + j}: weight {float(w[j])!r} is invalid; "
+        raise InputError(  # counted from 1, as the other ingest messages count rows
+            f"{p}: {unit} {first + j + 1}: weight {float(w[j])!r} is invalid; "
             "weights must be finite and >= 0"
         )
 

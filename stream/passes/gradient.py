@@ -366,9 +366,10 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
     csc = None
     if path == "csc":
         with phase("transpose"):
-            csc = block_csc(X.indptr, X.indices, X.data, X.shape[1], where=st.where)
+            csc = block_csc(X.indptr, X.indices, X.data, X.shape[1], where=st.where,
+                            row_offset=int(block.start))
     with phase("projections"):
-        XQ = block_projections(X, st.ops, csc=csc, where=st.where)
+        XQ = block_projections(X, st.ops, csc=csc, where=st.where, row_offset=int(block.start))
     sparse_s = time.perf_counter() - t0
     R = np.empty((n, k)) if st.dense_gradient else None
     D = np.empty((n, m))

@@ -157,9 +157,9 @@ class _Reader:
         if got != self.sums[j]:
             lo = j * self.chunk
             hi = min(self.n, lo + self.chunk)
-            raise StoreError(
-                f"{self.path}: array {self.name!r} segment {j} (rows {lo}..{hi - 1}) fails its "
-                f"checksum ({got} != {self.sums[j]}); the store is damaged, re-create it"
+            raise StoreError(  # elements counted from 1; the segment keeps its chunk's number
+                f"{self.path}: array {self.name!r} segment {j} (elements {lo + 1}..{hi}) fails "
+                f"its checksum ({got} != {self.sums[j]}); the store is damaged, re-create it"
             )
         self.verified[j] = True
 
@@ -301,9 +301,9 @@ class Store:
     def _check_range(self, start: int, stop: int) -> None:
         n = self.n_rows
         if not (0 <= start <= stop <= n):
-            raise ConfigError(
+            raise ConfigError(  # Python's row indices (0-based, stop excluded), not row numbers
                 f"{self.path}: row range [{start}, {stop}) is outside 0..{n}; "
-                "give 0 <= start <= stop <= n_rows"
+                "give 0 <= start <= stop <= n_rows (0-based indices, stop excluded)"
             )
 
     def indptr_range(self, start: int, stop: int) -> np.ndarray:
@@ -402,10 +402,17 @@ class Store:
         last = 0
         for p0 in range(0, r.n, _fmt._INDPTR_PIECE):
             ip = self._be.read("indptr", p0, min(r.n, p0 + _fmt._INDPTR_PIECE))
-            if (p0 == 0 and ip[0] != 0) or ip[0] < last or (np.diff(ip) < 0).any():
+            if p0 == 0 and ip[0] != 0:
+                raise StoreError(f"{self.path}: indptr starts at {int(ip[0])}, not 0; the store "
+                                 "is damaged, re-create it")
+            # row i (0-based) ends before it starts when indptr[i + 1] < indptr[i]
+            steps = np.diff(np.concatenate([[last], ip])) if p0 else np.diff(ip)
+            down = np.flatnonzero(steps < 0)
+            if down.size:
+                row = (p0 - 1 if p0 else 0) + int(down[0]) + 1  # counted from 1
                 raise StoreError(
-                    f"{self.path}: indptr decreases near row {p0}; the store is damaged, "
-                    "re-create it"
+                    f"{self.path}: indptr decreases at row {row} (it ends before it starts); "
+                    "the store is damaged, re-create it"
                 )
             last = int(ip[-1])
         if last != self.nnz:

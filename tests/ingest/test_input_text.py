@@ -120,6 +120,24 @@ def test_rows_and_columns_count_from_one(tmp_path, capsys):
     assert "entry (row 2, column 3): value inf is not finite" in msg
 
 
+def test_weights_file_rows_count_from_one(tmp_path, capsys):
+    # a .npy weights file whose third value (index 2) is negative: row 3 of the file, as the
+    # text weights file names its line 3
+    _matrix(tmp_path)
+    np.save(tmp_path / "w.npy", np.array([1.0, 2.0, -1.0, 1.0]))
+    before = snapshot(tmp_path)
+    msg = refused(capsys, "ingest", tmp_path / "a.mtx", "--weights", tmp_path / "w.npy",
+                  "--out", tmp_path / "s.zarr", "--quiet")
+    assert "w.npy: row 3: weight -1.0 is invalid" in msg, msg
+    (tmp_path / "w.txt").write_text("1\n2\n-1\n1\n")
+    msg = refused(capsys, "ingest", tmp_path / "a.mtx", "--weights", tmp_path / "w.txt",
+                  "--out", tmp_path / "s.zarr", "--quiet")
+    assert "w.txt: line 3: weight -1.0 is invalid" in msg, msg
+    del before["w.npy"]
+    assert {k: v for k, v in snapshot(tmp_path).items() if k not in ("w.npy", "w.txt")} \
+        == before
+
+
 def test_numbers_print_plainly(tmp_path, capsys):
     mtx, lab = write_tiny(tmp_path)
     assert run_cli(capsys, "ingest", mtx, "--labels", lab, "--out", tmp_path / "s.zarr",

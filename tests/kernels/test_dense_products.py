@@ -173,7 +173,7 @@ def test_bad_row_in_a_later_chunk_is_named():
     y[23] = 7
     y[31] = -1
     ops = _ops("softmax", U, s, V, b, Psi, Om, X.shape[1])
-    with pytest.raises(KernelInputError, match="train.zarr: row 1023 has class id 7 outside"):
+    with pytest.raises(KernelInputError, match="train.zarr: row 1024 has class id 7 outside"):
         block_products(X, y, w, ops, ProductBuffers.zeros(ops), chunk_rows=5, workers=2,
                        row_offset=1000, where="train.zarr")
     XQ = block_projections(X, ops)

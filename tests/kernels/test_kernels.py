@@ -125,7 +125,8 @@ def test_transposed_block_edge_cases():
     np.testing.assert_allclose(o, X.astype(np.float64) @ B, rtol=1e-12, atol=1e-12)  # scipy
     bad = ix.copy()
     bad[7] = 200
-    with pytest.raises(KernelInputError, match="entry 7 .* column id 200 outside 0..199"):
+    with pytest.raises(KernelInputError,
+                       match=r"row \d+: column id 200 \(column 201 of 200\) is outside 0\.\.199"):
         block_csc(ip, bad, da, 200)
     with pytest.raises(KernelInputError, match="pointers"):
         block_csc(np.array([0, 5, 3], dtype=np.int32), ix, da, 200)
@@ -182,13 +183,14 @@ def test_sparse_bad_input_raises():
     B = np.zeros((50, 2))
     bad_ix = ix.copy()
     bad_ix[3] = 50
-    with pytest.raises(KernelInputError, match=r"entry 3 \(row \d+\) has column id 50 outside"):
+    with pytest.raises(KernelInputError,
+                       match=r"part-0\.mtx: row \d+: column id 50 \(column 51 of 50\) is outside"):
         csr_matmul_dense(ip, bad_ix, da, B, np.zeros((30, 2)), where="part-0.mtx")
     with pytest.raises(KernelInputError, match="column id 50"):
         csr_t_matmul_accumulate(ip, bad_ix, da, np.zeros((30, 2)), np.zeros((50, 2)))
     bad_ip = ip.copy()
     bad_ip[-1] = ix.shape[0] + 5
-    with pytest.raises(KernelInputError, match="row 29 has pointers"):
+    with pytest.raises(KernelInputError, match="row 30: its row pointers"):
         csr_matmul_dense(bad_ip, ix, da, B, np.zeros((30, 2)))
     with pytest.raises(KernelInputError, match="out must be a writable float64"):
         csr_matmul_dense(ip, ix, da, B, np.zeros((30, 2), dtype=np.float32))
@@ -359,7 +361,7 @@ def test_block_products_bad_input():
     bufs = ProductBuffers.zeros(ops)
     y_bad = y.copy()
     y_bad[4] = 6
-    with pytest.raises(KernelInputError, match="train.zarr: row 1004 has class id 6 outside 0..5"):
+    with pytest.raises(KernelInputError, match="train.zarr: row 1005 has class id 6 outside 0..5"):
         block_products(X, y_bad, w, ops, bufs, row_offset=1000, where="train.zarr")
     with pytest.raises(KernelInputError, match="block has 399 columns but the model has 400"):
         block_products(X[:, :399], y, w, ops, ProductBuffers.zeros(ops))
