@@ -12,7 +12,7 @@ from ranktide.cli._cluster_opt import add_cluster_option, cluster_backend
 from ranktide.errors import ConfigError
 from ranktide.jsondata import json_data
 from ranktide.losses import LOSS_NAMES
-from ranktide.runs.train import NO_FIT, PATH_EXTEND, PATH_FLOOR, VALIDATION_METRIC, train
+from ranktide.runs.train import NO_FIT, PATH_EXTEND, PATH_FLOOR, PATH_TOL, VALIDATION_METRIC, train
 from ranktide.signals import interrupted_message, stop_on_signals
 
 HELP = "Train a trace-norm regularized model on a store (one lam or a regularization path)"
@@ -54,6 +54,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
                         help="when the best lam is the smallest requested, go on down the same "
                              "sequence until validation worsens twice in a row, at most N more "
                              f"values (default {PATH_EXTEND}; 0: never)")
+    parser.add_argument("--path-tol", type=float, default=PATH_TOL, metavar="T",
+                        help="relative gap to which each path value is solved before the "
+                             f"chosen one is finished to --tol (default {PATH_TOL})")
     parser.add_argument("--out", required=True, metavar="RUN", help="run directory to create")
     parser.add_argument("--tol", type=float, default=1e-4,
                         help="relative gap estimate at which to stop (default 1e-4)")
@@ -252,7 +255,7 @@ def run(args: argparse.Namespace) -> int:
         res = train(
             args.store, loss=args.loss, lam=args.lam, lam_scale=args.lam_scale,
             path_steps=args.path_steps, path_floor=args.path_floor, path_extend=args.path_extend,
-            valid=args.valid, tol=args.tol,
+            path_tol=args.path_tol, valid=args.valid, tol=args.tol,
             max_passes=args.max_passes, max_seconds=args.max_seconds, memory=args.memory,
             seed=args.seed, block_rows=args.block_rows, backend=backend,
             class_weight=args.class_weight, progress=show and sys.stderr.isatty(), out=args.out,

@@ -22,12 +22,17 @@ from ranktide.errors import CheckpointError, ConfigError
 from ranktide.losses import get_loss
 from ranktide.solver.penalty import check_lam
 
-__all__ = ["TrainConfig", "RESUME_MUTABLE", "PATH_FLOOR", "PATH_EXTEND"]
+__all__ = ["TrainConfig", "RESUME_MUTABLE", "PATH_FLOOR", "PATH_EXTEND", "PATH_TOL"]
 
 #: default smallest requested path value, as a share of lam_max
 PATH_FLOOR = 0.05
 #: default cap on the values a path may add past its requested end while validation improves
 PATH_EXTEND = 5
+#: default relative gap of the path's values before the chosen one is finished to ``tol``:
+#: validation picks among them, and on the package-index data the validation accuracy of a
+#: value at 1e-3 and at 1e-4 agreed to the fourth digit while the last decade cost half of
+#: each value's passes (tools/bench_real.py)
+PATH_TOL = 1e-3
 
 #: settings a resumed run may change (budgets, tolerance, cadence, backend, and how it
 #: reports); every other setting must stay as saved
@@ -56,6 +61,10 @@ class TrainConfig:
     path_extend : int >= 0
         How many values a path may add past its requested end while validation
         still improves.
+    path_tol : float in (0, 1) or None
+        Relative gap to which each path value is solved (never below ``tol``);
+        the chosen value is then finished to ``tol``. None: every value to
+        ``tol`` (runs saved before this setting existed).
     valid : str or None
         Path of the validation store (in-memory validation data is passed to
         ``train`` beside the configuration; then this is None).
@@ -81,6 +90,7 @@ class TrainConfig:
     path_steps: int | None = None
     path_floor: float = PATH_FLOOR
     path_extend: int = PATH_EXTEND
+    path_tol: float | None = PATH_TOL
     valid: str | None = None
     has_valid: bool = False
     tol: float = 1e-4
@@ -151,6 +161,9 @@ class TrainConfig:
         if not _whole(self.path_extend) or self.path_extend < 0:
             raise ConfigError(f"train: path_extend = {self.path_extend!r}; give a whole number "
                               ">= 0")
+        if self.path_tol is not None and not (isinstance(self.path_tol, (int, float))
+                                              and 0 < self.path_tol < 1):
+            raise ConfigError(f"--path-tol {self.path_tol}: must lie in (0, 1)")
 
     @staticmethod
     def _positive_whole(name: str, value: Any) -> None:
@@ -181,6 +194,7 @@ class TrainConfig:
             kw["class_weight"] = list(settings["class_weights"])
         kw.setdefault("has_valid", settings.get("valid") is not None)
         kw.setdefault("path_extend", 0)  # runs saved before paths could extend do not
+        kw.setdefault("path_tol", None)  # nor solve their values to a looser tolerance
         return cls(**kw)
 
     def with_changes(self, changes: Mapping[str, Any], *, run: str = "run") -> TrainConfig:

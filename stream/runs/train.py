@@ -27,7 +27,7 @@ from ranktide.model import Model, save_model
 from ranktide.passes.engine import run_pass
 from ranktide.runs.checkpoint import CheckpointSchedule
 from ranktide.runs.checks import check_train_inputs, check_train_output
-from ranktide.runs.config import PATH_EXTEND, PATH_FLOOR, TrainConfig
+from ranktide.runs.config import PATH_EXTEND, PATH_FLOOR, PATH_TOL, TrainConfig
 from ranktide.runs.rundir import RunDir, RunRecorder
 from ranktide.scoring.evaluate import evaluate
 from ranktide.solver.config import SolverConfig
@@ -37,7 +37,7 @@ from ranktide.solver.state import SolverResult
 from ranktide.store.memory_source import as_source
 
 __all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDATION_METRIC",
-           "PATH_FLOOR", "PATH_EXTEND", "NO_FIT", "path_lams"]
+           "PATH_FLOOR", "PATH_EXTEND", "PATH_TOL", "NO_FIT", "path_lams"]
 
 #: status of a run that stopped before it could fit a model (no model is written)
 NO_FIT = "no_fit"
@@ -313,6 +313,7 @@ def train(
     path_steps: int | None = None,
     path_floor: float = PATH_FLOOR,
     path_extend: int = PATH_EXTEND,
+    path_tol: float | None = PATH_TOL,
     valid: Any = None,
     tol: float = 1e-4,
     max_passes: int = 100,
@@ -355,6 +356,11 @@ def train(
         the same geometric sequence, at most this many more values (default
         :data:`PATH_EXTEND`; 0: never), until validation has worsened twice
         in a row.
+    path_tol : float or None
+        Relative gap to which each path value is solved (default
+        :data:`PATH_TOL`, never below ``tol``); the chosen value is then
+        finished to ``tol`` from its own factors before the debiasing refit.
+        None solves every value to ``tol``.
     valid : store path, Store or tuple
         Validation data (required with ``path_steps``): softmax accuracy, squared
         RMSE, multilabel micro-F1 pick the best lam; the path stops early
@@ -411,7 +417,8 @@ def train(
     TrainResult
     """
     TrainConfig(loss=loss, lam=lam, lam_scale=lam_scale, path_steps=path_steps,
-                path_floor=path_floor, path_extend=path_extend, valid=_path_of(valid),
+                path_floor=path_floor, path_extend=path_extend, path_tol=path_tol,
+                valid=_path_of(valid),
                 has_valid=valid is not None,
                 tol=tol, max_passes=max_passes, max_seconds=max_seconds, memory=memory,
                 seed=seed, block_rows=block_rows, backend=backend, class_weight=class_weight,
@@ -420,6 +427,7 @@ def train(
                 checkpoint_passes=checkpoint_passes)  # the one validator of the settings
     if resume_point is not None:  # runs written before the path could extend: no extension
         path_extend = int(resume_point.run.settings.get("path_extend") or 0)
+        path_tol = resume_point.run.settings.get("path_tol")  # absent: every value to tol
 
     if out is not None:  # before anything is read or made (ranktide.outputs)
         check_train_output(out, source, valid, class_weight, overwrite=overwrite)
@@ -455,6 +463,7 @@ def train(
             run = _create_run(out, src, cfg, fingerprint, overwrite=overwrite,
                               extra={"path_steps": path_steps, "path_floor": path_floor,
                                      "path_extend": path_extend if path_steps else None,
+                                     "path_tol": path_tol if path_steps else None,
                                      "class_weight": class_weight if isinstance(
                                          class_weight, str) else None,
                                      "max_seconds": max_seconds,
@@ -475,7 +484,8 @@ def train(
             result = _train_single(solver, rec, deadline, fingerprint, src, loss)
         else:
             result = _train_path(solver, rec, deadline, fingerprint, src, loss, int(path_steps),
-                                 float(path_floor), int(path_extend), valid, block_rows, ctx)
+                                 float(path_floor), int(path_extend), valid, block_rows, ctx,
+                                 path_tol)
         if stop is not None and stop:
             if run is not None and not run.published:  # it would replace an older run
                 run.discard()
@@ -672,10 +682,58 @@ def _path_end(points: list, m: int, extend: int, worse: int, key: str,
                              f"{past} value(s) past it (the cap, --path-extend {extend})")
 
 
+def _finish_chosen(solver, rec, deadline, ctx, pos, points, higher, tol, src, loss, fingerprint,
+                   valid, block_rows) -> tuple | None:
+    """The path's chosen value solved on to ``tol`` from its own factors.
+
+    Path values are solved to ``path_tol`` only (validation picks among them);
+    the chosen one continues here with the solver's full tolerance. Returns
+    ``(points, model, status, message)`` with the chosen point updated (status
+    None when nothing stopped the run), or None when it already met ``tol``.
+    """
+    best = _point_best(points, higher)
+    pt = points[best]
+    if not pos.get("finishing"):
+        if not (pt.gap > tol * abs(pt.objective)):
+            return None
+        if best != len(points) - 1:  # the solver sits at a later value: back to this one
+            b = ctx.best
+            solver.warm_start(b["U"], b["s"], b["V"], b["b"])
+        solver.set_lam(pt.lam, path_index=pt.index)
+        pos["finishing"] = True
+        pos["finish_passes"], pos["finish_seconds"] = solver.state.passes, solver.state.seconds
+    solver.config = replace(solver.config, tol=tol)
+    fit = _run_solver(solver, rec, deadline)
+    if fit.status == "interrupted":  # the checkpoint keeps the finishing position
+        return points, None, fit.status, "path interrupted while finishing its chosen value"
+    gb = _grad_b(rec.history)
+    passes = solver.state.passes - pos["finish_passes"]
+    seconds = solver.state.seconds - pos["finish_seconds"]
+    model = _model(src, loss, fit, dict(_fit_meta(fit, fingerprint, gb),
+                                        step_passes=pt.passes + passes))
+    metrics, score = _validation(model, valid, loss, block_rows)
+    points = list(points)
+    points[best] = replace(pt, objective=fit.objective, gap=fit.gap,
+                           sigma_ratio=fit.sigma_ratio, rank=fit.rank, passes=pt.passes + passes,
+                           status=fit.status, metrics=json_data(metrics), score=score,
+                           seconds=pt.seconds + seconds)
+    pos["finished"] = {"index": pt.index, "passes": passes, "seconds": seconds,
+                       "rel_gap_before": pt.gap / abs(pt.objective) if pt.objective else None,
+                       "rel_gap": fit.rel_gap, "status": fit.status,
+                       "score_before": pt.score, "score": score}
+    pos["finishing"] = False
+    status = message = None
+    if fit.status in ("callback", "max_seconds"):
+        status, message = fit.status, f"the chosen path value was being finished: {fit.message}"
+    return points, model, status, message
+
+
 def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, extend, valid,
-                block_rows, ctx) -> TrainResult:
+                block_rows, ctx, path_tol=None) -> TrainResult:
     from dataclasses import asdict
 
+    tol = float(solver.config.tol)
+    value_tol = tol if path_tol is None else max(tol, float(path_tol))
     pos = ctx.path
     if pos is None:  # a fresh path (or a resume from inside the lam_max phase)
         first = _run_solver(solver, rec, deadline)  # lam_max phase only (lam is None)
@@ -712,6 +770,7 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, exte
             pos["seconds_before"] = solver.state.seconds
             solver.set_lam(lam_j, path_index=j)
             pos["started"] = True
+        solver.config = replace(solver.config, tol=value_tol)
         fit = _run_solver(solver, rec, deadline)
         if fit.status == "interrupted":  # the checkpoint keeps the position inside this value
             status, message = fit.status, f"path interrupted at {where}"
@@ -757,6 +816,13 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, exte
             pos["done"] = True
         if ctx.recorder is not None:  # a checkpoint at the end of each path step
             ctx.recorder.checkpoint(solver.state)
+    if status is None and points:
+        done = _finish_chosen(solver, rec, deadline, ctx, pos, points, higher, tol, src, loss,
+                              fingerprint, valid, block_rows)
+        if done is not None:
+            points, model, status, message = done
+            best_model = model if model is not None else best_model
+            pos["points"] = [asdict(p) for p in points]
     status = status or pos["status"]
     message = message or pos["message"]
     if not points:  # interrupted inside the first value: nothing to report but the state
@@ -771,7 +837,7 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, exte
                "extend_cap": extend, "floor": min_frac, "status": status, "message": message,
                "chosen_index": best, "chosen_step_passes": pt.passes,
                "validation_metric": f"validation {key}", "validation": pt.score,
-               "total_passes": solver.state.passes}
+               "total_passes": solver.state.passes, "finished": pos.get("finished")}
     best_model = _refit_chosen(best_model, src, solver, valid, loss, pt.lam, block_rows)
     best_model = replace(best_model, meta=dict(best_model.meta, path=json_data(summary)))
     return TrainResult(model=best_model, objective=pt.objective, gap=pt.gap,

@@ -342,6 +342,17 @@ class GreedySolver:
         if path_index is not None:
             st.path_index = int(path_index)
 
+    def warm_start(self, U: np.ndarray, s: np.ndarray, V: np.ndarray, b: np.ndarray) -> None:
+        """Continue from a model's factors (``U`` on the full feature space), e.g. a
+        regularization path's chosen value; call :meth:`set_lam` next."""
+        U = np.asarray(U, dtype=np.float64)
+        if self.columns is not None:
+            U = U[self.columns]
+        st = self.state
+        st.U, st.s = np.array(U), np.array(s, dtype=np.float64)
+        st.V, st.b = np.array(V, dtype=np.float64), np.array(b, dtype=np.float64)
+        self._check_state(st)
+
     def _lam_after_settle(self) -> float | None:
         cfg, st = self.config, self.state
         if st.lam is not None:

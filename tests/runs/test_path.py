@@ -92,3 +92,34 @@ def test_a_path_whose_best_is_last_goes_on_and_says_so_in_model_json(tmp_path):
     steps = [h for h in history if h.get("kind") == "path"]
     assert [h["extended"] for h in steps] == [i >= 3 for i in range(len(res.path))]
     assert max(h["pass"] for h in history if h.get("kind") == "pass") == res.passes
+
+
+def test_values_solved_loosely_and_the_chosen_one_finished_to_tol(tmp_path):
+    """path_tol: the values to a loose gap, the chosen one on to tol from its own factors."""
+    from conic import solve_conic
+
+    X, y = _planted(21, 300)
+    Xv, yv = _planted(22, 200)
+    res = train(X, targets=y, loss="softmax", path_steps=4, path_floor=0.2, path_extend=0,
+                path_tol=1e-2, valid=(Xv, yv), tol=1e-7, max_passes=300, seed=0,
+                out=tmp_path / "run")
+    best = res.path[res.best_index]
+    others = [p for p in res.path if p.index != best.index]
+    assert all(p.gap <= 1e-2 * p.objective for p in others)
+    assert best.gap <= 1e-7 * best.objective and best.status == "converged"
+    # Reference: CVXPY + Clarabel optimum at the chosen lam (tests/conic.py).
+    con = solve_conic(X.astype(np.float64), y, loss="softmax", lam=best.lam, n_outputs=5)
+    assert abs(best.objective - con.objective) <= 1e-6 * abs(con.objective)
+    meta = json.loads((tmp_path / "run" / "model" / "model.json").read_text())
+    fin = meta["path"]["finished"]
+    assert fin["index"] == best.index and fin["passes"] >= 1
+    assert fin["rel_gap"] <= 1e-7 < fin["rel_gap_before"] <= 1e-2
+
+
+def test_path_tol_none_solves_every_value_to_tol():
+    X, y = _planted(21, 300)
+    Xv, yv = _planted(22, 200)
+    res = train(X, targets=y, loss="softmax", path_steps=3, path_floor=0.3, path_extend=0,
+                path_tol=None, valid=(Xv, yv), tol=1e-5, max_passes=300, seed=0)
+    assert all(p.gap <= 1e-5 * p.objective for p in res.path)
+    assert res.model.meta["path"]["finished"] is None
