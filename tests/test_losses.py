@@ -161,10 +161,11 @@ def test_fold_class_weights_and_bad_labels():
     np.testing.assert_allclose(fold_class_weights(y, cw), cw[y], rtol=0)
     y_bad = y.copy()
     y_bad[12] = -1
-    with pytest.raises(KernelInputError, match=r"labels.bin: row 512 has class id -1 outside 0..4"):
+    # index 12 of a block starting at index 500: row 513 counted from 1 (issue 13)
+    with pytest.raises(KernelInputError, match=r"labels.bin: row 513 has class id -1 outside 0..4"):
         softmax_residual(np.zeros((200, 5)), y_bad, None, *_acc(5), row_offset=500,
                          where="labels.bin")
-    with pytest.raises(KernelInputError, match="row 12 has class id -1"):
+    with pytest.raises(KernelInputError, match="row 13 has class id -1"):
         fold_class_weights(y_bad, cw)
     with pytest.raises(KernelInputError, match="class weights must be"):
         fold_class_weights(y, -cw)
@@ -248,7 +249,7 @@ def test_multilabel_bad_tags():
     Z, _, _, T, _ = _data(seed=9)
     bad = T.indices.copy()
     bad[0] = 5
-    row = int(np.searchsorted(T.indptr, 0, side="right") - 1)
+    row = int(np.searchsorted(T.indptr, 0, side="right"))  # counted from 1 (issue 13)
     with pytest.raises(KernelInputError, match=rf"tags.txt: row {row} has a tag id outside 0..4"):
         multilabel_residual(Z.copy(), T.indptr, bad, None, *_acc(5), where="tags.txt")
     with pytest.raises(KernelInputError, match="tag_indptr has 200 pointers for 200 rows"):
