@@ -105,6 +105,8 @@ def model_facts(res, model_dir: Path, k: int) -> dict:
             "lam_max": res.lam_max, "status": res.status, "passes": res.passes,
             "best_index": res.best_index, "path": path_points(res),
             "model_bytes": dir_bytes(model_dir), "debias": model.meta.get("debias"),
+            "path_finished": (model.meta.get("path") or {}).get("finished"),
+            "used_columns": int(np.count_nonzero(np.any(model.U != 0, axis=1))),
             "low_rank_note": model.meta.get("low_rank_note")}
 
 

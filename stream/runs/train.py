@@ -702,7 +702,7 @@ def _finish_chosen(solver, rec, deadline, ctx, pos, points, higher, tol, src, lo
         solver.set_lam(pt.lam, path_index=pt.index)
         pos["finishing"] = True
         pos["finish_passes"], pos["finish_seconds"] = solver.state.passes, solver.state.seconds
-    solver.config = replace(solver.config, tol=tol)
+    solver.config = replace(solver.config, tol=tol, stall_tol=None)
     fit = _run_solver(solver, rec, deadline)
     if fit.status == "interrupted":  # the checkpoint keeps the finishing position
         return points, None, fit.status, "path interrupted while finishing its chosen value"
@@ -770,7 +770,9 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, exte
             pos["seconds_before"] = solver.state.seconds
             solver.set_lam(lam_j, path_index=j)
             pos["started"] = True
-        solver.config = replace(solver.config, tol=value_tol)
+        # the values are compared, not certified: a stalled objective ends one too
+        solver.config = replace(solver.config, tol=value_tol,
+                                stall_tol=0.1 * value_tol if value_tol > tol else None)
         fit = _run_solver(solver, rec, deadline)
         if fit.status == "interrupted":  # the checkpoint keeps the position inside this value
             status, message = fit.status, f"path interrupted at {where}"

@@ -671,9 +671,19 @@ class GreedySolver:
                 st.rel_gap = st.gap / info["objective_after"] if info["objective_after"] > 0 \
                     else 0.0
                 info.update(gap_after=st.gap, rel_gap_after=st.rel_gap)
+                if self._stalled(F, info["objective_after"]):
+                    st.phase = "done"
+                    st.status = "stalled"
             # else: lam_max settled on a pass that kept no projections; the next fits
         self._finish_record(rec, res, prof, t0, refine_info=info)
         return rec
+
+    def _stalled(self, F: float, F_after: float) -> bool:
+        """This outer iteration lowered ``F`` by at most ``stall_tol`` of it (not on the
+        first pass at this lam, whose decrease reflects the lam change)."""
+        tol = self.config.stall_tol
+        return (tol is not None and self.state.step_passes >= 2 and F > 0
+                and F - F_after <= tol * F)
 
     def _at_b0(self, req) -> bool:
         """The pass's gradient is ``G(0, b0)``: no atoms and no refinement yet, intercept set
@@ -851,6 +861,8 @@ class GreedySolver:
         at_zero = st.phase == "lam_max"
         messages = {
             "converged": f"relative gap estimate {rel:.2e} <= tol {self.config.tol:g}",
+            "stalled": f"the last pass lowered the objective by at most "
+                       f"{self.config.stall_tol or 0:g} of it; relative gap estimate {rel:.2e}",
             "max_passes": f"stopped after {st.step_passes} passes (max_passes); relative gap "
                           f"estimate {rel:.2e}",
             "max_seconds": f"stopped at the time budget; relative gap estimate {rel:.2e}",

@@ -105,7 +105,9 @@ def test_values_solved_loosely_and_the_chosen_one_finished_to_tol(tmp_path):
                 out=tmp_path / "run")
     best = res.path[res.best_index]
     others = [p for p in res.path if p.index != best.index]
-    assert all(p.gap <= 1e-2 * p.objective for p in others)
+    # a value ends on its gap, or once a pass lowers the objective by at most a tenth of
+    # path_tol (stalled: compared, not certified)
+    assert all(p.gap <= 1e-2 * p.objective or p.status == "stalled" for p in others)
     assert best.gap <= 1e-7 * best.objective and best.status == "converged"
     # Reference: CVXPY + Clarabel optimum at the chosen lam (tests/conic.py).
     con = solve_conic(X.astype(np.float64), y, loss="softmax", lam=best.lam, n_outputs=5)

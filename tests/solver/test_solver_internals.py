@@ -401,3 +401,26 @@ def test_cli_train_exit_codes(tmp_path, capsys):
                            "softmax", "--lam", "-1", "--out", str(tmp_path / "r3")],
                           capture_output=True, text=True, cwd=ROOT)
     assert done.returncode == 2 and "lam = -1.0" in done.stderr
+
+
+def test_stall_tol_stops_once_a_pass_barely_lowers_the_objective():
+    """stall_tol: the run ends on the first outer iteration (after the first) whose
+    decrease is at most stall_tol of the objective; the recorded decreases say so
+    (common practice, no source: a stopping rule, checked on its own definition)."""
+    import numpy as np
+    import scipy.sparse as sp
+    from ranktide.solver.config import SolverConfig
+    from ranktide.solver.greedy import GreedySolver
+
+    rng = np.random.default_rng(5)
+    X = sp.random(400, 60, density=0.2, random_state=rng, format="csr")
+    y = rng.integers(0, 6, 400)
+    recs = []
+    solver = GreedySolver((X, y), SolverConfig(loss="softmax", lam_scale=0.05, tol=1e-9,
+                                               stall_tol=1e-3, max_passes=200))
+    res = solver.run(callback=lambda r: recs.append(r))
+    assert res.status == "stalled", res.message
+    fits = [r for r in recs if "objective_after" in r]
+    drops = [(r["objective_pass"] - r["objective_after"]) / r["objective_pass"] for r in fits]
+    assert drops[-1] <= 1e-3 and len(fits) >= 2
+    assert res.rel_gap > 1e-9  # it stopped before the gap test would have
