@@ -248,10 +248,11 @@ def _validation(model: Any, valid: Any, loss: str, block_rows: int | None) -> tu
 
 
 def _refit_chosen(model: Any, src: Any, solver: GreedySolver, valid: Any, loss: str,
-                  lam: float, block_rows: int | None) -> Any:
+                  lam: float, block_rows: int | None) -> tuple[Any, bool]:
     """The path's chosen model after the debiasing refit (kept only when validation
     improves; :mod:`ranktide.solver.debias`), with the refit's figures and, when the
-    model is nearly full rank, a note saying so in its metadata (model.json)."""
+    model is nearly full rank, a note saying so in its metadata (model.json); and
+    whether a refit replaced the path's own model."""
     _, higher = VALIDATION_METRIC[loss]
     res = debias(model, src, lam=lam, higher=higher,
                  score=lambda m: _validation(m, valid, loss, block_rows)[1],
@@ -263,7 +264,7 @@ def _refit_chosen(model: Any, src: Any, solver: GreedySolver, valid: Any, loss: 
         meta["low_rank_note"] = (f"rank {out.rank} of at most "
                                  f"{min(out.n_features, out.n_outputs)}: nearly full rank, the "
                                  "low-rank structure did not help on this data")
-    return replace(out, meta=meta)
+    return replace(out, meta=meta), res.factor != 1.0
 
 
 # ---------------------------------------------------------------- the run
@@ -818,21 +819,29 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, exte
             pos["done"] = True
         if ctx.recorder is not None:  # a checkpoint at the end of each path step
             ctx.recorder.checkpoint(solver.state)
-    if status is None and points:
+    if not points:  # interrupted inside the first value: nothing to report but the state
+        st = solver.state
+        return TrainResult(model=None, objective=math.nan, gap=math.nan, sigma_ratio=math.nan,
+                           rank=st.rank, passes=st.passes, seconds=st.seconds,
+                           status=status or pos["status"], message=message or pos["message"],
+                           history=list(rec.history),
+                           lam=path_lams(lam_max, m, min_frac, 1)[0], lam_max=lam_max)
+    pt = points[_point_best(points, higher)]
+    refit, refit_kept = _refit_chosen(best_model, src, solver, valid, loss, pt.lam, block_rows)
+    if status is None and not refit_kept:
+        # the path's own model is the one shipped: finish it to tol (a kept refit replaces it,
+        # so its certificate would be spent work)
         done = _finish_chosen(solver, rec, deadline, ctx, pos, points, higher, tol, src, loss,
                               fingerprint, valid, block_rows)
         if done is not None:
             points, model, status, message = done
-            best_model = model if model is not None else best_model
             pos["points"] = [asdict(p) for p in points]
+            if model is not None:
+                refit = replace(model, meta=dict(model.meta, **{
+                    k: refit.meta[k] for k in ("debias", "low_rank_note") if k in refit.meta}))
+    best_model = refit
     status = status or pos["status"]
     message = message or pos["message"]
-    if not points:  # interrupted inside the first value: nothing to report but the state
-        st = solver.state
-        return TrainResult(model=None, objective=math.nan, gap=math.nan, sigma_ratio=math.nan,
-                           rank=st.rank, passes=st.passes, seconds=st.seconds, status=status,
-                           message=message, history=list(rec.history),
-                           lam=path_lams(lam_max, m, min_frac, 1)[0], lam_max=lam_max)
     best = _point_best(points, higher)
     pt = points[best]
     summary = {"requested": m, "fitted": len(points), "extended": max(0, len(points) - m),
@@ -840,7 +849,6 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, exte
                "chosen_index": best, "chosen_step_passes": pt.passes,
                "validation_metric": f"validation {key}", "validation": pt.score,
                "total_passes": solver.state.passes, "finished": pos.get("finished")}
-    best_model = _refit_chosen(best_model, src, solver, valid, loss, pt.lam, block_rows)
     best_model = replace(best_model, meta=dict(best_model.meta, path=json_data(summary)))
     return TrainResult(model=best_model, objective=pt.objective, gap=pt.gap,
                        sigma_ratio=pt.sigma_ratio, rank=pt.rank, passes=solver.state.passes,

@@ -94,10 +94,15 @@ def test_a_path_whose_best_is_last_goes_on_and_says_so_in_model_json(tmp_path):
     assert max(h["pass"] for h in history if h.get("kind") == "pass") == res.passes
 
 
-def test_values_solved_loosely_and_the_chosen_one_finished_to_tol(tmp_path):
-    """path_tol: the values to a loose gap, the chosen one on to tol from its own factors."""
+def test_values_solved_loosely_and_the_chosen_one_finished_to_tol(tmp_path, monkeypatch):
+    """path_tol: the values to a loose gap, the chosen one on to tol from its own factors
+    (when the debiasing refit keeps the path's own model: forced here by offering it no
+    smaller lam)."""
+    import ranktide.runs.train as T
     from conic import solve_conic
 
+    real = T.debias
+    monkeypatch.setattr(T, "debias", lambda *a, **k: real(*a, **{**k, "factors": ()}))
     X, y = _planted(21, 300)
     Xv, yv = _planted(22, 200)
     res = train(X, targets=y, loss="softmax", path_steps=4, path_floor=0.2, path_extend=0,
@@ -116,6 +121,18 @@ def test_values_solved_loosely_and_the_chosen_one_finished_to_tol(tmp_path):
     fin = meta["path"]["finished"]
     assert fin["index"] == best.index and fin["passes"] >= 1
     assert fin["rel_gap"] <= 1e-7 < fin["rel_gap_before"] <= 1e-2
+
+
+def test_a_kept_refit_skips_the_finishing(monkeypatch):
+    """When the debiasing refit replaces the path's model, the chosen value is not
+    solved on (its certificate would certify a model nobody ships)."""
+    X, y = _planted(21, 300)
+    Xv, yv = _planted(22, 200)
+    res = train(X, targets=y, loss="softmax", path_steps=4, path_floor=0.2, path_extend=0,
+                path_tol=1e-2, valid=(Xv, yv), tol=1e-7, max_passes=300, seed=0)
+    meta = res.model.meta
+    kept = meta["debias"]["kept_factor"] != 1.0
+    assert (meta["path"]["finished"] is None) == kept
 
 
 def test_path_tol_none_solves_every_value_to_tol():
