@@ -70,7 +70,7 @@ from sklearn.linear_model import LogisticRegression, SGDClassifier
 from sklearn.metrics import accuracy_score, f1_score, log_loss, recall_score
 
 SPLITS = ("train", "val", "test")
-SYSTEMS = ("lr", "sgd", "tags")
+SYSTEMS = ("lr", "lr_train", "sgd", "tags")
 TAG_SEP = " "
 
 
@@ -212,8 +212,11 @@ def fit_lr(X: sp.csr_matrix, y: np.ndarray, C: float, max_iter: int) -> Logistic
     return LogisticRegression(C=C, solver="lbfgs", max_iter=max_iter, tol=1e-4).fit(X, y)
 
 
-def run_lr(args: argparse.Namespace, X: dict, y: dict, n_classes: int) -> dict:
-    """Select ``C`` on validation, refit on train + val, score on test."""
+def run_lr(args: argparse.Namespace, X: dict, y: dict, n_classes: int,
+           *, refit_rows: str = "train+val") -> dict:
+    """Select ``C`` on validation, refit on train + val (or, with ``refit_rows="train"``,
+    on the training rows alone: the rows a model selected with ``--valid`` was fitted
+    on), score on test."""
     grid = []
     for C in args.lr_grid if len(args.lr_grid) > 1 else []:
         model, secs, cpu = timed(fit_lr, X["train"], y["train"], C, args.lr_max_iter)
@@ -232,7 +235,7 @@ def run_lr(args: argparse.Namespace, X: dict, y: dict, n_classes: int) -> dict:
             f"n_iter={grid[-1]['n_iter']}"
         )
     best = max(grid, key=lambda g: g["val_accuracy"]) if grid else {"C": args.lr_grid[0]}
-    Xf, yf = train_full(X, y)
+    Xf, yf = train_full(X, y) if refit_rows == "train+val" else (X["train"], y["train"])
     model, secs, cpu = timed(fit_lr, Xf, yf, best["C"], args.lr_max_iter)
     log(f"lr refit C={best['C']:g} fit_s={secs:.1f} cpu_s={cpu:.1f}")
     scores = class_scores(
@@ -242,7 +245,9 @@ def run_lr(args: argparse.Namespace, X: dict, y: dict, n_classes: int) -> dict:
         n_classes,
     )
     return {
-        "system": f"LogisticRegression(C={best['C']:g})",
+        "system": f"LogisticRegression(C={best['C']:g})"
+                  + (", training rows only" if refit_rows == "train" else ""),
+        "refit_rows": refit_rows,
         "params": {
             "C": best["C"],
             "max_iter": args.lr_max_iter,
@@ -452,8 +457,9 @@ def run_child(args: argparse.Namespace) -> None:
     X, y, tags, classes = load_data(args.data)
     rss_loaded, load_start = rss_mib(), os.getloadavg()
     log(f"{args.child}: loaded {X['train'].shape} train, rss={rss_loaded:.0f} MiB")
-    if args.child == "lr":
-        res = run_lr(args, X, y, len(classes))
+    if args.child in ("lr", "lr_train"):
+        res = run_lr(args, X, y, len(classes),
+                     refit_rows="train" if args.child == "lr_train" else "train+val")
     elif args.child == "sgd":
         res = run_sgd(args, X, y, len(classes))
     else:
