@@ -57,6 +57,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--path-tol", type=float, default=PATH_TOL, metavar="T",
                         help="relative gap to which each path value is solved before the "
                              f"chosen one is finished to --tol (default {PATH_TOL})")
+    parser.add_argument("--refit-with-valid", action="store_true",
+                        help="after the path has chosen on --valid, fit the chosen model again "
+                             "on the training and validation rows together")
     parser.add_argument("--out", required=True, metavar="RUN", help="run directory to create")
     parser.add_argument("--tol", type=float, default=1e-4,
                         help="relative gap estimate at which to stop (default 1e-4)")
@@ -255,7 +258,8 @@ def run(args: argparse.Namespace) -> int:
         res = train(
             args.store, loss=args.loss, lam=args.lam, lam_scale=args.lam_scale,
             path_steps=args.path_steps, path_floor=args.path_floor, path_extend=args.path_extend,
-            path_tol=args.path_tol, valid=args.valid, tol=args.tol,
+            path_tol=args.path_tol, refit_with_valid=args.refit_with_valid, valid=args.valid,
+            tol=args.tol,
             max_passes=args.max_passes, max_seconds=args.max_seconds, memory=args.memory,
             seed=args.seed, block_rows=args.block_rows, backend=backend,
             class_weight=args.class_weight, progress=show and sys.stderr.isatty(), out=args.out,

@@ -65,6 +65,8 @@ class TrainConfig:
         Relative gap to which each path value is solved (never below ``tol``);
         the chosen value is then finished to ``tol``. None: every value to
         ``tol`` (runs saved before this setting existed).
+    refit_with_valid : bool
+        Fit the path's choice again on the training and validation rows.
     valid : str or None
         Path of the validation store (in-memory validation data is passed to
         ``train`` beside the configuration; then this is None).
@@ -91,6 +93,7 @@ class TrainConfig:
     path_floor: float = PATH_FLOOR
     path_extend: int = PATH_EXTEND
     path_tol: float | None = PATH_TOL
+    refit_with_valid: bool = False
     valid: str | None = None
     has_valid: bool = False
     tol: float = 1e-4
@@ -126,6 +129,9 @@ class TrainConfig:
         check_lam(self.lam, self.lam_scale)
         if self.path_steps is not None:
             self._validate_path()
+        elif self.refit_with_valid:
+            raise ConfigError("--refit-with-valid refits a path's choice; add --path-steps N "
+                              "--valid STORE, or drop it")
         # budgets and cadence are named as the command line spells them (a resume changes them)
         if not (isinstance(self.tol, (int, float)) and 0 < self.tol < 1):
             raise ConfigError(f"--tol {self.tol}: must lie in (0, 1)")

@@ -31,9 +31,10 @@ from ranktide.runs.config import PATH_EXTEND, PATH_FLOOR, PATH_TOL, TrainConfig
 from ranktide.runs.rundir import RunDir, RunRecorder
 from ranktide.scoring.evaluate import evaluate
 from ranktide.solver.config import SolverConfig
-from ranktide.solver.debias import debias, debias_summary, near_full_rank
+from ranktide.solver.debias import debias, debias_summary, near_full_rank, refit_at
 from ranktide.solver.greedy import GreedySolver
 from ranktide.solver.state import SolverResult
+from ranktide.store.concat import ConcatSource
 from ranktide.store.memory_source import as_source
 
 __all__ = ["train", "TrainResult", "PathPoint", "resolve_class_weights", "VALIDATION_METRIC",
@@ -315,6 +316,7 @@ def train(
     path_floor: float = PATH_FLOOR,
     path_extend: int = PATH_EXTEND,
     path_tol: float | None = PATH_TOL,
+    refit_with_valid: bool = False,
     valid: Any = None,
     tol: float = 1e-4,
     max_passes: int = 100,
@@ -362,6 +364,11 @@ def train(
         :data:`PATH_TOL`, never below ``tol``); the chosen value is then
         finished to ``tol`` from its own factors before the debiasing refit.
         None solves every value to ``tol``.
+    refit_with_valid : bool
+        After the path has chosen (``lam`` and the debiasing factor, on the
+        validation rows), fit the chosen model again on the training and
+        validation rows together, from its own factors; the validation
+        figures in ``model.json`` stay those of the path. Default False.
     valid : store path, Store or tuple
         Validation data (required with ``path_steps``): softmax accuracy, squared
         RMSE, multilabel micro-F1 pick the best lam; the path stops early
@@ -419,6 +426,7 @@ def train(
     """
     TrainConfig(loss=loss, lam=lam, lam_scale=lam_scale, path_steps=path_steps,
                 path_floor=path_floor, path_extend=path_extend, path_tol=path_tol,
+                refit_with_valid=refit_with_valid,
                 valid=_path_of(valid),
                 has_valid=valid is not None,
                 tol=tol, max_passes=max_passes, max_seconds=max_seconds, memory=memory,
@@ -465,6 +473,7 @@ def train(
                               extra={"path_steps": path_steps, "path_floor": path_floor,
                                      "path_extend": path_extend if path_steps else None,
                                      "path_tol": path_tol if path_steps else None,
+                                     "refit_with_valid": bool(refit_with_valid),
                                      "class_weight": class_weight if isinstance(
                                          class_weight, str) else None,
                                      "max_seconds": max_seconds,
@@ -486,7 +495,7 @@ def train(
         else:
             result = _train_path(solver, rec, deadline, fingerprint, src, loss, int(path_steps),
                                  float(path_floor), int(path_extend), valid, block_rows, ctx,
-                                 path_tol)
+                                 path_tol, bool(refit_with_valid))
         if stop is not None and stop:
             if run is not None and not run.published:  # it would replace an older run
                 run.discard()
@@ -729,8 +738,52 @@ def _finish_chosen(solver, rec, deadline, ctx, pos, points, higher, tol, src, lo
     return points, model, status, message
 
 
+def _fit_with_valid(solver, deadline, src, valid, path_model, lam, factor, lam_max, loss, tol,
+                    value_tol, block_rows) -> tuple[Any, dict]:
+    """The chosen model fitted again on the training and validation rows together.
+
+    Starts from the path's own factors at its ``lam`` (no passes at ``W = 0``);
+    when the debiasing refit was kept (``factor < 1``), that refit is made again
+    on the joined rows at the same factor (chosen on validation, not again).
+    Returns ``(model, figures)``, or ``(None, figures)`` when stopped.
+    """
+    opened = isinstance(valid, (str, os.PathLike))
+    vsrc = as_source(valid)
+    t0 = time.perf_counter()
+    try:
+        both = ConcatSource([src, vsrc], [_path_of(src) or "the training data",
+                                           _path_of(valid) or "the validation data"])
+        kept = factor < 1.0
+        # a kept refit replaces this fit's model: solve it as a path value is solved
+        cfg = replace(solver.config, lam=None, lam_scale=None,
+                      tol=value_tol if kept else tol,
+                      stall_tol=0.1 * value_tol if kept and value_tol > tol else None,
+                      max_seconds=_seconds_left(deadline))
+        joined = GreedySolver(both, cfg, stop=solver.stop, scratch_dir=solver.scratch_root)
+        try:
+            joined.fit_from(path_model.U, path_model.s, path_model.V, path_model.b, lam=lam,
+                            lam_max=lam_max)
+            fit = joined.run()
+        finally:
+            joined.remove_scratch()
+        info = {"rows": int(both.shape[0]), "lam": lam, "factor": factor,
+                "passes": fit.passes, "status": fit.status, "rel_gap": fit.rel_gap}
+        if fit.status == "interrupted":
+            return None, info
+        model = _model(both, loss, fit, {**path_model.meta, "objective": fit.objective,
+                                         "gap": fit.gap, "rel_gap": fit.rel_gap})
+        if kept:
+            model = refit_at(model, both, lam=lam, factor=factor,
+                             class_weights=solver.config.class_weights, block_rows=block_rows)
+        info["seconds"] = time.perf_counter() - t0
+        return model, info
+    finally:
+        if opened:
+            vsrc.close()
+
+
 def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, extend, valid,
-                block_rows, ctx, path_tol=None) -> TrainResult:
+                block_rows, ctx, path_tol=None, with_valid=False) -> TrainResult:
     from dataclasses import asdict
 
     tol = float(solver.config.tol)
@@ -827,6 +880,7 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, exte
                            history=list(rec.history),
                            lam=path_lams(lam_max, m, min_frac, 1)[0], lam_max=lam_max)
     pt = points[_point_best(points, higher)]
+    path_model = best_model
     refit, refit_kept = _refit_chosen(best_model, src, solver, valid, loss, pt.lam, block_rows)
     if status is None and not refit_kept:
         # the path's own model is the one shipped: finish it to tol (a kept refit replaces it,
@@ -837,9 +891,21 @@ def _train_path(solver, rec, deadline, fingerprint, src, loss, m, min_frac, exte
             points, model, status, message = done
             pos["points"] = [asdict(p) for p in points]
             if model is not None:
+                path_model = model
                 refit = replace(model, meta=dict(model.meta, **{
                     k: refit.meta[k] for k in ("debias", "low_rank_note") if k in refit.meta}))
     best_model = refit
+    if with_valid and status is None:
+        factor = float(refit.meta.get("debias", {}).get("kept_factor", 1.0))
+        pt = points[_point_best(points, higher)]
+        joined, info = _fit_with_valid(solver, deadline, src, valid, path_model, pt.lam, factor,
+                                       lam_max, loss, tol, value_tol, block_rows)
+        if joined is not None:
+            keep = {k: refit.meta[k] for k in ("debias", "low_rank_note") if k in refit.meta}
+            best_model = replace(joined, meta=dict(joined.meta, **keep,
+                                                   refit_with_valid=json_data(info)))
+        elif info.get("status") == "interrupted":
+            status, message = "interrupted", "interrupted while refitting on the validation rows"
     status = status or pos["status"]
     message = message or pos["message"]
     best = _point_best(points, higher)

@@ -42,8 +42,8 @@ from ranktide.model import Model
 from ranktide.solver.refine import refine
 from ranktide.solver.refine_common import RefineSettings
 
-__all__ = ["DebiasResult", "debias", "debias_summary", "near_full_rank", "DEBIAS_FACTORS",
-           "projection_bytes"]
+__all__ = ["DebiasResult", "debias", "debias_summary", "refit_at", "near_full_rank",
+           "DEBIAS_FACTORS", "projection_bytes"]
 
 #: penalty factors tried after the path, largest first (each a fraction of the chosen lam)
 DEBIAS_FACTORS: tuple[float, ...] = (0.3, 0.1, 0.03)
@@ -196,6 +196,30 @@ def debias(
         if sc > best_score if higher else sc < best_score:
             best, best_score, best_factor = cand, sc, f
     return DebiasResult(best, best_factor, tried, time.perf_counter() - t0)
+
+
+def refit_at(model: Model, src: Any, *, lam: float, factor: float,
+             class_weights: np.ndarray | None = None, tol: float = 1e-5, max_iter: int = 300,
+             block_rows: int | None = None) -> Model:
+    """``model`` (fitted at ``lam``) refitted on its own subspace at ``factor * lam``.
+
+    The same refits :func:`debias` makes, through the same factors down to
+    ``factor`` (warm starts), without choosing: used when the factor was chosen
+    on validation and the model has since been refitted on more rows.
+    """
+    if model.rank == 0 or factor >= 1.0:
+        return model
+    A, Y, w, present = _projections(src, model.U, block_rows)
+    basis, A, N = _present_basis(model, present, A)
+    if basis.shape[1] == 0:
+        return model
+    b = model.b
+    for f in [x for x in DEBIAS_FACTORS if x > factor] + [factor]:
+        res = refine(A, Y, w, N, b, RefineSettings(loss=model.loss, lam=f * lam, tol=tol,
+                                                   max_iter=max_iter,
+                                                   class_weights=class_weights))
+        N, b = res.N, res.b
+    return replace(model, U=basis @ res.A, s=res.s, V=res.B, b=res.b)
 
 
 def debias_summary(res: DebiasResult) -> dict:

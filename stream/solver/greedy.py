@@ -353,6 +353,17 @@ class GreedySolver:
         st.V, st.b = np.array(V, dtype=np.float64), np.array(b, dtype=np.float64)
         self._check_state(st)
 
+    def fit_from(self, U: np.ndarray, s: np.ndarray, V: np.ndarray, b: np.ndarray, *,
+                 lam: float, lam_max: float) -> None:
+        """Start fitting ``lam`` from a model's factors, with no passes at ``W = 0``
+        (``lam_max`` known from an earlier fit): a chosen model refitted on more rows."""
+        st = self.state
+        st.phase, st.status = "fit", "running"
+        st.intercept_ready = True
+        st.lam_max, st.lam_max_settled = float(lam_max), True
+        self.warm_start(U, s, V, b)
+        self.set_lam(lam)
+
     def _lam_after_settle(self) -> float | None:
         cfg, st = self.config, self.state
         if st.lam is not None:

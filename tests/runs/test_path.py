@@ -142,3 +142,49 @@ def test_path_tol_none_solves_every_value_to_tol():
                 path_tol=None, valid=(Xv, yv), tol=1e-5, max_passes=300, seed=0)
     assert all(p.gap <= 1e-5 * p.objective for p in res.path)
     assert res.model.meta["path"]["finished"] is None
+
+
+@pytest.mark.parametrize("own_model", [True, False])
+def test_refit_with_valid_fits_the_choice_on_both_parts(tmp_path, monkeypatch, own_model):
+    """refit_with_valid: the chosen lam (and debiasing factor) fitted again on the
+    training and validation rows together. ``own_model``: the debiasing refit is offered
+    no smaller lam, so the path's own model is refitted (and checked against CVXPY)."""
+    import ranktide.runs.train as T
+    import scipy.sparse as sps
+    from conic import solve_conic
+
+    if own_model:
+        real = T.debias
+        monkeypatch.setattr(T, "debias", lambda *a, **k: real(*a, **{**k, "factors": ()}))
+
+    X, y = _planted(31, 300)
+    Xv, yv = _planted(32, 150)
+    kw = dict(loss="softmax", path_steps=3, path_floor=0.3, path_extend=0, valid=(Xv, yv),
+              tol=1e-7, max_passes=300, seed=0)
+    alone = train(X, targets=y, **kw)
+    res = train(X, targets=y, refit_with_valid=True, out=tmp_path / "run", **kw)
+    # the path and its choice are the same as without the refit
+    assert [p.score for p in res.path] == [p.score for p in alone.path]
+    meta = json.loads((tmp_path / "run" / "model" / "model.json").read_text())
+    info = meta["refit_with_valid"]
+    assert info["rows"] == 450 and info["lam"] == pytest.approx(res.lam, rel=1e-12)
+    W = (res.model.U * res.model.s) @ res.model.V.T
+    if own_model:
+        assert info["factor"] == 1.0
+    if info["factor"] == 1.0:
+        # Reference: CVXPY + Clarabel optimum on the 450 joined rows at the chosen lam.
+        Xj = sps.vstack([X, Xv]).tocsr().astype(np.float64)
+        con = solve_conic(Xj, np.concatenate([y, yv]), loss="softmax", lam=res.lam, n_outputs=5)
+        np.testing.assert_allclose(W, con.W, atol=2e-3 * np.abs(con.W).max())
+    else:  # the kept debiasing factor is applied again, on the joined rows
+        assert meta["debias"]["kept_factor"] == info["factor"]
+    W0 = (alone.model.U * alone.model.s) @ alone.model.V.T
+    assert np.abs(W - W0).max() > 1e-6  # the extra rows changed the model
+
+
+def test_refit_with_valid_needs_a_path():
+    from ranktide.errors import ConfigError
+
+    X, y = _planted(31, 100)
+    with pytest.raises(ConfigError, match="--refit-with-valid refits a path"):
+        train(X, targets=y, loss="softmax", lam_scale=0.2, refit_with_valid=True)
