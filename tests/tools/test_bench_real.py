@@ -66,7 +66,7 @@ def test_bench_real_smoke(tmp_path):
     assert json.loads((tmp_path / "out" / "results.json").read_text())["rows"] == doc["rows"]
     rows = {r.get("key", r["system"]): r for r in doc["rows"]}
     assert set(bench_real.SYSTEMS) <= set(rows)
-    for key in ("ranktide", "lr", "lr_train", "sgd"):
+    for key in ("ranktide", "ranktide_refit", "lr", "lr_train", "sgd"):
         for field in ("accuracy", "macro_f1", "rare_recall", "log_loss", "fit_s",
                       "peak_rss_mib", "model_bytes"):
             assert np.isfinite(rows[key][field]), (key, field)
@@ -81,10 +81,12 @@ def test_bench_real_smoke(tmp_path):
     assert rows["ranktide"]["log_loss"] < majority["log_loss"]
     # precision@1 of a fixed ranking by tag frequency against the fitted tag model
     assert rows["ranktide_tags"]["p_at_1"] > rows["most frequent tags (training counts)"]["p_at_1"]
-    assert set(doc["goals"]) == {"lr", "lr_train"}
+    assert set(doc["goals"]) == {"ranktide vs lr", "ranktide vs lr_train",
+                                 "ranktide_refit vs lr"}
     for found in doc["goals"].values():
         assert set(found) == {"accuracy", "macro_f1", "rare_recall", "model_2x_smaller",
                               "fit_s_le_lr_single_fit"}
     assert rows["lr_train"]["refit_rows"] == "train" and rows["lr"]["refit_rows"] == "train+val"
+    assert rows["ranktide_refit"]["refit_with_valid"]["rows"] > rows["ranktide"]["rank"] >= 0
     table = bench_real.table(doc["rows"])
     assert table.splitlines()[0].startswith("| system | accuracy | macro_f1 |")
