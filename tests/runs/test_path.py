@@ -8,7 +8,8 @@ import math
 import numpy as np
 import pytest
 import scipy.sparse as sp
-from ranktide.runs.train import PathPoint, _path_end, path_lams, train
+from ranktide.runs.path import _path_end
+from ranktide.runs.train import PathPoint, path_lams, train
 
 
 def _pts(scores):
@@ -98,7 +99,7 @@ def test_values_solved_loosely_and_the_chosen_one_finished_to_tol(tmp_path, monk
     """path_tol: the values to a loose gap, the chosen one on to tol from its own factors
     (when the debiasing refit keeps the path's own model: forced here by offering it no
     smaller lam)."""
-    import ranktide.runs.train as T
+    import ranktide.runs.fitting as T
     from conic import solve_conic
 
     real = T.debias
@@ -149,7 +150,7 @@ def test_refit_with_valid_fits_the_choice_on_both_parts(tmp_path, monkeypatch, o
     """refit_with_valid: the chosen lam (and debiasing factor) fitted again on the
     training and validation rows together. ``own_model``: the debiasing refit is offered
     no smaller lam, so the path's own model is refitted (and checked against CVXPY)."""
-    import ranktide.runs.train as T
+    import ranktide.runs.fitting as T
     import scipy.sparse as sps
     from conic import solve_conic
 
