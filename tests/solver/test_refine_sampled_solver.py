@@ -7,18 +7,15 @@ numpy; the checkpoint round trip (the uninterrupted run's arrays, bit for bit).
 
 from __future__ import annotations
 
-import json
-
 import numpy as np
 import pytest
 import scipy.sparse as sp
 from conic import solve_conic
-from ranktide.atomic import load_npz, save_npz
 from ranktide.solver.config import SolverConfig
 from ranktide.solver.greedy import GreedySolver
 from ranktide.solver.refinement import sample_rows
-from ranktide.solver.state import SolverState
 from scipy.special import expit
+from statefiles import through_files
 
 
 def _problem(loss: str, *, n=300, d=20, k=4, seed=0):
@@ -87,11 +84,7 @@ def test_sampled_run_resumes_exactly_from_a_checkpoint(tmp_path):
     a = GreedySolver((X, y), cfg)
     for _ in range(5):
         a.step()
-    arrays, meta = a.state.to_checkpoint()
-    save_npz(tmp_path / "state.npz", arrays)
-    (tmp_path / "state.json").write_text(json.dumps(meta))
-    restored = SolverState.from_checkpoint(load_npz(tmp_path / "state.npz"),
-                                           json.loads((tmp_path / "state.json").read_text()))
+    restored = through_files(a.state, tmp_path)  # npz without pickle, and JSON
     b = GreedySolver((X, y), cfg, state=restored)
     for _ in range(4):
         ra, rb = a.step(), b.step()

@@ -18,7 +18,6 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from conic import solve_conic
-from ranktide.atomic import load_npz, save_npz
 from ranktide.errors import ConfigError, InputError
 from ranktide.runs.train import train
 from ranktide.solver.certificate import gap_estimate
@@ -31,6 +30,7 @@ from ranktide.solver.subspace import fill as _fill
 from ranktide.solver.subspace import momentum_directions as _momentum
 from ranktide.solver.subspace import sigma1_lower_bound
 from scipy.special import expit, logsumexp
+from statefiles import through_files
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -211,12 +211,7 @@ def test_state_checkpoint_round_trip_gives_identical_next_pass(tmp_path):
     a = GreedySolver((X, y), cfg)
     for _ in range(5):
         a.step()
-    arrays, meta = a.state.to_checkpoint()
-    # through the files a checkpoint uses: npz without pickle and JSON
-    save_npz(tmp_path / "state.npz", arrays)
-    (tmp_path / "state.json").write_text(json.dumps(meta))
-    restored = SolverState.from_checkpoint(load_npz(tmp_path / "state.npz"),
-                                           json.loads((tmp_path / "state.json").read_text()))
+    restored = through_files(a.state, tmp_path)  # npz without pickle, and JSON
     b = GreedySolver((X, y), cfg, state=restored)
     for _ in range(3):
         ra, rb = a.step(), b.step()
