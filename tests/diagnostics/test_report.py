@@ -9,27 +9,17 @@ import shutil
 import browser
 import numpy as np
 import pytest
-import scipy.sparse as sp
+from planted import planted_rows
 from ranktide.cli import main as cli
 from ranktide.diagnostics import report
 from ranktide.runs.train import train
 
 
-def _problem(seed: int, n: int) -> tuple[sp.csr_matrix, np.ndarray]:
-    """Rows of one planted rank-2 softmax problem (the seed picks the rows, not the model)."""
-    W = np.random.default_rng(0).standard_normal((40, 2)) @ \
-        np.random.default_rng(1).standard_normal((2, 5))
-    rng = np.random.default_rng(seed)
-    X = sp.random(n, 40, density=0.2, format="csr", random_state=seed, dtype=np.float32)
-    y = np.argmax(X @ W + 0.3 * rng.standard_normal((n, 5)), axis=1).astype(np.int32)
-    return X, y
-
-
 @pytest.fixture(scope="module")
 def path_run(tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
-    X, y = _problem(11, 500)
-    Xv, yv = _problem(12, 200)
+    X, y = planted_rows(11, 500)
+    Xv, yv = planted_rows(12, 200)
     res = train(X, targets=y, loss="softmax", path_steps=3, path_floor=0.1, valid=(Xv, yv),
                 max_passes=8, tol=1e-2, seed=0, out=root / "run", checkpoint_passes=3)
     page = report.write_report(root / "run")

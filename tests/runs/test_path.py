@@ -7,7 +7,7 @@ import math
 
 import numpy as np
 import pytest
-import scipy.sparse as sp
+from planted import planted_rows
 from ranktide.runs.path import _path_end
 from ranktide.runs.train import PathPoint, path_lams, train
 
@@ -58,19 +58,9 @@ def test_values_past_the_end_continue_the_same_geometric_sequence():
     assert lams[2] == pytest.approx(2.0 * 0.05, rel=1e-12)
 
 
-def _planted(seed, n):
-    """Rows of one planted rank-2 softmax problem (the seed picks the rows)."""
-    W = np.random.default_rng(0).standard_normal((40, 2)) @ \
-        np.random.default_rng(1).standard_normal((2, 5))
-    rng = np.random.default_rng(seed)
-    X = sp.random(n, 40, density=0.2, format="csr", random_state=seed, dtype=np.float32)
-    y = np.argmax(X @ W + 0.3 * rng.standard_normal((n, 5)), axis=1).astype(np.int32)
-    return X, y
-
-
 def test_a_path_whose_best_is_last_goes_on_and_says_so_in_model_json(tmp_path):
-    X, y = _planted(11, 500)
-    Xv, yv = _planted(12, 200)
+    X, y = planted_rows(11, 500)
+    Xv, yv = planted_rows(12, 200)
     res = train(X, targets=y, loss="softmax", path_steps=3, path_floor=0.3, path_extend=6,
                 valid=(Xv, yv), max_passes=8, tol=1e-2, seed=0, out=tmp_path / "run")
     scores = [p.score for p in res.path]
@@ -104,8 +94,8 @@ def test_values_solved_loosely_and_the_chosen_one_finished_to_tol(tmp_path, monk
 
     real = T.debias
     monkeypatch.setattr(T, "debias", lambda *a, **k: real(*a, **{**k, "factors": ()}))
-    X, y = _planted(21, 300)
-    Xv, yv = _planted(22, 200)
+    X, y = planted_rows(21, 300)
+    Xv, yv = planted_rows(22, 200)
     res = train(X, targets=y, loss="softmax", path_steps=4, path_floor=0.2, path_extend=0,
                 path_tol=1e-2, valid=(Xv, yv), tol=1e-7, max_passes=300, seed=0,
                 out=tmp_path / "run")
@@ -127,8 +117,8 @@ def test_values_solved_loosely_and_the_chosen_one_finished_to_tol(tmp_path, monk
 def test_a_kept_refit_skips_the_finishing(monkeypatch):
     """When the debiasing refit replaces the path's model, the chosen value is not
     solved on (its certificate would certify a model nobody ships)."""
-    X, y = _planted(21, 300)
-    Xv, yv = _planted(22, 200)
+    X, y = planted_rows(21, 300)
+    Xv, yv = planted_rows(22, 200)
     res = train(X, targets=y, loss="softmax", path_steps=4, path_floor=0.2, path_extend=0,
                 path_tol=1e-2, valid=(Xv, yv), tol=1e-7, max_passes=300, seed=0)
     meta = res.model.meta
@@ -137,8 +127,8 @@ def test_a_kept_refit_skips_the_finishing(monkeypatch):
 
 
 def test_path_tol_none_solves_every_value_to_tol():
-    X, y = _planted(21, 300)
-    Xv, yv = _planted(22, 200)
+    X, y = planted_rows(21, 300)
+    Xv, yv = planted_rows(22, 200)
     res = train(X, targets=y, loss="softmax", path_steps=3, path_floor=0.3, path_extend=0,
                 path_tol=None, valid=(Xv, yv), tol=1e-5, max_passes=300, seed=0)
     assert all(p.gap <= 1e-5 * p.objective for p in res.path)
@@ -158,8 +148,8 @@ def test_refit_with_valid_fits_the_choice_on_both_parts(tmp_path, monkeypatch, o
         real = T.debias
         monkeypatch.setattr(T, "debias", lambda *a, **k: real(*a, **{**k, "factors": ()}))
 
-    X, y = _planted(31, 300)
-    Xv, yv = _planted(32, 150)
+    X, y = planted_rows(31, 300)
+    Xv, yv = planted_rows(32, 150)
     kw = dict(loss="softmax", path_steps=3, path_floor=0.3, path_extend=0, valid=(Xv, yv),
               tol=1e-7, max_passes=300, seed=0)
     alone = train(X, targets=y, **kw)
@@ -186,6 +176,6 @@ def test_refit_with_valid_fits_the_choice_on_both_parts(tmp_path, monkeypatch, o
 def test_refit_with_valid_needs_a_path():
     from ranktide.errors import ConfigError
 
-    X, y = _planted(31, 100)
+    X, y = planted_rows(31, 100)
     with pytest.raises(ConfigError, match="--refit-with-valid refits a path"):
         train(X, targets=y, loss="softmax", lam_scale=0.2, refit_with_valid=True)
