@@ -8,7 +8,6 @@ on whether rows carry weights.
 
 from __future__ import annotations
 
-import hashlib
 from dataclasses import replace
 from typing import Any
 
@@ -88,13 +87,6 @@ class ConcatSource:
     def attrs(self) -> dict:
         return {"n_rows": self.shape[0], "n_cols": self.shape[1], "nnz": self.nnz,
                 "target_kind": self.target_kind, "n_outputs": self.n_outputs}
-
-    @property
-    def fingerprint(self) -> str:
-        h = hashlib.sha256()
-        for p in self.parts:
-            h.update(str(getattr(p, "fingerprint", p.shape)).encode())
-        return h.hexdigest()[:32]
 
     def indptr_range(self, a: int, b: int) -> np.ndarray:
         """``indptr[a:b+1]`` of the joined rows (int64; ``a:b`` inside one part)."""
