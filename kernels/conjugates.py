@@ -21,6 +21,15 @@ Each kernel takes the residual as the residual kernels of
 recovered as ``R_i / w_i``; rows of weight 0 contribute nothing. Rounding can
 push a ``q`` a few ulps outside [0, 1]; it is clipped. Rows are summed in a
 fixed number of chunks added in order, so the sum does not depend on threads.
+
+Softmax needs no log per entry. Off the target, ``q_j = c p_j``, so with
+``H_i = sum_j p_j log p_j`` (which the residual kernel hands over, see
+``out_negent`` of :func:`kernels.losses.softmax_residual`)::
+
+    sum_j q_j log q_j = c log(c) (1 - p_y) + c (H_i - p_y log p_y) + q_y log q_y,
+    q_y = c p_y + 1 - c,
+
+three logs per row instead of k.
 """
 
 from __future__ import annotations
@@ -54,13 +63,15 @@ _LOSS_CODES = {"softmax": _SOFTMAX, "squared": _SQUARED, "multilabel": _MULTILAB
 
 
 @njit(nogil=True, cache=True, inline="always")
-def _row_conjugate(R, i, k, scale, code, y, Y, tagged):  # pragma: no cover
-    """``loss*(scale R_i)`` of row ``i`` (``tagged``: the row's tag flags, multilabel)."""
+def _row_conjugate(R, i, k, c, wi, code, y, Y, tagged, H):  # pragma: no cover
+    """``loss*(c R_i / w_i)`` of row ``i`` (``tagged``: the row's tag flags, multilabel;
+    ``H``: the rows' negative entropies, softmax)."""
     acc = 0.0
+    scale = c / wi
     if code == _SOFTMAX:
-        yi = y[i]
-        for j in range(k):
-            acc += _xlogx(_clip01(scale * R[i, j] + (1.0 if j == yi else 0.0)))
+        py = _clip01(R[i, y[i]] / wi + 1.0)
+        acc = (_xlogx(c) * (1.0 - py) + c * (H[i] - _xlogx(py))
+               + _xlogx(_clip01(c * py + 1.0 - c)))
     elif code == _SQUARED:
         for j in range(k):
             v = scale * R[i, j]
@@ -73,7 +84,7 @@ def _row_conjugate(R, i, k, scale, code, y, Y, tagged):  # pragma: no cover
 
 
 @njit(nogil=True, cache=True, parallel=True)
-def conjugate_kernel(R, code, y, Y, tag_indptr, tag_indices, w, c):  # pragma: no cover
+def conjugate_kernel(R, code, y, Y, tag_indptr, tag_indices, w, c, H):  # pragma: no cover
     """``sum_i w_i loss*(c R_i / w_i; y_i)``; ``code`` picks the loss, the other
     loss's target arrays may be empty (see :func:`conjugate_sum`)."""
     n, k = R.shape
@@ -89,7 +100,7 @@ def conjugate_kernel(R, code, y, Y, tag_indptr, tag_indices, w, c):  # pragma: n
             if code == _MULTILABEL:
                 for q in range(tag_indptr[i], tag_indptr[i + 1]):
                     tagged[tag_indices[q]] = True
-            part[ch] += wi * _row_conjugate(R, i, k, c / wi, code, y, Y, tagged)
+            part[ch] += wi * _row_conjugate(R, i, k, c, wi, code, y, Y, tagged, H)
             if code == _MULTILABEL:
                 for q in range(tag_indptr[i], tag_indptr[i + 1]):
                     tagged[tag_indices[q]] = False
@@ -100,7 +111,7 @@ def conjugate_kernel(R, code, y, Y, tag_indptr, tag_indices, w, c):  # pragma: n
 
 
 def conjugate_sum(R: np.ndarray, targets, w: np.ndarray | None, loss: str, c: float, *,
-                  where: str = "block") -> float:
+                  negentropy: np.ndarray | None = None, where: str = "block") -> float:
     """``sum_i w_i loss*(c R_i / w_i; y_i)`` over one block (see the module docstring).
 
     Parameters
@@ -115,6 +126,9 @@ def conjugate_sum(R: np.ndarray, targets, w: np.ndarray | None, loss: str, c: fl
     loss : {"softmax", "squared", "multilabel"}
     c : float
         Dual scale in [0, 1].
+    negentropy : (n_b,) float64, softmax only (required there)
+        Each row's ``sum_j p_ij log p_ij``, from the ``out_negent`` of
+        :func:`kernels.losses.softmax_residual` on the same scores.
 
     Returns
     -------
@@ -132,8 +146,13 @@ def conjugate_sum(R: np.ndarray, targets, w: np.ndarray | None, loss: str, c: fl
         raise KernelInputError(f"{where}: unknown loss {loss!r}")
     y, Y = np.zeros(0, np.int64), np.zeros((0, 0))
     tp, ti = np.zeros(1, np.int64), np.zeros(0, np.int64)
+    H = np.zeros(0)
     if loss == "softmax":
         y = _check_classes(targets, n, where)
+        H = np.asarray(negentropy, dtype=np.float64) if negentropy is not None else H
+        if H.shape != (n,):
+            raise KernelInputError(f"{where}: the softmax conjugate needs the rows' negative "
+                                   f"entropies, shape ({n},) (out_negent of softmax_residual)")
     elif loss == "squared":
         Y = np.asarray(targets, dtype=np.float64)
         if Y.shape != (n, k):
@@ -141,4 +160,4 @@ def conjugate_sum(R: np.ndarray, targets, w: np.ndarray | None, loss: str, c: fl
     else:
         tp, ti = _check_tags(targets[0], targets[1], n, where)
     with kernel_guard():
-        return float(conjugate_kernel(R, _LOSS_CODES[loss], y, Y, tp, ti, w, c))
+        return float(conjugate_kernel(R, _LOSS_CODES[loss], y, Y, tp, ti, w, c, H))

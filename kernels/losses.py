@@ -167,7 +167,7 @@ def _row_sum(E, i, k):  # pragma: no cover - compiled
 
 
 @njit(nogil=True, cache=True, parallel=True, fastmath=_CONTRACT)
-def softmax_residual_kernel(Z, y, w, out_loss, out_gradb):  # pragma: no cover - compiled
+def softmax_residual_kernel(Z, y, w, out_loss, out_gradb, out_negent):  # pragma: no cover
     """Softmax cross-entropy; see the module docstring. Returns first bad row or -1.
 
     Parameters
@@ -177,9 +177,15 @@ def softmax_residual_kernel(Z, y, w, out_loss, out_gradb):  # pragma: no cover -
     w : (n_b,) float64, or empty for unit weights
     out_loss : (1,) float64, accumulated
     out_gradb : (k,) float64, accumulated
+    out_negent : (n_b,) float64, or empty
+        Receives ``sum_j p_ij log p_ij`` of each row's probabilities; with
+        ``t_j = z_j - max(z)`` and ``s = sum_j exp(t_j)`` it is
+        ``sum_j exp(t_j) t_j / s - log s``: one multiply-add per entry, no log
+        per entry.
     """
     n, k = Z.shape
     has_w = w.shape[0] > 0
+    want_h = out_negent.shape[0] > 0
     nch = _n_chunks(n)
     part = np.zeros((nch, k + 1))
     bad = np.full(nch, -1, dtype=np.int64)
@@ -195,10 +201,21 @@ def softmax_residual_kernel(Z, y, w, out_loss, out_gradb):  # pragma: no cover -
             wi = w[i] if has_w else 1.0
             mx = _row_max(Z, i, k)
             zy = Z[i, yi]
-            for j in range(k):
-                Z[i, j] = exp_nonpositive(Z[i, j] - mx)
+            if want_h:
+                et = 0.0
+                for j in range(k):
+                    t = Z[i, j] - mx
+                    e = exp_nonpositive(t)
+                    Z[i, j] = e
+                    et += e * t
+            else:
+                for j in range(k):
+                    Z[i, j] = exp_nonpositive(Z[i, j] - mx)
             s = _row_sum(Z, i, k)
-            part[c, 0] += wi * (mx + math.log(s) - zy)
+            log_s = math.log(s)
+            if want_h:
+                out_negent[i] = et / s - log_s
+            part[c, 0] += wi * (mx + log_s - zy)
             scale = wi / s
             for j in range(k):
                 Z[i, j] *= scale
@@ -483,6 +500,7 @@ def softmax_residual(
     *,
     row_offset: int = 0,
     where: str = "block",
+    out_negent: np.ndarray | None = None,
 ) -> np.ndarray:
     """Softmax cross-entropy: residual in place, loss sum and grad_b accumulated.
 
@@ -501,6 +519,10 @@ def softmax_residual(
     row_offset, where
         Absolute index of the block's first row and the data source's name,
         for error messages.
+    out_negent : (n_b,) float64 C array, optional
+        Receives each row's ``sum_j p_ij log p_ij`` (``p_i = softmax(z_i)``),
+        which the duality gap's conjugate needs (:func:`kernels.conjugates.conjugate_sum`);
+        computed from the scores while they are at hand, with no log per entry.
 
     Returns
     -------
@@ -510,10 +532,18 @@ def softmax_residual(
     y = _check_classes(y, n, where)
     w = _check_weights(w, n, where)
     _check_acc(out_loss, out_gradb, k, where)
+    if out_negent is None:
+        out_negent = np.zeros(0)
+    elif not (isinstance(out_negent, np.ndarray) and out_negent.dtype == np.float64
+              and out_negent.shape == (n,) and out_negent.flags.c_contiguous
+              and out_negent.flags.writeable):
+        raise KernelInputError(f"{where}: out_negent must be a writable float64 C array of "
+                               f"shape ({n},)")
     if n == 0:
         return Z
     with kernel_guard():
-        bad = softmax_residual_kernel(Z, y, _kernel_weights(w), out_loss, out_gradb)
+        bad = softmax_residual_kernel(Z, y, _kernel_weights(w), out_loss, out_gradb,
+                                      out_negent)
     _bad_class(y, bad, k, row_offset, where)
     return Z
 

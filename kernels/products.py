@@ -434,9 +434,11 @@ def block_dense(
         gb = np.zeros(k)
         wc = None if w is None else w[a:e]
         kw = {"row_offset": row_offset + a, "where": where}
+        H = None
         if ops.loss == "softmax":
             tgt = targets[a:e]
-            _losses.softmax_residual(S, tgt, wc, loss, gb, **kw)
+            H = np.empty(e - a) if ops.dual_scale > 0.0 else None
+            _losses.softmax_residual(S, tgt, wc, loss, gb, out_negent=H, **kw)
         elif ops.loss == "squared":
             tgt = targets[a:e]
             _losses.squared_residual(S, tgt, wc, loss, gb, **kw)
@@ -445,7 +447,8 @@ def block_dense(
             _losses.multilabel_residual(S, tgt[0], ti, wc, loss, gb, **kw)
         conj = 0.0
         if ops.dual_scale > 0.0:
-            conj = conjugate_sum(S, tgt, wc, ops.loss, ops.dual_scale, where=where)
+            conj = conjugate_sum(S, tgt, wc, ops.loss, ops.dual_scale, negentropy=H,
+                                 where=where)
         T = S.T @ XQ[a:e] if q else None
         if m:
             np.matmul(S, ops.VO, out=out_RVO[a:e])

@@ -205,10 +205,23 @@ def watch_checkpoints(run: Path, into: Path, stop: threading.Event, t0: float) -
     return got
 
 
-def accuracy(npz: Path, Xh: sp.csr_matrix, yh: np.ndarray) -> tuple[float, int]:
+def used_holdout_columns(store: Path, Xh: sp.csr_matrix) -> sp.csr_matrix:
+    """The held-out rows on the training store's used columns, the space a checkpoint's U
+    lives in when some hashed ids never occur in training (the trainer solves there)."""
+    from ranktide.passes.columns import used_columns
+    from ranktide.store import open_store
+
+    with open_store(store, verify=False) as st:
+        cols = used_columns(st)
+    return Xh[:, cols].tocsr()
+
+
+def accuracy(npz: Path, Xh: sp.csr_matrix, yh: np.ndarray,
+             Xh_used: sp.csr_matrix | None = None) -> tuple[float, int]:
     with np.load(npz, allow_pickle=False) as z:
         U, s, V, b = z["U"], z["s"], z["V"], z["b"]
-    scores = (np.asarray(Xh @ U) * s) @ V.T + b
+    X = Xh if U.shape[0] == Xh.shape[1] else Xh_used
+    scores = (np.asarray(X @ U) * s) @ V.T + b
     return float(np.mean(np.argmax(scores, axis=1) == yh)), int(s.shape[0])
 
 
@@ -306,11 +319,13 @@ def main(argv: list[str] | None = None) -> int:
                        "elapsed_s": h.get("seconds"), "rel_gap": h.get("rel_gap"),
                        "rel_gap_after": h.get("rel_gap_after"),
                        "objective": h.get("objective"), "lam_max_note": h.get("lam_max_note"),
-                       "memory_floor": h.get("memory_floor")})
+                       "memory_floor": h.get("memory_floor"),
+                       "rss_peak_bytes": h.get("rss_peak")})
     figures["passes"] = passes
     figures["accuracy"] = []
+    Xh_used = used_holdout_columns(store, Xh) if got else None
     for t, path in got:
-        acc, rank = accuracy(path, Xh, yh)
+        acc, rank = accuracy(path, Xh, yh, Xh_used)
         figures["accuracy"].append({"t_s": t, "rank": rank, "holdout_accuracy": acc})
     figures["load_avg_end"] = os.getloadavg()
     dest = out / f"bench_scale-{n}.json"
@@ -339,12 +354,12 @@ def _print(f: dict) -> None:
           f"{(f['cgroup_peak_bytes'] or 0) / mib:.0f} MiB of {f['cap_bytes'] / mib:.0f}  "
           f"OOM kills {f['oom_kills']}")
     print(f"{'pass':>4} {'phase':>8} {'rank':>4} {'pass s':>8} {'refine s':>8} "
-          f"{'cfloor s':>8} {'x floor':>7} {'rel gap':>9} {'t s':>7}")
+          f"{'cfloor s':>8} {'x floor':>7} {'rel gap':>9} {'t s':>7} {'RSS hw MiB':>10}")
     for p in f["passes"]:
         print(f"{p['pass']:>4} {str(p['phase']):>8} {p['rank']:>4} {p['pass_s']:>8.1f} "
               f"{(p['refine_s'] or 0):>8.1f} {p['compute_floor_s']:>8.1f} "
               f"{p['pass_over_floor']:>7.2f} {(p['rel_gap'] or float('nan')):>9.2e} "
-              f"{(p['elapsed_s'] or 0):>7.0f}")
+              f"{(p['elapsed_s'] or 0):>7.0f} {(p['rss_peak_bytes'] or 0) / mib:>10.0f}")
     for a in f["accuracy"]:
         print(f"  t {a['t_s']:7.0f} s  rank {a['rank']:3d}  held-out accuracy "
               f"{a['holdout_accuracy']:.4f}")

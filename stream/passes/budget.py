@@ -33,8 +33,8 @@ from ranktide.errors import ConfigError
 from ranktide.kernels.csc import worth_transposing
 
 __all__ = ["parse_memory", "total_memory", "available_memory", "cgroup_limit",
-           "process_floor", "release_freed_memory", "default_budget", "plan_blocks", "Plan",
-           "format_bytes", "MAX_BLOCK_CSR_BYTES", "FLOOR_QUANTUM"]
+           "process_floor", "peak_resident", "release_freed_memory", "default_budget",
+           "plan_blocks", "Plan", "format_bytes", "MAX_BLOCK_CSR_BYTES", "FLOOR_QUANTUM"]
 
 #: decoded CSR bytes above which bigger blocks stop paying (common practice, no source)
 MAX_BLOCK_CSR_BYTES = 64 * 2**20
@@ -140,6 +140,20 @@ def process_floor() -> int:
         except (OSError, ValueError, IndexError):
             rss = 0
     return -(-rss // FLOOR_QUANTUM) * FLOOR_QUANTUM
+
+
+def peak_resident() -> int:
+    """This process's resident-set high-water mark so far (bytes; Linux ``VmHWM``), or 0
+    where ``/proc`` does not give it. Recorded after each pass, so that a peak above the
+    budget can be traced to the pass (or refinement) that made it."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return 0
 
 
 def release_freed_memory() -> None:

@@ -57,6 +57,7 @@ from ranktide.passes.budget import (
     FLOOR_QUANTUM,
     Plan,
     cgroup_limit,
+    peak_resident,
     plan_blocks,
     process_floor,
     release_freed_memory,
@@ -440,6 +441,10 @@ class GreedySolver:
         res = self._pass_fn(self.source, req, backend=cfg.backend, block_rows=rows,
                             block_bytes=cfg.block_bytes, profile=prof, progress=self.progress,
                             should_stop=self._should_stop)
+        if self._binding:
+            # the pass's blocks are gone: hand their pages back before the d-row work
+            # that follows (Ritz steps, next blocks, the refinement's set-up) allocates
+            release_freed_memory()
         st.passes += 1
         st.step_passes += 1
         return req, res, prof
@@ -805,7 +810,7 @@ class GreedySolver:
                    pass_seconds=wall, bytes_read=nbytes,
                    mb_per_s=(nbytes / 2**20) / wall if wall > 0 else 0.0,
                    phase_after=st.phase, path_index=st.path_index,
-                   dense_gradient=self.dense)
+                   dense_gradient=self.dense, rss_peak=peak_resident())
         rec.setdefault("atoms_added", 0)
         self._history.append(rec)
 

@@ -17,6 +17,7 @@ from ranktide.solver.subspace import (
     next_blocks,
     orth_against,
     orth_rank_revealing,
+    ritz_extend,
     ritz_step,
     sigma1_lower_bound,
     top_singular_pairs,
@@ -101,6 +102,23 @@ def test_ritz_step_on_a_redundant_basis():
     np.testing.assert_allclose(sig, np.linalg.svd(G @ Q, compute_uv=False), rtol=1e-12)
     full = ritz_step(np.eye(20), G)[0]  # the whole space: the singular values themselves
     np.testing.assert_allclose(full, np.linalg.svd(G, compute_uv=False), rtol=1e-12)
+
+
+def test_ritz_extend_matches_the_svd_on_the_joined_span():
+    G = _with_spectrum(80, 30, [6.0, 4.0, 3.9, 2.0], seed=32)
+    rng = np.random.default_rng(33)
+    Q = np.linalg.qr(rng.standard_normal((30, 5)))[0]
+    B = rng.standard_normal((30, 3))
+    B = np.hstack([B, Q[:, :2] @ rng.standard_normal((2, 2)), B[:, :1] * 2.0])  # 3 new dirs
+    sig, R, GR = ritz_extend(Q, G @ Q, B, G @ B, cap=6)
+    # reference: numpy.linalg.svd of G on an orthonormal basis of span([Q, B])
+    basis = np.linalg.svd(np.hstack([Q, B]), full_matrices=False)[0][:, :8]
+    want = np.linalg.svd(G @ basis, compute_uv=False)[:6]
+    np.testing.assert_allclose(sig, want, rtol=1e-10)
+    np.testing.assert_allclose(R.T @ R, np.eye(6), atol=1e-12)
+    np.testing.assert_allclose(GR, G @ R, atol=1e-12)
+    empty = ritz_extend(np.zeros((30, 0)), np.zeros((80, 0)), B[:, :0], np.zeros((80, 0)), 4)
+    assert empty[0].shape == (0,) and empty[1].shape == (30, 0)
 
 
 def _iterate(G, U, V, p, n_pass, seed):
