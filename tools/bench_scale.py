@@ -309,9 +309,14 @@ def main(argv: list[str] | None = None) -> int:
     for h in hist:
         r = int(h.get("rank_before", 0) or 0)
         at0 = h.get("phase") == "lam_max"
-        cfloor = compute_floor(n, r, 12 if at0 else 6, 12 if at0 else 6, rates)
+        # the pass's own widths (recorded since the history has them; older runs: the
+        # configured ones, which leave out the rotation directions in Psi)
+        p_cols = int(h.get("omega_cols") or (12 if at0 else 6))
+        pp_cols = int(h.get("psi_cols") or (12 if at0 else 6))
+        cfloor = compute_floor(n, r, p_cols, pp_cols, rates)
         ps = float(h.get("pass_seconds") or 0.0)
         passes.append({"pass": h["pass"], "phase": h.get("phase"), "rank": r,
+                       "omega_cols": p_cols, "psi_cols": pp_cols,
                        "pass_s": ps, "refine_s": h.get("refine_seconds"),
                        "refine_mode": h.get("refine_mode"),
                        "compute_floor_s": cfloor, "read_floor_s": rfloor,

@@ -641,7 +641,9 @@ class GreedySolver:
         t0 = time.perf_counter()
         phase_in = st.phase
         req, res, prof = self._run_pass()
-        rec: dict[str, Any] = {"pass": st.passes, "phase": phase_in, "rank_before": req.rank}
+        rec: dict[str, Any] = {"pass": st.passes, "phase": phase_in, "rank_before": req.rank,
+                               "omega_cols": int(req.Omega.shape[1]),
+                               "psi_cols": int(req.Psi.shape[1])}
         sigma1 = self._sigma1(req, res)
         if self._at_b0(req):
             sigma1 = self._krylov_estimate(req, res, sigma1, rec)

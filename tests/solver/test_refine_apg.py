@@ -25,7 +25,7 @@ from ranktide.solver.refine_sample import (
     refine_sampled,
 )
 from ranktide.solver.refine_stream import refine_streamed
-from ranktide.solver.refinement import refine_projections
+from ranktide.solver.refinement import backtrack, refine_projections
 
 LOSSES = ["softmax", "squared", "multilabel"]
 ORACLES = ["memory", "blocks", "scratch"]
@@ -210,6 +210,36 @@ def test_refine_projections_keeps_falls_back_and_grows(loss):
                                      rng=np.random.default_rng(0), objective=F0, **kw)
     assert info3 == {"refine_sample_rows": 0}
     assert res3.objective == exact.objective
+
+
+@pytest.mark.parametrize("loss", ["softmax", "multilabel"])
+def test_backtrack_finds_a_shorter_step_that_lowers_the_objective(loss):
+    """An answer past the optimum (four times the exact step) raises the full objective;
+    a shorter step towards it lowers it, with factors and objective that match numpy's."""
+    from dataclasses import replace
+
+    A, Y, w = _sub(loss, seed=12)
+    q, k, lam = A.shape[1], 4, 0.03
+    N0, b0 = np.zeros((q, k)), np.zeros(k)
+    blocks = MemoryProjections(_blocks(A, Y, w, loss))
+    cfg = RefineSettings(loss=loss, lam=lam, tol=1e-9, max_iter=3000, stall=0.0)
+    F0 = full_objective(blocks, N0, b0, 0.0, cfg)
+    exact = refine(A, Y, w, N0, b0, cfg)
+    far = replace(exact, N=4.0 * exact.N, b=4.0 * exact.b)
+    nuc_far = float(np.linalg.svd(far.N, compute_uv=False).sum())  # reference: numpy SVD
+    assert full_objective(blocks, far.N, far.b, nuc_far, cfg) > F0  # the premise
+    got = backtrack(blocks, N0, b0, far, F0, cfg)
+    assert got is not None
+    res, t = got
+    assert t in (0.5, 0.25, 0.125)
+    np.testing.assert_allclose(res.N, t * far.N, atol=1e-15)
+    np.testing.assert_allclose((res.A * res.s) @ res.B.T, res.N, atol=1e-12)
+    nuc = float(np.linalg.svd(res.N, compute_uv=False).sum())
+    assert res.objective == pytest.approx(full_objective(blocks, res.N, res.b, nuc, cfg),
+                                          rel=1e-12)
+    assert res.objective < F0
+    # told that the start is better than any point, no step is kept
+    assert backtrack(blocks, N0, b0, far, -1.0, cfg) is None
 
 
 def test_refine_settings_are_checked_once_when_made():
