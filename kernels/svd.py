@@ -50,7 +50,7 @@ def singular_values(A: np.ndarray) -> np.ndarray:
 _CHOLQR_MAX_RATIO = 1e6
 
 
-def qr_tall(A: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def qr_tall(A: np.ndarray, *, overwrite: bool = False) -> tuple[np.ndarray, np.ndarray]:
     """Thin QR ``A = Q R`` of a tall matrix, ``Q`` (m, c) orthonormal, ``R`` (c, c).
 
     For ``m >= 8 c`` it uses CholeskyQR2 (Fukaya, Nakatsukasa, Yanagisawa &
@@ -65,6 +65,10 @@ def qr_tall(A: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     Parameters
     ----------
     A : (m, c) array
+    overwrite : bool
+        ``A`` (a C-ordered float64 array) may be overwritten: on the
+        CholeskyQR2 path ``Q`` then takes its memory, so the factorization needs
+        no ``m x c`` array besides ``A`` (the caller drops ``A``).
 
     Returns
     -------
@@ -75,17 +79,23 @@ def qr_tall(A: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     m, c = A.shape
     if c == 0 or m < 8 * c:
         return np.linalg.qr(A)
-    factors = []
+    in_place = overwrite and A.flags.c_contiguous and A.flags.writeable
+    R = np.eye(c)
     Q = A
     for _ in range(2):
         try:
             L = np.linalg.cholesky(Q.T @ Q)
+            diag = np.abs(np.diag(L))
+            ok = diag.min() > diag.max() / _CHOLQR_MAX_RATIO
         except np.linalg.LinAlgError:
-            return np.linalg.qr(A)
-        diag = np.abs(np.diag(L))
-        if not diag.min() > diag.max() / _CHOLQR_MAX_RATIO:
-            return np.linalg.qr(A)
-        Q = scipy.linalg.solve_triangular(L, Q.T, lower=True, check_finite=False).T
-        factors.append(L.T)
-    return np.ascontiguousarray(Q), factors[1] @ factors[0]
+            ok = False
+        if not ok:  # Householder on what is left: Q R = (Q' R') R
+            Qh, Rh = np.linalg.qr(Q)
+            return Qh, Rh @ R
+        # Q L^-T: a triangular solve on Q^T (in Q's memory when it may be overwritten)
+        Q = scipy.linalg.solve_triangular(L, Q.T, lower=True, check_finite=False,
+                                          overwrite_b=in_place).T
+        in_place = in_place or Q.flags.c_contiguous  # a copy of A is ours to overwrite
+        R = L.T @ R
+    return np.ascontiguousarray(Q), R
 

@@ -124,11 +124,27 @@ def _timed(fn) -> float:
     return time.perf_counter() - t0
 
 
+def _gemm_rate(width: int, rates: dict) -> float:
+    """The measured float64 matmul rate of the nearest measured width at or above
+    ``width`` (narrow products run slower per FLOP)."""
+    for w in (12, 24, 48):
+        if width <= w:
+            return rates[f"gemm_{w}"]
+    return rates["gemm_48"]
+
+
 def compute_floor(n: int, rank: int, p: int, pp: int, rates: dict) -> float:
-    """Seconds of a pass's dense per-row work at rank ``rank`` at the measured rates."""
-    flops = 2.0 * n * K * (rank + (rank + p) + (rank + pp))
-    gemm = rates["gemm_24"] if rank + p >= 18 else rates["gemm_12"]
-    return flops / gemm + n * K / rates["exp_per_s"]
+    """Seconds of a pass's dense per-row work at rank ``rank`` at the measured rates.
+
+    Three n x K products, each at the rate measured for its width: the scores
+    ``XU (S V^T)`` (width ``rank``), ``R [V, Omega]`` (``rank + p``) and
+    ``R^T X [U, Psi]`` (``rank + pp``), and one exp per score.
+    """
+    secs = 0.0
+    for width in (rank, rank + p, rank + pp):
+        if width:
+            secs += 2.0 * n * K * width / _gemm_rate(width, rates)
+    return secs + n * K / rates["exp_per_s"]
 
 
 # ---------------------------------------------------------------- the cgroup

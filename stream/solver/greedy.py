@@ -57,6 +57,9 @@ from ranktide.passes.budget import (
     FLOOR_QUANTUM,
     Plan,
     cgroup_limit,
+    default_budget,
+    format_bytes,
+    parse_memory,
     peak_resident,
     plan_blocks,
     process_floor,
@@ -102,6 +105,13 @@ __all__ = ["GreedySolver"]
 # 3.75228 (87 s) with 0.2 and 3.74986 (74 s) with 0.5. On the smaller problem a cap of 10
 # inner steps did as well as 0.5 and a cap of 5 stalled the outer loop.
 _INNER_STALL = 0.5
+# Share of a binding budget kept free of the plan: allocator slack and short-lived copies
+# the plan does not itemize (measured at 600k rows, 1 GB: identical runs peaked 40 MiB
+# apart, and up to 2% above the itemized plan at rank 24-34)
+_SLACK_SHARE = 0.05
+# Fewest rows a pass's blocks may have when the budget also holds the widths (rotations,
+# momentum): below it, fewer directions and more rows per block (common practice, no source)
+_MIN_BLOCK_ROWS = 2048
 
 
 class GreedySolver:
@@ -173,6 +183,7 @@ class GreedySolver:
         self._rng = generator_from(self.state.rng_state)
         self._plan_memory()
         self._history: list[dict] = []
+        self._capped: dict[str, int] = {}  # widths the budget cut on the last pass
 
     # ------------------------------------------------------------ set-up
     def _use_columns(self, state: SolverState | None) -> None:
@@ -280,10 +291,13 @@ class GreedySolver:
     def _plan(self, *, rank: int, omega: int, psi: int, keep: bool, dense: bool | None,
               extra: int = 0) -> Plan:
         cfg = self.config
-        return plan_blocks(self.source, budget=cfg.memory, rank=rank, omega_cols=omega,
+        budget = (default_budget() if cfg.memory is None else int(cfg.memory)
+                  if isinstance(cfg.memory, int) else parse_memory(cfg.memory))
+        slack = int(_SLACK_SHARE * budget) if self._binding else 0
+        return plan_blocks(self.source, budget=budget, rank=rank, omega_cols=omega,
                            psi_cols=psi, keep_projections=keep, dense_gradient=dense,
                            backend=cfg.backend, floor=int(self.state.memory_floor or 0),
-                           extra_bytes=extra)
+                           extra_bytes=extra + slack)
 
     def _refine_mode(self, q: int, plan: Plan | None = None) -> str:
         """Where the refinement works, from what the budget leaves.
@@ -396,29 +410,91 @@ class GreedySolver:
             return True  # an explicit lam may start fitting on any pass
         return st.lam_max_settle + 2 >= cfg.lam_max_passes  # the phase's last pass
 
+    def _held_bytes(self, depth: int) -> int:
+        """Arrays held beside the model during a pass that uses ``depth`` momentum factors."""
+        st = self.state
+        # the momentum factors kept; the lam_max products count three times: kept, their
+        # union with the pass's new products, and the Ritz step's rotated copies
+        held = 8 * (self.d * int(sum(st.U_prev_cols[:depth]))
+                    + 3 * (st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size))
+        # the iteration keeps the state as it was (for a rollback) beside the new arrays
+        held += sum(int(getattr(v, "nbytes", 0)) for v in (self._before or {}).values())
+        return held
+
+    def _widths(self, p: int, pp: int, keep: bool) -> tuple[int, int, Plan | None]:
+        """Rotations and momentum factors this pass can hold in the budget.
+
+        The configured widths when they fit; otherwise momentum factors are left
+        out one at a time, then the rotation directions halved, until the model,
+        its accumulators and blocks of at least ``_MIN_BLOCK_ROWS`` rows fit
+        (each step recorded by the caller). Returns ``(rotations, depth, plan)``;
+        the plan is None when even no rotation and no momentum does not fit (the
+        caller then plans again and reports the shortfall).
+        """
+        cfg, st = self.config, self.state
+        rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
+        depth = min(max(0, int(cfg.momentum)), len(st.U_prev_cols))
+        if not self._binding:
+            return rot, depth, None
+        min_rows = min(_MIN_BLOCK_ROWS, max(1, self.n // 8))
+        while True:
+            psi = rot + pp + int(sum(st.U_prev_cols[:depth]))
+            # after the pass, in the room its blocks, cached projections and the
+            # accumulators' compensation and block buffers leave: the refinement's new
+            # factor (at most r + psi wide) and its rotation, and the next momentum factors
+            tail = 8 * self.d * (2 * (st.rank + psi) + st.rank
+                                 + int(sum(st.U_prev_cols[:depth])))
+            try:
+                plan = self._plan(rank=st.rank, omega=p, psi=psi, keep=keep, dense=self.dense,
+                                  extra=self._held_bytes(depth))
+                br = plan.breakdown
+                freed = br["blocks"] + br["projections"] + 2 * br["accumulators"] // 3
+                if plan.block_rows >= min_rows and (not keep or tail <= freed):
+                    return rot, depth, plan
+            except ConfigError:
+                pass
+            if depth > 0:
+                depth -= 1
+            elif rot > 0:
+                rot //= 2
+            else:
+                return rot, depth, None
+
     def _run_pass(self):
         cfg, st = self.config, self.state
         if self._binding:
             release_freed_memory()
-        rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
         p, pp = cfg.power_size, cfg.expand_size
         if st.phase == "lam_max":  # wider blocks at W = 0 (see lam_max_width)
             p, pp = max(p, cfg.lam_max_width), max(pp, cfg.lam_max_width)
+        keep = self._will_refine_after()
+        rot, depth, fits = self._widths(max(p, st.Omega.shape[1]), pp, keep)
+        if fits is None and self._binding:
+            raise ConfigError(
+                f"memory budget {format_bytes(self._budget)}: at rank {st.rank} on "
+                f"{self.d} features the model, its accumulators and blocks of "
+                f"{min(_MIN_BLOCK_ROWS, max(1, self.n // 8))} rows do not fit above the "
+                f"process floor {format_bytes(int(st.memory_floor or 0))}, even with no "
+                "rotation or momentum directions; raise --memory, or raise lam to keep the "
+                "rank lower (the checkpoints so far are kept)")
+        self._capped = {}
+        if depth < min(max(0, int(cfg.momentum)), len(st.U_prev_cols)):
+            self._capped["momentum_factors"] = depth
+            # the factors left out are dropped from the state: the budget cannot hold them
+            st.U_prev = np.ascontiguousarray(st.U_prev[:, :int(sum(st.U_prev_cols[:depth]))])
+            st.U_prev_cols = list(st.U_prev_cols[:depth])
+        full_rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
+        if rot < full_rot:
+            self._capped["rotations"] = rot
         st.Psi = fill(st.Psi, st.U, pp, self._rng, cap=rot + pp)
         st.Omega = fill(st.Omega, st.V, p, self._rng)
-        for U_old in st.momentum_factors()[: max(0, int(cfg.momentum))]:
+        for U_old in st.momentum_factors()[:depth]:
             st.Psi = np.hstack([st.Psi, momentum_directions(U_old, np.hstack([st.U, st.Psi]))])
         # keep the generator's position in the state, so a checkpoint resumes the same draws
         st.rng_state = self._rng.bit_generator.state
-        keep = self._will_refine_after()
         # re-plan for this pass: its widths, the arrays held beside the model (momentum
         # factors, the lam_max products) and the floor; all kept in the state
-        # the lam_max products count three times: kept, their union with the pass's new
-        # products, and the Ritz step's rotated copies
-        held = 8 * (st.U_prev.size + 3 * (st.K_R.size + st.K_GR.size + st.K_L.size
-                                          + st.K_GtL.size))
-        # the iteration keeps the state as it was (for a rollback) beside the new arrays
-        held += sum(int(getattr(v, "nbytes", 0)) for v in (self._before or {}).values())
+        held = self._held_bytes(depth)
         q = st.rank + st.Psi.shape[1]
         plan = self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
                           keep=keep, dense=self.dense, extra=held)
@@ -508,17 +584,20 @@ class GreedySolver:
 
     def _refine(self, req, res, rel_gap: float) -> dict:
         cfg, st = self.config, self.state
-        Q = np.hstack([req.U, req.Psi])
         r_old = req.U.shape[1]
-        q = Q.shape[1]
+        q = r_old + req.Psi.shape[1]
         proj = res.projections
         N0 = np.zeros((q, self.k))
         N0[:r_old] = req.s[:, None] * req.V.T
         t0 = time.perf_counter()
+        # W != 0 from here: the lam_max products are spent, and their room (counted three
+        # times in the pass's plan) goes to the refinement's sample
+        spent = 3 * 8 * (st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size)
+        st.set_krylov(None)
         if self._binding:
             release_freed_memory()  # the pass's blocks are gone: give their pages back
         mode = self._refine_mode(q)
-        out, sample_info = self._run_refinement(req, res, proj, mode, N0, rel_gap)
+        out, sample_info = self._run_refinement(req, res, proj, mode, N0, rel_gap, spent)
         secs = time.perf_counter() - t0
         if isinstance(proj, list):
             # the n x q projections are spent: free them before the d x q work below (at 600k
@@ -528,11 +607,14 @@ class GreedySolver:
         keep = st.momentum_factors()[: depth - 1] if depth > 1 else []
         st.U_prev = np.hstack([req.U, *keep]) if depth else np.zeros((self.d, 0))
         st.U_prev_cols = [req.U.shape[1], *(f.shape[1] for f in keep)] if depth else []
-        U_new = Q @ out.A
+        # Q A with Q = [U, Psi], without a d x q copy of Q
+        U_new = req.U @ out.A[:r_old] + req.Psi @ out.A[r_old:]
         # re-orthonormalize against rounding of the product Q A
-        Uq, Ur = qr_tall(U_new)
+        Uq, Ur = qr_tall(U_new, overwrite=True)
+        del U_new
         uu, ss, vvt = svd(Ur * out.s)
         st.U = Uq @ uu
+        del Uq
         st.s = ss
         st.V = out.B @ vvt.T
         keep = st.s > 0
@@ -540,7 +622,6 @@ class GreedySolver:
         st.b = out.b
         st.objective = out.objective
         st.outer_iterations += 1
-        st.set_krylov(None)  # W != 0 from here: the lam_max products are spent
         new = np.sum(out.A[r_old:] ** 2, axis=0) > 0.5 if out.A.shape[1] else np.zeros(0, bool)
         return {"refine_iterations": out.iterations, "refine_seconds": secs, "refine_mode": mode,
                 "refine_converged": out.converged, "refine_gap": out.gap_estimate,
@@ -548,8 +629,10 @@ class GreedySolver:
                 "atoms_sv": [float(x) for x in out.s[new]],
                 "objective_after": out.objective, **sample_info}
 
-    def _run_refinement(self, req, res, proj, mode: str, N0: np.ndarray, rel_gap: float):
-        """Exact or sampled refinement (:mod:`ranktide.solver.refinement`) on the projections."""
+    def _run_refinement(self, req, res, proj, mode: str, N0: np.ndarray, rel_gap: float,
+                        spent: int = 0):
+        """Exact or sampled refinement (:mod:`ranktide.solver.refinement`) on the projections
+        (``spent``: bytes the plan held that are free again)."""
         cfg, st = self.config, self.state
         q = N0.shape[0]
         if mode == "scratch":
@@ -559,7 +642,7 @@ class GreedySolver:
         # what the budget leaves beside the floor, the model and the cached projections
         # (the pass's blocks and accumulators are gone)
         room = self.plan.work_bytes - self.plan.breakdown.get("model", 0) \
-            - self.plan.breakdown.get("projections", 0)
+            - self.plan.breakdown.get("projections", 0) + spent
         rows = sample_rows(n=self.n, q=q, k=self.k, loss=cfg.loss, budget=self._budget,
                            configured=cfg.refine_sample_rows, grown=st.refine_sample_rows,
                            room=room)
@@ -644,6 +727,8 @@ class GreedySolver:
         rec: dict[str, Any] = {"pass": st.passes, "phase": phase_in, "rank_before": req.rank,
                                "omega_cols": int(req.Omega.shape[1]),
                                "psi_cols": int(req.Psi.shape[1])}
+        if self._capped:  # the budget held fewer rotations / momentum factors than set
+            rec["widths_capped"] = dict(self._capped)
         sigma1 = self._sigma1(req, res)
         if self._at_b0(req):
             sigma1 = self._krylov_estimate(req, res, sigma1, rec)

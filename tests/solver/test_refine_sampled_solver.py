@@ -60,7 +60,7 @@ def test_pass_gradient_on_the_subspace_matches_the_projections():
     seen = {}
     orig = solver._run_refinement
 
-    def spy(req, res, proj, mode, N0, rel_gap):
+    def spy(req, res, proj, mode, N0, rel_gap, *rest):
         A = np.concatenate([p.XQ for p in proj])
         Z = A @ N0 + req.b
         P = np.exp(Z - Z.max(1, keepdims=True))
@@ -68,7 +68,7 @@ def test_pass_gradient_on_the_subspace_matches_the_projections():
         P[np.arange(len(y)), y] -= 1.0
         seen["numpy"] = A.T @ P / len(y)
         seen["pass"] = np.hstack([res.Gt_U, res.Gt_Psi]).T
-        return orig(req, res, proj, mode, N0, rel_gap)
+        return orig(req, res, proj, mode, N0, rel_gap, *rest)
 
     solver._run_refinement = spy
     for _ in range(6):
