@@ -233,15 +233,17 @@ class ProductBuffers:
     conj: np.ndarray = field(default_factory=lambda: np.zeros(1))
 
     @classmethod
-    def zeros(cls, ops: BlockOperands, *, dense_G: bool = False) -> ProductBuffers:
-        """Zeroed buffers shaped for ``ops``."""
+    def zeros(cls, ops: BlockOperands, *, dense_G: bool = False,
+              d_rows: bool = True) -> ProductBuffers:
+        """Zeroed buffers shaped for ``ops`` (``d_rows=False``: no ``d x (r + p)``
+        ``G_VO``, for a caller that keeps ``X^T (R [V, Omega])`` as a pending term)."""
         d, k, r = ops.d, ops.k, ops.r
         return cls(
             loss_sum=np.zeros(1),
             weight_sum=np.zeros(1),
             n_rows=np.zeros(1, dtype=np.int64),
             grad_b=np.zeros(k),
-            G_VO=np.zeros((d, ops.VO.shape[1])),
+            G_VO=np.zeros((d if d_rows else 0, ops.VO.shape[1])),
             Gt_Psi=np.zeros((k, ops.p_psi)),
             Gt_U=np.zeros((k, r)),
             gw=np.zeros(1),

@@ -359,7 +359,7 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
     t0 = time.perf_counter()
     n = int(block.stop - block.start)
     k, m = st.VO.shape
-    bufs = ProductBuffers.zeros(st.ops)
+    bufs = ProductBuffers.zeros(st.ops, d_rows=False)  # X^T (R [V, Omega]) stays pending
     X = block.X
     key = (X.shape[1], st.ops.Q.shape[1], m, st.dense_gradient)
     path = CHOOSER.pick(key, X.nnz, X.shape[1], sorted_ids=bool(X.has_sorted_indices))

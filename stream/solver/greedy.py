@@ -90,6 +90,7 @@ from ranktide.solver.subspace import (
     sigma1_lower_bound,
     top_left,
 )
+from ranktide.solver.widths import min_block_rows, shrink_widths
 from ranktide.store.column_view import ColumnView, expand_rows
 from ranktide.store.memory_source import as_source
 
@@ -109,9 +110,6 @@ _INNER_STALL = 0.5
 # the plan does not itemize (measured at 600k rows, 1 GB: identical runs peaked 40 MiB
 # apart, and up to 2% above the itemized plan at rank 24-34)
 _SLACK_SHARE = 0.05
-# Fewest rows a pass's blocks may have when the budget also holds the widths (rotations,
-# momentum): below it, fewer directions and more rows per block (common practice, no source)
-_MIN_BLOCK_ROWS = 2048
 
 
 class GreedySolver:
@@ -325,7 +323,19 @@ class GreedySolver:
         if 8 * n * (2 * q + 6 * k) <= left:
             return "memory"
         # the streamed refinement's per-block temporaries (about 3 x rows x (k + q)) take
-        # the room the pass's blocks leave
+        # the room the pass's blocks leave; but projections held in memory that crowd out
+        # the row sample leave only the exact refinement, tens of streams over all n rows
+        # (measured at 600k rows: 35 s against 0.8 s sampled): they go to scratch instead
+        model = plan.breakdown.get("model", 0)
+        cfg, st = self.config, self.state
+
+        def sample(room: int) -> int:
+            return sample_rows(n=n, q=q, k=k, loss=cfg.loss, budget=self._budget,
+                               configured=cfg.refine_sample_rows,
+                               grown=st.refine_sample_rows, room=room)
+
+        if sample(plan.work_bytes - model - 8 * n * q) == 0 and sample(plan.work_bytes - model):
+            return "scratch"
         return "blocks"
 
     def _scratch_for_pass(self) -> str:
@@ -422,43 +432,19 @@ class GreedySolver:
         return held
 
     def _widths(self, p: int, pp: int, keep: bool) -> tuple[int, int, Plan | None]:
-        """Rotations and momentum factors this pass can hold in the budget.
-
-        The configured widths when they fit; otherwise momentum factors are left
-        out one at a time, then the rotation directions halved, until the model,
-        its accumulators and blocks of at least ``_MIN_BLOCK_ROWS`` rows fit
-        (each step recorded by the caller). Returns ``(rotations, depth, plan)``;
-        the plan is None when even no rotation and no momentum does not fit (the
-        caller then plans again and reports the shortfall).
-        """
+        """Rotations and momentum factors this pass can hold in a binding budget
+        (:func:`ranktide.solver.widths.shrink_widths`; the configured ones when the
+        budget does not bind, with no plan)."""
         cfg, st = self.config, self.state
         rot = st.rank if cfg.rotation_size is None else min(st.rank, cfg.rotation_size)
         depth = min(max(0, int(cfg.momentum)), len(st.U_prev_cols))
         if not self._binding:
             return rot, depth, None
-        min_rows = min(_MIN_BLOCK_ROWS, max(1, self.n // 8))
-        while True:
-            psi = rot + pp + int(sum(st.U_prev_cols[:depth]))
-            # after the pass, in the room its blocks, cached projections and the
-            # accumulators' compensation and block buffers leave: the refinement's new
-            # factor (at most r + psi wide) and its rotation, and the next momentum factors
-            tail = 8 * self.d * (2 * (st.rank + psi) + st.rank
-                                 + int(sum(st.U_prev_cols[:depth])))
-            try:
-                plan = self._plan(rank=st.rank, omega=p, psi=psi, keep=keep, dense=self.dense,
-                                  extra=self._held_bytes(depth))
-                br = plan.breakdown
-                freed = br["blocks"] + br["projections"] + 2 * br["accumulators"] // 3
-                if plan.block_rows >= min_rows and (not keep or tail <= freed):
-                    return rot, depth, plan
-            except ConfigError:
-                pass
-            if depth > 0:
-                depth -= 1
-            elif rot > 0:
-                rot //= 2
-            else:
-                return rot, depth, None
+        return shrink_widths(
+            lambda psi, dep: self._plan(rank=st.rank, omega=p, psi=psi, keep=keep,
+                                        dense=self.dense, extra=self._held_bytes(dep)),
+            d=self.d, n=self.n, rank=st.rank, rotations=rot, expand=pp,
+            momentum_cols=st.U_prev_cols, depth=depth, keep=keep)
 
     def _run_pass(self):
         cfg, st = self.config, self.state
@@ -473,7 +459,7 @@ class GreedySolver:
             raise ConfigError(
                 f"memory budget {format_bytes(self._budget)}: at rank {st.rank} on "
                 f"{self.d} features the model, its accumulators and blocks of "
-                f"{min(_MIN_BLOCK_ROWS, max(1, self.n // 8))} rows do not fit above the "
+                f"{min_block_rows(self.n)} rows do not fit above the "
                 f"process floor {format_bytes(int(st.memory_floor or 0))}, even with no "
                 "rotation or momentum directions; raise --memory, or raise lam to keep the "
                 "rank lower (the checkpoints so far are kept)")
