@@ -182,6 +182,7 @@ class GreedySolver:
         self._plan_memory()
         self._history: list[dict] = []
         self._capped: dict[str, int] = {}  # widths the budget cut on the last pass
+        self._depth_next = max(0, int(config.momentum))  # momentum factors the refinement keeps
 
     # ------------------------------------------------------------ set-up
     def _use_columns(self, state: SolverState | None) -> None:
@@ -464,6 +465,10 @@ class GreedySolver:
                 "rotation or momentum directions; raise --memory, or raise lam to keep the "
                 "rank lower (the checkpoints so far are kept)")
         self._capped = {}
+        # the refinement after this pass keeps one factor more than it used, not all the
+        # configured ones: kept beyond the budget, they were cut again on every other pass
+        self._depth_next = min(max(0, int(cfg.momentum)),
+                               depth + 1 if self._binding else max(0, int(cfg.momentum)))
         if depth < min(max(0, int(cfg.momentum)), len(st.U_prev_cols)):
             self._capped["momentum_factors"] = depth
             # the factors left out are dropped from the state: the budget cannot hold them
@@ -569,7 +574,7 @@ class GreedySolver:
         return float(min(1e-2, max(0.1 * rel_gap, 0.05 * self.config.tol)))
 
     def _refine(self, req, res, rel_gap: float) -> dict:
-        cfg, st = self.config, self.state
+        st = self.state
         r_old = req.U.shape[1]
         q = r_old + req.Psi.shape[1]
         proj = res.projections
@@ -589,7 +594,7 @@ class GreedySolver:
             # the n x q projections are spent: free them before the d x q work below (at 600k
             # rows they were alive through it, the peak's last 16 MiB over the budget)
             proj.clear()
-        depth = max(0, int(cfg.momentum))
+        depth = self._depth_next
         keep = st.momentum_factors()[: depth - 1] if depth > 1 else []
         st.U_prev = np.hstack([req.U, *keep]) if depth else np.zeros((self.d, 0))
         st.U_prev_cols = [req.U.shape[1], *(f.shape[1] for f in keep)] if depth else []

@@ -52,7 +52,7 @@ def test_streamed_refinement_matches_cvxpy_and_in_memory(loss, where, tmp_path):
         src = ScratchProjections(tmp_path / "scratch", k)
         for i, (XQ, t, wb) in enumerate(blocks):
             src.add(i, XQ, t, wb)
-        assert len(list((tmp_path / "scratch").glob("xq-*.npz"))) == len(blocks)
+        assert len(list((tmp_path / "scratch").glob("xq-*.npy"))) == len(blocks)
     cfg = RefineSettings(loss=loss, lam=lam, tol=1e-9, max_iter=4000)
     res = refine_streamed(src, np.zeros((q, k)), np.zeros(k), cfg)
     con = solve_conic(A, Y, loss=loss, lam=lam, weights=w, n_outputs=k)  # CVXPY + Clarabel
