@@ -55,8 +55,10 @@ def test_a_damaged_scratch_file_is_one_clear_error(tmp_path):
     with pytest.raises(StoreError, match="scratch file"):
         read_projection_block(path)
     obj = tmp_path / "obj.npy"
-    with open(obj, "wb") as fh:  # a pickled record is refused, not loaded
+    with open(obj, "wb") as fh:  # a record whose header says object dtype is never unpickled
         np.lib.format.write_array(fh, np.array(["XQ"]))
-        np.lib.format.write_array(fh, np.array([{}], dtype=object), allow_pickle=True)
+        np.lib.format.write_array_header_2_0(
+            fh, {"descr": "|O", "fortran_order": False, "shape": (1,)})
+        fh.write(b"\x00" * 16)
     with pytest.raises(StoreError, match="scratch file"):
         read_projection_block(obj)
