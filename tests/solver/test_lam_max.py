@@ -77,7 +77,7 @@ def test_stopped_at_w0_says_so_and_reports_the_objective():
 
 
 def test_rank0_passes_keep_no_projections_and_the_deadline_cuts_a_pass(monkeypatch):
-    monkeypatch.setattr("ranktide.solver.greedy.process_floor", lambda: 0)  # tiny budgets
+    monkeypatch.setattr("ranktide.solver.memory_plan.process_floor", lambda: 0)  # tiny budgets
     X, Y, _ = _clustered(4, n=600)
     seen = []
 

@@ -96,7 +96,7 @@ def test_training_under_a_small_budget_streams_the_refinement(loss, tmp_path, mo
     reach the optimum; the scratch files are removed afterwards. The process floor is
     set to 0 here, so the budgets count the solver's own arrays alone (the floor itself
     is tested in tests/solver/test_memory_budget.py)."""
-    monkeypatch.setattr("ranktide.solver.greedy.process_floor", lambda: 0)
+    monkeypatch.setattr("ranktide.solver.memory_plan.process_floor", lambda: 0)
     import sys
     from pathlib import Path
 
