@@ -48,7 +48,7 @@ from ranktide.kernels.sparse import csr_t_matmul_accumulate
 from ranktide.losses import check_loss_source, get_loss
 from ranktide.passes.engine import PassProfile, phase, run_pass
 from ranktide.passes.kernel_path import CHOOSER
-from ranktide.passes.projections import BackgroundWriter, write_projection_block
+from ranktide.passes.projections import write_projection_block
 from ranktide.store.memory_source import as_source
 
 __all__ = [
@@ -307,7 +307,6 @@ class _State:
     dense_gradient: bool
     where: str
     projections_dir: str | None = None
-    writer: Any = None  # BackgroundWriter of the scratch projections (local backends)
 
 
 def _state(req: PassRequest, where: str) -> _State:
@@ -336,10 +335,6 @@ def _state(req: PassRequest, where: str) -> _State:
         dense_gradient=req.dense_gradient,
         where=where,
     )
-
-
-#: Pass backends that run the block function in this process (a background writer can serve)
-LOCAL_BACKENDS = ("serial", "threads")
 
 
 def _xt_accumulate(X: Any, D: np.ndarray, out: np.ndarray) -> None:
@@ -383,8 +378,8 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
                     row_offset=int(block.start), where=st.where)
     proj = None
     if st.keep_projections and st.projections_dir is not None:
-        write = st.writer.submit if st.writer is not None else write_projection_block
-        file = write(st.projections_dir, int(block.start), XQ, block.targets, block.weights)
+        file = write_projection_block(st.projections_dir, int(block.start), XQ, block.targets,
+                                      block.weights)
         proj = [Projection(start=int(block.start), stop=int(block.stop), XQ=None, targets=None,
                            weights=None, path=str(file))]
     elif st.keep_projections:
@@ -603,33 +598,20 @@ def gradient_pass(
             raise InputError(f"{where}: has no rows")
         prof = PassProfile() if profile is True else (profile or None)
         st = _state(request, where)
-        # scratch projections are written on a background thread, overlapped with the
-        # blocks' compute (on this machine's backends; a cluster's workers write their own)
-        writer = None
-        if st.keep_projections and st.projections_dir is not None and backend in LOCAL_BACKENDS:
-            writer = BackgroundWriter()
-            st = replace(st, writer=writer)
-        try:
-            acc = run_pass(
-                src,
-                block_products_kernels,
-                combine_partials,
-                state=st,
-                backend=backend,
-                block_rows=block_rows,
-                block_bytes=block_bytes,
-                n_threads=n_threads,
-                profile=prof,
-                progress=progress,
-                desc="gradient pass",
-                should_stop=should_stop,
-            )
-        except BaseException:
-            if writer is not None:
-                writer.abandon()
-            raise
-        if writer is not None:
-            writer.close()  # every block's file is complete before the pass returns
+        acc = run_pass(
+            src,
+            block_products_kernels,
+            combine_partials,
+            state=st,
+            backend=backend,
+            block_rows=block_rows,
+            block_bytes=block_bytes,
+            n_threads=n_threads,
+            profile=prof,
+            progress=progress,
+            desc="gradient pass",
+            should_stop=should_stop,
+        )
         acc = combine_partials([acc])  # adds the last pending terms (a one-block pass)
         return _finalize(acc, st, prof, where)
     finally:

@@ -9,8 +9,6 @@ The pass writes them, so this module owns their file format.
 from __future__ import annotations
 
 import os
-import queue
-import threading
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import Any
@@ -20,7 +18,7 @@ import scipy.sparse as sp
 from ranktide.errors import ConfigError, StoreError
 
 __all__ = ["MemoryProjections", "ScratchProjections", "write_projection_block",
-           "read_projection_block", "projection_path", "BackgroundWriter"]
+           "read_projection_block"]
 
 
 class MemoryProjections:
@@ -129,7 +127,7 @@ def write_projection_block(directory: str | os.PathLike, start: int, XQ: np.ndar
     if weights is not None:
         arrays["w"] = np.asarray(weights)
     d = Path(directory)
-    path = projection_path(d, start)
+    path = d / f"xq-{int(start):012d}.npy"
     names = np.array(list(arrays))  # fixed-width unicode: no pickle
     try:
         d.mkdir(parents=True, exist_ok=True)
@@ -151,58 +149,3 @@ def read_projection_block(path: str | os.PathLike) -> dict[str, np.ndarray]:
     except (OSError, ValueError) as exc:
         raise StoreError(f"{path}: cannot read the refinement's scratch file ({exc}); the "
                          "scratch directory was changed during the run; train again") from exc
-
-
-def projection_path(directory: str | os.PathLike, start: int) -> Path:
-    """The scratch file of the block starting at row ``start`` (names sort in row order)."""
-    return Path(directory) / f"xq-{int(start):012d}.npy"
-
-
-class BackgroundWriter:
-    """Writes projection blocks on one background thread while the pass computes on.
-
-    :meth:`submit` queues a block and returns its file's path at once; at most
-    ``depth`` blocks wait (their arrays stay alive until written, so the
-    memory held beyond the pass's plan is ``depth + 1`` blocks of projections).
-    The caller must not change a submitted block's arrays. :meth:`close` waits
-    for the last write and raises the first write error; :meth:`abandon` waits
-    and drops errors (the pass is failing for another reason).
-    """
-
-    def __init__(self, depth: int = 1) -> None:
-        self._queue: queue.Queue = queue.Queue(maxsize=max(1, int(depth)))
-        self._error: BaseException | None = None
-        self._thread = threading.Thread(target=self._run, name="ranktide-scratch-writer",
-                                        daemon=True)
-        self._thread.start()
-
-    def submit(self, directory: str | os.PathLike, start: int, XQ: np.ndarray, targets: Any,
-               weights: np.ndarray | None) -> Path:
-        """Queue one block (see :func:`write_projection_block`); returns its path."""
-        if self._error is not None:
-            raise self._error
-        self._queue.put((directory, start, XQ, targets, weights))
-        return projection_path(directory, start)
-
-    def _run(self) -> None:
-        while True:
-            item = self._queue.get()
-            if item is None:
-                return
-            if self._error is None:
-                try:
-                    write_projection_block(*item)
-                except BaseException as exc:  # handed to the pass by submit / close
-                    self._error = exc
-
-    def close(self) -> None:
-        """Wait for every queued write; raise the first error."""
-        self._queue.put(None)
-        self._thread.join()
-        if self._error is not None:
-            raise self._error
-
-    def abandon(self) -> None:
-        """Wait for the thread to end, ignoring write errors."""
-        self._queue.put(None)
-        self._thread.join()

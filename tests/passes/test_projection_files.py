@@ -12,7 +12,6 @@ import pytest
 import scipy.sparse as sp
 from ranktide.errors import StoreError
 from ranktide.passes.projections import (
-    BackgroundWriter,
     ScratchProjections,
     read_projection_block,
     write_projection_block,
@@ -63,23 +62,3 @@ def test_a_damaged_scratch_file_is_one_clear_error(tmp_path):
         fh.write(b"\x00" * 16)
     with pytest.raises(StoreError, match="scratch file"):
         read_projection_block(obj)
-
-
-def test_background_writer_writes_every_block_and_reports_a_failure(tmp_path):
-    rng = np.random.default_rng(4)
-    writer = BackgroundWriter(depth=1)
-    blocks, paths = [], []
-    for start in range(0, 50, 10):
-        XQ, y = rng.standard_normal((10, 3)), rng.integers(0, 4, 10).astype(np.int32)
-        blocks.append((XQ, y))
-        paths.append(writer.submit(tmp_path / "scratch", start, XQ, y, None))
-    writer.close()  # every file is complete once close returns
-    for (XQ, y), path in zip(blocks, paths, strict=True):
-        z = read_projection_block(path)
-        assert np.array_equal(z["XQ"], XQ) and np.array_equal(z["y"], y) and "w" not in z
-    # a directory that cannot be made (a file is in the way): the error comes out of close
-    (tmp_path / "taken").write_text("a file, not a directory")
-    bad = BackgroundWriter()
-    bad.submit(tmp_path / "taken", 0, np.ones((2, 2)), np.zeros(2, np.int32), None)
-    with pytest.raises(StoreError, match="scratch file"):
-        bad.close()
