@@ -68,7 +68,7 @@ from ranktide.solver.config import SolverConfig
 from ranktide.solver.memory_plan import MemoryPlanning
 from ranktide.solver.refine import _blas_one_thread
 from ranktide.solver.refine_common import RefineSettings
-from ranktide.solver.refinement import RefineBar, refine_projections, sample_rows
+from ranktide.solver.refinement import RefineBar, refine_projections
 from ranktide.solver.state import (
     SolverResult,
     SolverState,
@@ -469,9 +469,7 @@ class GreedySolver(MemoryPlanning):
         # (the pass's blocks and accumulators are gone)
         room = self.plan.work_bytes - self.plan.breakdown.get("model", 0) \
             - self.plan.breakdown.get("projections", 0) + spent
-        rows = sample_rows(n=self.n, q=q, k=self.k, loss=cfg.loss, budget=self._budget,
-                           configured=cfg.refine_sample_rows, grown=st.refine_sample_rows,
-                           room=room)
+        rows = self._sample_rows(q, room)
         bar = RefineBar(self.progress, st.passes)
         hook = self.refine_progress
 

@@ -17,7 +17,6 @@ from ranktide.losses import get_loss
 from ranktide.passes.budget import (
     FLOOR_QUANTUM,
     Plan,
-    default_budget,
     parse_memory,
     plan_blocks,
     process_floor,
@@ -114,8 +113,7 @@ class MemoryPlanning:
     def _plan(self, *, rank: int, omega: int, psi: int, keep: bool, dense: bool | None,
               extra: int = 0) -> Plan:
         cfg = self.config
-        budget = (default_budget() if cfg.memory is None else int(cfg.memory)
-                  if isinstance(cfg.memory, int) else parse_memory(cfg.memory))
+        budget = parse_memory(cfg.memory)  # None: the default budget
         slack = int(_SLACK_SHARE * budget) if self._binding else 0
         return plan_blocks(self.source, budget=budget, rank=rank, omega_cols=omega,
                            psi_cols=psi, keep_projections=keep, dense_gradient=dense,
@@ -152,16 +150,18 @@ class MemoryPlanning:
         # the row sample leave only the exact refinement, tens of streams over all n rows
         # (measured at 600k rows: 35 s against 0.8 s sampled): they go to scratch instead
         model = plan.breakdown.get("model", 0)
-        cfg, st = self.config, self.state
-
-        def sample(room: int) -> int:
-            return sample_rows(n=n, q=q, k=k, loss=cfg.loss, budget=self._budget,
-                               configured=cfg.refine_sample_rows,
-                               grown=st.refine_sample_rows, room=room)
-
-        if sample(plan.work_bytes - model - 8 * n * q) == 0 and sample(plan.work_bytes - model):
+        if (self._sample_rows(q, plan.work_bytes - model - 8 * n * q) == 0
+                and self._sample_rows(q, plan.work_bytes - model)):
             return "scratch"
         return "blocks"
+
+    def _sample_rows(self, q: int, room: int) -> int:
+        """Rows of the refinement's sample when ``room`` bytes are left to it
+        (:func:`ranktide.solver.refinement.sample_rows`)."""
+        cfg = self.config
+        return sample_rows(n=self.n, q=q, k=self.k, loss=cfg.loss, budget=self._budget,
+                           configured=cfg.refine_sample_rows,
+                           grown=self.state.refine_sample_rows, room=room)
 
     def _refine_block_rows(self, plan: Plan, q: int) -> int:
         """Most rows per block for the refinement streamed over in-memory projection

@@ -20,9 +20,8 @@ from dataclasses import replace
 from typing import Any
 
 import numpy as np
-from ranktide.kernels.svd import svd
 from ranktide.losses import Loss, get_loss
-from ranktide.solver.apg import ApgProgress
+from ranktide.solver.apg import ApgProgress, svt
 from ranktide.solver.refine import refine
 from ranktide.solver.refine_common import RefineResult, RefineSettings
 from ranktide.solver.refine_sample import draw_sample, full_objective, gather_rows, refine_sampled
@@ -125,9 +124,7 @@ def backtrack(blocks: Any, N0: np.ndarray, b0: np.ndarray, answer: RefineResult,
     for t in _BACKTRACK_STEPS:
         N = N0 + t * (answer.N - N0)
         b = b0 + t * (answer.b - b0)
-        A, s, Bt = svd(N)
-        keep = s > 0
-        A, s, B = A[:, keep], s[keep], Bt[keep].T
+        A, s, B = svt(N, 0.0)  # the factors with positive singular values
         nuc = float(s.sum())
         F = full_objective(blocks, N, b, nuc, cfg)
         if F < objective:
