@@ -97,9 +97,14 @@ class PassRequest:
         Keep ``X [U, Psi]`` of every block (with its targets and weights).
     projections_dir : str, optional
         With ``keep_projections``: write each block's projections to a
-        scratch ``.npz`` file in this directory (see
+        scratch ``.npy`` record in this directory (see
         :class:`ranktide.passes.projections.ScratchProjections`) instead of keeping
         them in memory; the result's projections then name the files.
+    sample_rows : (m,) int array, optional
+        With ``keep_projections``: keep in memory only these rows (global
+        indices, sorted, distinct) of the projections, targets and weights;
+        each block's :class:`Projection` then holds its rows among them
+        (``Projection.rows``), an empty one when it has none.
     dense_gradient : bool
         Also accumulate the dense ``G`` (d x k).
     dual_scale : float
@@ -122,9 +127,19 @@ class PassRequest:
     dense_gradient: bool = False
     projections_dir: str | None = None
     dual_scale: float = 0.0
+    sample_rows: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         get_loss(self.loss)
+        if self.sample_rows is not None:
+            idx = np.asarray(self.sample_rows)
+            if (idx.ndim != 1 or idx.dtype.kind not in "iu" or (idx.size and idx[0] < 0)
+                    or np.any(np.diff(idx) <= 0)):
+                raise ConfigError("pass request: sample_rows must be sorted distinct row "
+                                  "indices >= 0")
+            if self.projections_dir is not None:
+                raise ConfigError("pass request: give sample_rows or projections_dir, not both")
+            object.__setattr__(self, "sample_rows", idx.astype(np.int64))
         if not 0.0 <= float(self.dual_scale) <= 1.0:
             raise ConfigError(f"gradient pass: dual_scale {self.dual_scale!r} must lie in [0, 1]")
         U, s, V, b = (
@@ -182,7 +197,9 @@ class Projection:
     ``XQ`` is float64 ``(stop - start, r + p')``; ``targets`` and ``weights``
     are the block's own (raw weights, float32 or None). When the pass wrote
     them to a scratch file, ``XQ``, ``targets`` and ``weights`` are None and
-    ``path`` names the file.
+    ``path`` names the file. When the pass kept a row sample
+    (``PassRequest.sample_rows``), ``rows`` holds the global indices of the
+    block's rows kept, and ``XQ``, ``targets`` and ``weights`` those rows only.
     """
 
     start: int
@@ -191,6 +208,7 @@ class Projection:
     targets: Any
     weights: np.ndarray | None
     path: str | None = None
+    rows: np.ndarray | None = None
 
 
 def _own(a: Any) -> Any:
@@ -307,6 +325,7 @@ class _State:
     dense_gradient: bool
     where: str
     projections_dir: str | None = None
+    sample_rows: np.ndarray | None = None
 
 
 def _state(req: PassRequest, where: str) -> _State:
@@ -332,6 +351,7 @@ def _state(req: PassRequest, where: str) -> _State:
         V=req.V,
         keep_projections=req.keep_projections,
         projections_dir=req.projections_dir,
+        sample_rows=req.sample_rows,
         dense_gradient=req.dense_gradient,
         where=where,
     )
@@ -377,7 +397,9 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
         block_dense(XQ, block.targets, block.weights, st.ops, bufs, out_RVO=D, out_R=R,
                     row_offset=int(block.start), where=st.where)
     proj = None
-    if st.keep_projections and st.projections_dir is not None:
+    if st.keep_projections and st.sample_rows is not None:
+        proj = [_sampled_projection(block, XQ, st.sample_rows)]
+    elif st.keep_projections and st.projections_dir is not None:
         file = write_projection_block(st.projections_dir, int(block.start), XQ, block.targets,
                                       block.weights)
         proj = [Projection(start=int(block.start), stop=int(block.stop), XQ=None, targets=None,
@@ -407,6 +429,17 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
         projections=proj,
         conj=float(bufs.conj[0]),
     )
+
+
+def _sampled_projection(block: Any, XQ: np.ndarray, sample: np.ndarray) -> Projection:
+    """The block's rows among ``sample`` (sorted global indices), as copies of their own."""
+    start, stop = int(block.start), int(block.stop)
+    a, e = np.searchsorted(sample, [start, stop])
+    rows = sample[a:e]
+    local = rows - start
+    w = block.weights
+    return Projection(start=start, stop=stop, XQ=XQ[local], targets=block.targets[local],
+                      weights=None if w is None else np.asarray(w)[local], rows=rows.copy())
 
 
 def _add_term(acc: _Partial, name: str, X: Any, D: np.ndarray) -> None:

@@ -10,7 +10,10 @@ from ranktide.errors import ConfigError
 from ranktide.losses import get_loss
 from ranktide.solver.penalty import check_lam
 
-__all__ = ["SolverConfig"]
+__all__ = ["SolverConfig", "REFINE_CHECKS"]
+
+#: How a sampled refinement is checked (see ``SolverConfig.refine_check``).
+REFINE_CHECKS = ("next_pass", "at_once")
 
 
 @dataclass(frozen=True)
@@ -113,6 +116,21 @@ class SolverConfig:
         data has at least four times as many, softmax and multilabel), 0 always
         refines exactly, ``m > 0`` samples ``m`` rows whenever the data has more
         than ``2 m``. The sample grows when its steps stop carrying over.
+    refine_check : {"next_pass", "at_once"}
+        How a sampled refinement (``refine_sample_rows``) is checked against
+        the full objective. ``"next_pass"`` (default): the pass keeps only the
+        sample's rows of
+        the projections (nothing goes to scratch), the refinement's answer is
+        taken, and the next pass, which computes the full objective anyway,
+        checks it; an answer that raised the objective grows the sample
+        four-fold and makes the rest of this lam check at once. ``"at_once"``:
+        the pass keeps every row's projections (in memory or in scratch files)
+        and the objective at the answer is computed from them right away (one
+        more stream of ``n q k`` work, and shorter steps or the exact
+        refinement when it went up). Measured at 12 M rows, 500 classes, 1 GB:
+        the at-once check took 14-24 s per refinement, about a pass of dense
+        work, and writing the projections 5-15 s per pass; the sample's
+        predicted decrease carried over at a ratio of 0.987-0.995.
     stall_tol : float, optional
         Also stop (status ``"stalled"``) once an outer iteration after the
         first at this lam lowers the objective by at most this share of it
@@ -156,6 +174,7 @@ class SolverConfig:
     momentum: int = 3
     rotation_size: int | None = None
     refine_sample_rows: int | None = None
+    refine_check: str = "next_pass"
     used_columns: bool = False
     stall_tol: float | None = None
 
@@ -178,6 +197,9 @@ class SolverConfig:
         if self.refine_sample_rows is not None and int(self.refine_sample_rows) < 0:
             raise ConfigError(f"solver: refine_sample_rows = {self.refine_sample_rows!r}; it "
                               "must be >= 0 (0: exact refinement)")
+        if self.refine_check not in REFINE_CHECKS:
+            raise ConfigError(f"solver: refine_check = {self.refine_check!r}; use one of "
+                              f"{', '.join(REFINE_CHECKS)}")
         if int(self.certificate_passes) < 0:
             raise ConfigError("solver: certificate_passes must be >= 0")
         if self.max_seconds is not None and not self.max_seconds > 0:

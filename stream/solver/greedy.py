@@ -65,10 +65,16 @@ from ranktide.passes.projections import MemoryProjections, ScratchProjections
 from ranktide.signals import StopRequested
 from ranktide.solver.certificate import dual_gap, gap_estimate
 from ranktide.solver.config import SolverConfig
+from ranktide.solver.deferred_check import (
+    check_last_refinement,
+    clear_unchecked,
+    hold_unchecked,
+)
 from ranktide.solver.memory_plan import MemoryPlanning
 from ranktide.solver.refine import _blas_one_thread
 from ranktide.solver.refine_common import RefineSettings
-from ranktide.solver.refinement import RefineBar, refine_projections
+from ranktide.solver.refine_sample import draw_sample
+from ranktide.solver.refinement import RefineBar, refine_kept_sample, refine_projections
 from ranktide.solver.state import (
     SolverResult,
     SolverState,
@@ -234,6 +240,8 @@ class GreedySolver(MemoryPlanning):
         st.status = "running"
         st.U_prev = np.zeros((self.d, 0))  # momentum belongs to one lam
         st.U_prev_cols = []
+        clear_unchecked(st)  # the objective it would compare was at the old lam
+        st.check_at_once = False
         if path_index is not None:
             st.path_index = int(path_index)
 
@@ -325,6 +333,10 @@ class GreedySolver(MemoryPlanning):
         plan = self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
                           keep=keep, dense=self.dense, extra=held)
         mode = self._refine_mode(q, plan) if keep else "none"
+        sample = None
+        if keep:  # a sampled refinement keeps its rows only, checked by the next pass
+            plan, sample = self._kept_sample(q, held, plan)
+            mode = "sample" if sample is not None else mode
         if mode == "scratch":  # the projections go to disk: the blocks get their room
             plan = self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
                               keep=False, dense=self.dense, extra=held)
@@ -333,7 +345,8 @@ class GreedySolver(MemoryPlanning):
         req = PassRequest(loss=cfg.loss, U=st.U, s=st.s, V=st.V, b=st.b, Omega=st.Omega,
                           Psi=st.Psi, class_weights=cfg.class_weights, keep_projections=keep,
                           dense_gradient=self.dense, dual_scale=self._dual_scale(),
-                          projections_dir=self._scratch_for_pass() if mode == "scratch" else None)
+                          projections_dir=self._scratch_for_pass() if mode == "scratch" else None,
+                          sample_rows=sample)
         prof = PassProfile()
         rows = cfg.block_rows
         if rows is None and cfg.block_bytes is None:
@@ -350,6 +363,21 @@ class GreedySolver(MemoryPlanning):
         st.passes += 1
         st.step_passes += 1
         return req, res, prof
+
+    def _kept_sample(self, q: int, held: int, plan):
+        """The rows the pass keeps for a refinement checked by the next pass, drawn now
+        from the solver's generator, and the plan that holds them; ``(plan, None)`` when
+        the refinement is checked at once (``refine_check``, an objective that rose at
+        this lam, or no room for a sample)."""
+        cfg, st = self.config, self.state
+        if cfg.refine_check != "next_pass" or st.check_at_once:
+            return plan, None
+        rows, kept_plan = self._sample_plan(q, held)
+        if not rows:
+            return plan, None
+        sample = draw_sample(self.n, rows, self._rng)
+        st.rng_state = self._rng.bit_generator.state
+        return kept_plan, sample
 
     def _sigma1(self, req, res) -> float:
         if res.G is not None:
@@ -418,11 +446,11 @@ class GreedySolver(MemoryPlanning):
         t0 = time.perf_counter()
         # W != 0 from here: the lam_max products are spent, and their room (counted three
         # times in the pass's plan) goes to the refinement's sample
-        spent = 3 * 8 * (st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size)
+        spent = self._krylov_bytes()
         st.set_krylov(None)
         if self._binding:
             release_freed_memory()  # the pass's blocks are gone: give their pages back
-        mode = self._refine_mode(q)
+        mode = "sample" if self._mode == "sample" else self._refine_mode(q)
         out, sample_info = self._run_refinement(req, res, proj, mode, N0, rel_gap, spent)
         secs = time.perf_counter() - t0
         if isinstance(proj, list):
@@ -461,15 +489,16 @@ class GreedySolver(MemoryPlanning):
         (``spent``: bytes the plan held that are free again)."""
         cfg, st = self.config, self.state
         q = N0.shape[0]
+        blocks: Any = None
         if mode == "scratch":
-            blocks: Any = ScratchProjections.from_files([p.path for p in proj], self.k)
-        else:
+            blocks = ScratchProjections.from_files([p.path for p in proj], self.k)
+        elif mode != "sample":
             blocks = MemoryProjections([(p.XQ, p.targets, p.weights) for p in proj])
         # what the budget leaves beside the floor, the model and the cached projections
         # (the pass's blocks and accumulators are gone)
         room = self.plan.work_bytes - self.plan.breakdown.get("model", 0) \
             - self.plan.breakdown.get("projections", 0) + spent
-        rows = self._sample_rows(q, room)
+        rows = self._sample_rows(q, room) if mode != "sample" else 0
         bar = RefineBar(self.progress, st.passes)
         hook = self.refine_progress
 
@@ -482,6 +511,18 @@ class GreedySolver(MemoryPlanning):
             loss=cfg.loss, lam=st.lam, tol=self._inner_tol(rel_gap), max_iter=cfg.inner_max_iter,
             stall=_INNER_STALL, class_weights=cfg.class_weights, should_stop=self._should_stop,
             progress=progress)
+        if mode == "sample":  # the pass kept the sample's rows; the next pass checks
+            try:
+                out, predicted = refine_kept_sample(
+                    [(p.XQ, p.targets, p.weights) for p in proj], N0, req.b, settings,
+                    objective=float(st.objective),
+                    full_grad_N=np.hstack([res.Gt_U, res.Gt_Psi]).T, full_grad_b=res.grad_b)
+            finally:
+                bar.close()
+            m = sum(int(p.XQ.shape[0]) for p in proj)
+            hold_unchecked(st, float(st.objective), predicted, m)
+            return out, {"refine_sample_rows": m, "refine_checked": False,
+                         "refine_predicted": predicted}
         try:
             out, info = refine_projections(
                 blocks, mode, N0, req.b, settings, rows=rows, n=self.n, rng=self._rng,
@@ -564,6 +605,8 @@ class GreedySolver(MemoryPlanning):
                 self._finish_record(rec, res, prof, t0, refine_info=None)
                 return rec
         F = res.loss + st.lam * float(np.sum(req.s))
+        checked, stalled = check_last_refinement(st, F, cfg.stall_tol)
+        rec.update(checked)
         gap_fw = gap_estimate(inner=res.inner, nuclear=float(np.sum(req.s)), objective=F,
                               lam=st.lam, sigma1=sigma1)
         gap_du = dual_gap(objective=F, conjugate=res.conjugate, scale=req.dual_scale,
@@ -590,15 +633,19 @@ class GreedySolver(MemoryPlanning):
         else:
             st.phase = "fit"
             st.cert_passes = 0
-            if req.keep_projections:
+            if stalled:  # the refinement the pass checked gained at most stall_tol
+                st.phase = "done"
+                st.status = "stalled"
+            elif req.keep_projections:
                 info = self._refine(req, res, st.last_rel_gap)
                 # the refinement only lowers F: the pass's gap less the decrease bounds
-                # the refined model's (the model this iteration leaves, and writes)
+                # the refined model's (the model this iteration leaves, and writes); for an
+                # answer checked by the next pass, the sample's predicted decrease
                 st.gap = max(0.0, gap - (F - info["objective_after"]))
                 st.rel_gap = st.gap / info["objective_after"] if info["objective_after"] > 0 \
                     else 0.0
                 info.update(gap_after=st.gap, rel_gap_after=st.rel_gap)
-                if self._stalled(F, info["objective_after"]):
+                if info.get("refine_checked", True) and self._stalled(F, info["objective_after"]):
                     st.phase = "done"
                     st.status = "stalled"
             # else: lam_max settled on a pass that kept no projections; the next fits
@@ -799,6 +846,9 @@ class GreedySolver(MemoryPlanning):
             if st.lam_max else "lam_max phase",
         }
         message = messages.get(status, status)
+        if st.unchecked_from is not None and status not in ("converged", "lam_max"):
+            message += ("; the objective and gap include the last refinement's predicted "
+                        "decrease (its sample's), which no pass has checked yet")
         if at_zero and status in ("max_passes", "max_seconds", "callback", "interrupted"):
             message = (f"stopped after {st.passes} passes at W = 0, still settling lam_max: "
                        "nothing fitted yet (the model is the intercept alone)")

@@ -155,6 +155,27 @@ class MemoryPlanning:
             return "scratch"
         return "blocks"
 
+    def _krylov_bytes(self) -> int:
+        """Bytes the plan holds for the lam_max products (three copies of each, see
+        :meth:`_held_bytes`); free again once the first refinement starts."""
+        st = self.state
+        return 3 * 8 * (st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size)
+
+    def _sample_plan(self, q: int, held: int) -> tuple[int, Plan | None]:
+        """Rows of a sample the pass keeps for a refinement checked by the next pass
+        (0: no room), and the pass's plan holding them: no projections beside the
+        sample's, whose rows, and targets (at most ``k`` values a row), count as held."""
+        st = self.state
+        lean = self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
+                          keep=False, dense=self.dense, extra=held)
+        room = lean.work_bytes - lean.breakdown.get("model", 0) + self._krylov_bytes()
+        rows = self._sample_rows(q, room)
+        if not rows:
+            return 0, None
+        kept = 8 * rows * (q + self.k + 2)
+        return rows, self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
+                                keep=False, dense=self.dense, extra=held + kept)
+
     def _sample_rows(self, q: int, room: int) -> int:
         """Rows of the refinement's sample when ``room`` bytes are left to it
         (:func:`ranktide.solver.refinement.sample_rows`)."""

@@ -46,7 +46,7 @@ from ranktide.solver.refine_common import (
 from ranktide.solver.refine_stream import _block_weights
 
 __all__ = ["CorrectedOracle", "SampledRefinement", "refine_sampled", "draw_sample",
-           "gather_rows", "full_objective"]
+           "gather_rows", "stack_rows", "full_objective"]
 
 
 class CorrectedOracle:
@@ -183,7 +183,25 @@ def gather_rows(blocks: Iterable, rows: np.ndarray) -> tuple[np.ndarray, Any, An
             tparts.append(targets[local])
             wparts.append(None if w is None else np.asarray(w)[local])
         start = stop
-    if not parts:
+    return stack_rows(parts, tparts, wparts)
+
+
+def stack_rows(parts: list, tparts: list, wparts: list) -> tuple[np.ndarray, Any, Any]:
+    """One ``(XQ, targets, weights)`` of the sample from its pieces in row order.
+
+    Parameters
+    ----------
+    parts : list of (m_j, q) arrays
+    tparts : list of targets of the same rows (class ids, value rows or CSR tag rows)
+    wparts : list of (m_j,) arrays or None (None: weights of one)
+
+    Returns
+    -------
+    XQ : (m, q) array
+    targets : (m,) class ids, (m, k) values, or CSR (m, k) tags
+    weights : (m,) array or None
+    """
+    if not parts or not sum(p.shape[0] for p in parts):
         raise ConfigError("refine: the sample has no rows; the projection blocks are empty")
     if sp.issparse(tparts[0]):
         T: Any = sp.vstack(tparts, format="csr")

@@ -24,12 +24,18 @@ from ranktide.losses import Loss, get_loss
 from ranktide.solver.apg import ApgProgress, svt
 from ranktide.solver.refine import refine
 from ranktide.solver.refine_common import RefineResult, RefineSettings
-from ranktide.solver.refine_sample import draw_sample, full_objective, gather_rows, refine_sampled
+from ranktide.solver.refine_sample import (
+    draw_sample,
+    full_objective,
+    gather_rows,
+    refine_sampled,
+    stack_rows,
+)
 from ranktide.solver.refine_stream import refine_streamed
 from tqdm import tqdm
 
 __all__ = ["DEFAULT_SAMPLE_ROWS", "MIN_SAMPLE_ROWS", "sample_rows", "refine_projections",
-           "backtrack", "RefineBar"]
+           "refine_kept_sample", "backtrack", "RefineBar"]
 
 #: Most rows of the automatic sample. Each inner step then costs ``m q k`` whatever ``n`` is;
 #: see tools/bench_refine.py for the measured trade-off.
@@ -218,6 +224,36 @@ def refine_projections(
     info["refine_fallback"] = True
     exact = _exact(blocks, mode, N0, b0, cfg)
     return replace(exact, iterations=exact.iterations + res.iterations), info
+
+
+def refine_kept_sample(parts: list, N0: np.ndarray, b0: np.ndarray, cfg: RefineSettings, *,
+                       objective: float, full_grad_N: np.ndarray,
+                       full_grad_b: np.ndarray) -> tuple[RefineResult, float]:
+    """The sampled refinement on the rows a pass kept, its answer not checked here.
+
+    For ``SolverConfig.refine_check = "next_pass"`` (:mod:`ranktide.solver.deferred_check`):
+    the next pass measures the full objective at the answer.
+
+    Parameters
+    ----------
+    parts : list of (XQ_j, targets_j, weights_j)
+        The sample's rows, in row order (the pass's kept projections).
+    N0, b0, cfg, objective, full_grad_N, full_grad_b
+        As in :func:`refine_projections`.
+
+    Returns
+    -------
+    result : RefineResult
+        The answer; ``objective`` and ``loss`` are the predicted full ones
+        (``objective`` less the surrogate's decrease).
+    predicted : float
+        The decrease the surrogate predicts (>= 0).
+    """
+    XQ, T, W = stack_rows([p[0] for p in parts], [p[1] for p in parts], [p[2] for p in parts])
+    out = refine_sampled(XQ, T, W, N0, b0, full_grad_N, full_grad_b, cfg)
+    F = float(objective) - out.predicted
+    nuc = float(out.result.s.sum())
+    return replace(out.result, objective=F, loss=F - cfg.lam * nuc), out.predicted
 
 
 class RefineBar:

@@ -31,7 +31,8 @@ _OPTIONAL = {1: ("U_prev", "K_R", "K_GR", "K_L", "K_GtL"), 2: ("K_R", "K_GR", "K
 _SCALARS = ("lam", "lam_max", "phase", "passes", "step_passes", "outer_iterations",
             "seconds", "sigma1", "sigma1_prev", "path_index", "intercept_ready",
             "lam_max_settle", "lam_max_settled", "U_prev_cols", "cert_passes", "last_rel_gap",
-            "objective", "status", "refine_sample_rows", "memory_floor", "gap", "rel_gap")
+            "objective", "status", "refine_sample_rows", "memory_floor", "gap", "rel_gap",
+            "unchecked_from", "unchecked_predicted", "unchecked_rows", "check_at_once")
 
 
 @dataclass
@@ -98,6 +99,18 @@ class SolverState:
         ``"running"`` or the final status.
     refine_sample_rows : int
         The size the refinement's sample has grown to (0: not grown).
+    unchecked_from : float or None
+        The full objective before the last refinement when that refinement's
+        answer is not checked yet (``SolverConfig.refine_check = "next_pass"``):
+        the next pass checks it; None when the current objective is known.
+        ``objective``, ``gap`` and ``rel_gap`` are then the sample's predictions.
+    unchecked_predicted : float or None
+        The decrease that refinement's sample predicted.
+    unchecked_rows : int
+        Rows of that refinement's sample.
+    check_at_once : bool
+        An unchecked refinement raised the objective at this lam: the rest of
+        it checks each refinement at once.
     """
 
     U: np.ndarray
@@ -134,6 +147,10 @@ class SolverState:
     memory_floor: int | None = None
     gap: float | None = None
     rel_gap: float | None = None
+    unchecked_from: float | None = None
+    unchecked_predicted: float | None = None
+    unchecked_rows: int = 0
+    check_at_once: bool = False
 
     def __post_init__(self) -> None:
         d, k = self.U.shape[0], self.V.shape[0]

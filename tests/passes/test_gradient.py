@@ -432,3 +432,32 @@ def test_pass_over_store_equals_in_memory(tmp_path, store_backend, loss):
             np.testing.assert_allclose(res.G_VO, G @ np.hstack([V, Om]), rtol=1e-10,
                                        atol=1e-13)
             np.testing.assert_allclose(res.Gt_Psi, G.T @ Psi, rtol=1e-10, atol=1e-13)
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+def test_a_kept_row_sample_is_those_rows_of_the_full_projections(loss):
+    """``sample_rows`` keeps exactly the named rows of ``X [U, Psi]`` (reference: the
+    same rows of scipy's product X @ [U, Psi]), their targets and weights, and
+    leaves every other figure of the pass as it was."""
+    X, y, w = _problem(loss, n=400, d=50, k=7, seed=5)
+    U, s, V, b, Om, Psi = _model(50, 7, r=3)
+    src = MemorySource(X, y, weights=w, n_outputs=7)
+    rows = np.array([0, 3, 63, 64, 65, 200, 399])
+    full = gradient_pass(src, PassRequest(loss, U, s, V, b, Omega=Om, Psi=Psi),
+                         block_rows=64)
+    kept = gradient_pass(src, PassRequest(loss, U, s, V, b, Omega=Om, Psi=Psi,
+                                          keep_projections=True, sample_rows=rows),
+                         block_rows=64)
+    got = np.concatenate([p.XQ for p in kept.projections])
+    np.testing.assert_allclose(got, (X @ np.hstack([U, Psi]))[rows], rtol=1e-12, atol=1e-12)
+    assert np.array_equal(np.concatenate([p.rows for p in kept.projections]), rows)
+    T = [p.targets for p in kept.projections]
+    T = sp.vstack(T).toarray() if sp.issparse(T[0]) else np.concatenate(T)
+    want = y[rows].toarray() if sp.issparse(y) else np.asarray(y)[rows]
+    assert np.array_equal(T, want)
+    np.testing.assert_array_equal(np.concatenate([p.weights for p in kept.projections]),
+                                  np.asarray(w)[rows])
+    for name in ("grad_b", "G_VO", "Gt_Psi", "Gt_U"):
+        assert np.array_equal(getattr(kept, name), getattr(full, name)), name
+    with pytest.raises(ConfigError, match="sorted distinct"):
+        PassRequest(loss, U, s, V, b, keep_projections=True, sample_rows=np.array([3, 3]))

@@ -31,11 +31,12 @@ def _problem(loss: str, *, n=300, d=20, k=4, seed=0):
     return X, sp.csr_matrix((rng.random((n, k)) < expit(Z - 0.5)).astype(np.float32))
 
 
+@pytest.mark.parametrize("check", ["at_once", "next_pass"])
 @pytest.mark.parametrize("loss", ["softmax", "squared", "multilabel"])
-def test_sampled_refinement_reaches_the_conic_optimum(loss):
+def test_sampled_refinement_reaches_the_conic_optimum(loss, check):
     X, y = _problem(loss, n=300, d=20, k=4, seed=8)
     cfg = SolverConfig(loss=loss, lam_scale=0.15, tol=1e-7, seed=1, dense_gradient=False,
-                       refine_sample_rows=60, max_passes=200)
+                       refine_sample_rows=60, max_passes=200, refine_check=check)
     res = GreedySolver((X, y), cfg).run()
     assert res.status == "converged"
     sampled = [h for h in res.history if h.get("refine_sample_rows")]
@@ -43,12 +44,21 @@ def test_sampled_refinement_reaches_the_conic_optimum(loss):
     # Reference: CVXPY + Clarabel optimum of the same problem (tests/conic.py).
     con = solve_conic(X, y, loss=loss, lam=res.lam, n_outputs=4)
     assert res.objective == pytest.approx(con.objective, rel=1e-6)
-    # the objective recorded after a sampled refinement is the full one: the next pass's
-    # own objective at that model agrees (same model, same data)
     recs = [h for h in res.history if "objective_pass" in h]
     for a, b in zip(recs[:-1], recs[1:], strict=True):
-        if a.get("refine_sample_rows"):
+        if not a.get("refine_sample_rows"):
+            continue
+        if check == "at_once":
+            # the objective recorded after a sampled refinement is the full one: the next
+            # pass's own objective at that model agrees (same model, same data)
             assert b["objective_pass"] == pytest.approx(a["objective_after"], rel=1e-9)
+        else:
+            # recorded: the sample's prediction; the next pass measures the decrease
+            assert a["refine_checked"] is False
+            assert a["objective_after"] == pytest.approx(
+                a["objective_pass"] - a["refine_predicted"], rel=1e-12)
+            assert b["refine_check_decrease"] == pytest.approx(
+                a["objective_pass"] - b["objective_pass"], rel=1e-9, abs=1e-15)
 
 
 def test_pass_gradient_on_the_subspace_matches_the_projections():
@@ -126,3 +136,24 @@ def test_sample_size_rule():
     kw.update(configured=100, grown=400)
     assert sample_rows(n=1000, loss="squared", **kw) == 400
     assert sample_rows(n=700, loss="squared", **kw) == 0  # half the rows or more: exact
+
+
+def test_an_unchecked_refinement_that_raised_the_objective_makes_the_rest_check_at_once():
+    """A 5-row sample of 300 rows predicts badly: the next pass finds the objective went
+    up, the sample grows four-fold and, from the refinement after the next pass on, each
+    refinement is checked at once (and never raises the objective); the run still
+    reaches the CVXPY + Clarabel optimum (tests/conic.py)."""
+    X, y = _problem("softmax", n=300, d=20, k=4, seed=0)
+    cfg = SolverConfig(loss="softmax", lam_scale=0.15, tol=1e-7, seed=1, dense_gradient=False,
+                       refine_sample_rows=5, max_passes=200)
+    res = GreedySolver((X, y), cfg).run()
+    assert res.status == "converged"
+    recs = {h["pass"]: h for h in res.history}
+    rose = [p for p, h in recs.items() if h.get("refine_check_rose")]
+    assert rose, "no unchecked refinement raised the objective"
+    assert recs[rose[0]]["refine_check_decrease"] < 0
+    later = [h for p, h in recs.items() if p > rose[0] + 1 and "objective_after" in h]
+    assert later and all(h.get("refine_checked", True) for h in later)
+    assert all(h["objective_after"] <= h["objective_pass"] for h in later)
+    con = solve_conic(X, y, loss="softmax", lam=res.lam, n_outputs=4)
+    assert res.objective == pytest.approx(con.objective, rel=1e-6)

@@ -1,0 +1,76 @@
+"""A sampled refinement checked by the next pass (``SolverConfig.refine_check = "next_pass"``).
+
+When the projections of every row do not fit in memory beside the
+refinement's scores, checking a sampled refinement's answer at once needs the
+projections of all ``n`` rows (in memory or in scratch files) and one more
+stream of ``n q k`` work: about the dense work of a pass. The next pass
+computes the full objective at the new model anyway, so the check can wait
+for it: the state keeps the objective before the refinement and the decrease
+the sample predicted, and :func:`check_last_refinement` compares them with
+the pass's objective. An answer that raised the objective grows the sample
+four-fold and makes the rest of this ``lam`` check at once (the exact
+safeguards of :func:`ranktide.solver.refinement.refine_projections`); one
+that kept less than half of its predicted decrease doubles the sample.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+__all__ = ["hold_unchecked", "check_last_refinement", "clear_unchecked"]
+
+
+def hold_unchecked(st: Any, objective_before: float, predicted: float, rows: int) -> None:
+    """Keep in the state what the next pass checks (a :class:`SolverState`)."""
+    st.unchecked_from = float(objective_before)
+    st.unchecked_predicted = float(predicted)
+    st.unchecked_rows = int(rows)
+
+
+def clear_unchecked(st: Any) -> None:
+    """Forget a pending check (a new ``lam`` changes the objective it would compare)."""
+    st.unchecked_from, st.unchecked_predicted, st.unchecked_rows = None, None, 0
+
+
+def check_last_refinement(st: Any, objective: float,
+                          stall_tol: float | None) -> tuple[dict, bool]:
+    """Check the last refinement against this pass's full ``objective``.
+
+    Parameters
+    ----------
+    st : SolverState
+        With ``unchecked_from`` set (nothing is checked when it is None).
+    objective : float
+        The full objective this pass measured at the refined model.
+    stall_tol : float or None
+        ``SolverConfig.stall_tol``.
+
+    Returns
+    -------
+    record : dict
+        ``refine_check_ratio`` (decrease over prediction), ``refine_check_decrease``
+        and ``refine_check_rose`` when the objective went up; empty when
+        nothing was pending.
+    stalled : bool
+        The refinement (not the first at this lam) lowered the objective by
+        at most ``stall_tol`` of it.
+    """
+    if st.unchecked_from is None:
+        return {}, False
+    before, predicted, rows = st.unchecked_from, st.unchecked_predicted or 0.0, st.unchecked_rows
+    clear_unchecked(st)
+    decrease = before - float(objective)
+    ratio = decrease / predicted if predicted > 0 else (1.0 if decrease >= 0 else 0.0)
+    rec: dict = {"refine_check_ratio": float(ratio), "refine_check_decrease": float(decrease)}
+    if decrease < 0:
+        rec["refine_check_rose"] = True
+        st.refine_sample_rows = max(int(st.refine_sample_rows), 4 * rows)
+        st.check_at_once = True
+        return rec, False
+    if ratio < 0.5:
+        st.refine_sample_rows = max(int(st.refine_sample_rows), 2 * rows)
+    # the refinement ran after the previous pass: not the first at this lam when that
+    # pass was the second or later
+    stalled = (stall_tol is not None and st.step_passes >= 3 and before > 0
+               and decrease <= stall_tol * before)
+    return rec, bool(stalled)
