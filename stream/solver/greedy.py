@@ -350,7 +350,9 @@ class GreedySolver(MemoryPlanning):
         prof = PassProfile()
         rows = cfg.block_rows
         if rows is None and cfg.block_bytes is None:
-            rows = plan.block_rows
+            rows = self._pass_block_rows(
+                plan, depth=depth, keep=mode in ("memory", "blocks"),
+                kept=0 if sample is None else self._kept_bytes(len(sample), q))
             if mode == "blocks":
                 rows = min(rows, self._refine_block_rows(plan, q))
         res = self._pass_fn(self.source, req, backend=cfg.backend, block_rows=rows,

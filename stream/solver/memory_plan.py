@@ -172,9 +172,14 @@ class MemoryPlanning:
         rows = self._sample_rows(q, room)
         if not rows:
             return 0, None
-        kept = 8 * rows * (q + self.k + 2)
+        kept = self._kept_bytes(rows, q)
         return rows, self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
                                 keep=False, dense=self.dense, extra=held + kept)
+
+    def _kept_bytes(self, rows: int, q: int) -> int:
+        """Bytes of a kept row sample: its projections, targets (at most ``k`` values a
+        row) and weights."""
+        return 8 * int(rows) * (q + self.k + 2)
 
     def _sample_rows(self, q: int, room: int) -> int:
         """Rows of the refinement's sample when ``room`` bytes are left to it
@@ -194,16 +199,40 @@ class MemoryPlanning:
                                      if name not in ("blocks", "partials"))
         return max(128, int(left // (5 * 8 * (self.k + q))))
 
-    def _held_bytes(self, depth: int) -> int:
-        """Arrays held beside the model during a pass that uses ``depth`` momentum factors."""
+    def _held_bytes(self, depth: int, *, during: bool = False) -> int:
+        """Arrays held beside the model by a pass that uses ``depth`` momentum factors.
+
+        ``during=False``: at the step's peak after the pass (its blocks gone), when the
+        lam_max products count three times (kept, their union with the pass's new
+        products, the Ritz step's rotated copies) and the state as it was before the
+        step (kept for a rollback) sits beside its replacements. ``during=True``: while
+        the pass reads blocks, when the products are held once and the old state's
+        arrays cost only where the step already replaced them (``Psi``, ``Omega``, a
+        narrowed ``U_prev``). Measured at 12 M rows, 2^18 features, 1 GB: planning the
+        blocks for the after-pass peak cut them to a third of their rows on the last
+        pass at ``W = 0`` (35 columns of lam_max products), which then took 35-40 s
+        against 19-22 s for the passes before it.
+        """
         st = self.state
-        # the momentum factors kept; the lam_max products count three times: kept, their
-        # union with the pass's new products, and the Ritz step's rotated copies
-        held = 8 * (self.d * int(sum(st.U_prev_cols[:depth]))
-                    + 3 * (st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size))
-        # the iteration keeps the state as it was (for a rollback) beside the new arrays
-        held += sum(int(getattr(v, "nbytes", 0)) for v in (self._before or {}).values())
+        kry = st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size
+        held = 8 * (self.d * int(sum(st.U_prev_cols[:depth])) + (1 if during else 3) * kry)
+        before = (self._before or {}).values()
+        if during:
+            now = {id(getattr(st, name)) for name in _ARRAYS}
+            before = [v for v in before if id(v) not in now]
+        held += sum(int(getattr(v, "nbytes", 0)) for v in before)
         return held
+
+    def _pass_block_rows(self, plan: Plan, *, depth: int, keep: bool, kept: int = 0) -> int:
+        """Rows per block of this pass: planned for what is held while it reads blocks
+        (:meth:`_held_bytes` with ``during=True``, and ``kept`` bytes of a kept row
+        sample). ``plan`` (for the after-pass peak) has already shown that the rest fits
+        once the blocks are gone, so the larger of the two block sizes holds."""
+        st = self.state
+        during = self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
+                            keep=keep, dense=self.dense,
+                            extra=self._held_bytes(depth, during=True) + kept)
+        return max(int(plan.block_rows), int(during.block_rows))
 
     def _widths(self, p: int, pp: int, keep: bool) -> tuple[int, int, Plan | None]:
         """Rotations and momentum factors this pass can hold in a binding budget
