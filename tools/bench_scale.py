@@ -341,7 +341,7 @@ def main(argv: list[str] | None = None) -> int:
                        "rel_gap_after": h.get("rel_gap_after"),
                        "objective": h.get("objective"), "lam_max_note": h.get("lam_max_note"),
                        "memory_floor": h.get("memory_floor"),
-                       "rss_peak_bytes": h.get("rss_peak")})
+                       "rss_peak_bytes": h.get("rss_peak"), "blocks": h.get("blocks")})
     figures["passes"] = passes
     figures["accuracy"] = []
     Xh_used = used_holdout_columns(store, Xh) if got else None
@@ -375,12 +375,14 @@ def _print(f: dict) -> None:
           f"{(f['cgroup_peak_bytes'] or 0) / mib:.0f} MiB of {f['cap_bytes'] / mib:.0f}  "
           f"OOM kills {f['oom_kills']}")
     print(f"{'pass':>4} {'phase':>8} {'rank':>4} {'pass s':>8} {'refine s':>8} "
-          f"{'cfloor s':>8} {'x floor':>7} {'rel gap':>9} {'t s':>7} {'RSS hw MiB':>10}")
+          f"{'cfloor s':>8} {'x floor':>7} {'rel gap':>9} {'t s':>7} {'RSS hw MiB':>10} "
+          f"{'q':>3} {'blocks':>6}")
     for p in f["passes"]:
         print(f"{p['pass']:>4} {str(p['phase']):>8} {p['rank']:>4} {p['pass_s']:>8.1f} "
               f"{(p['refine_s'] or 0):>8.1f} {p['compute_floor_s']:>8.1f} "
               f"{p['pass_over_floor']:>7.2f} {(p['rel_gap'] or float('nan')):>9.2e} "
-              f"{(p['elapsed_s'] or 0):>7.0f} {(p['rss_peak_bytes'] or 0) / mib:>10.0f}")
+              f"{(p['elapsed_s'] or 0):>7.0f} {(p['rss_peak_bytes'] or 0) / mib:>10.0f} "
+              f"{p['rank'] + p['psi_cols']:>3} {p.get('blocks') or '-':>6}")
     for a in f["accuracy"]:
         print(f"  t {a['t_s']:7.0f} s  rank {a['rank']:3d}  held-out accuracy "
               f"{a['holdout_accuracy']:.4f}")

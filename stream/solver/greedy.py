@@ -768,6 +768,8 @@ class GreedySolver(MemoryPlanning):
         rec.update(loss=res.loss, grad_b_norm=float(np.abs(res.grad_b).max()),
                    sigma1=st.sigma1, lam_max=st.lam_max, rank=st.rank, seconds=st.seconds,
                    pass_seconds=wall, bytes_read=nbytes,
+                   blocks=int(prof.passes[-1]["n_blocks"]) if prof is not None and prof.passes
+                   else None,
                    mb_per_s=(nbytes / 2**20) / wall if wall > 0 else 0.0,
                    phase_after=st.phase, path_index=st.path_index,
                    dense_gradient=self.dense, rss_peak=peak_resident())
