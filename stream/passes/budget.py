@@ -31,13 +31,21 @@ from typing import Any
 
 from ranktide.errors import ConfigError
 from ranktide.kernels.csc import worth_transposing
+from ranktide.kernels.products import dense_chunk_rows
 
 __all__ = ["parse_memory", "total_memory", "available_memory", "cgroup_limit",
            "process_floor", "peak_resident", "release_freed_memory", "default_budget",
-           "plan_blocks", "Plan", "format_bytes", "MAX_BLOCK_CSR_BYTES", "FLOOR_QUANTUM"]
+           "plan_blocks", "Plan", "format_bytes", "MAX_BLOCK_CSR_BYTES", "MAX_BLOCK_DENSE_BYTES",
+           "FLOOR_QUANTUM"]
 
 #: decoded CSR bytes above which bigger blocks stop paying (common practice, no source)
 MAX_BLOCK_CSR_BYTES = 64 * 2**20
+#: bytes of a block's ``X [U, Psi]`` and ``R [V, Omega]`` above which bigger blocks stop
+#: paying: the sparse kernels update their rows in random order, and past the shared cache
+#: every update misses it. Measured (12 M rows, 2^18 features, rank 8, 30 + 14 columns, one
+#: pass, 2 cores with 32 MiB of L3): 10,500-row blocks 28.8 s, 39,000-100,000 rows
+#: 21.8-22.8 s, 160,000 rows 24.1 s
+MAX_BLOCK_DENSE_BYTES = 32 * 2**20
 #: the measured floor is rounded up to a multiple of this, so small differences in the
 #: resident set between two runs do not change the plan (common practice, no source)
 FLOOR_QUANTUM = 8 * 2**20
@@ -302,6 +310,21 @@ def _in_flight(backend: str, n_threads: int) -> int:
     return 2 if backend == "serial" else n_threads + 1
 
 
+# n_c x k arrays of one dense row chunk per thread (kernels.products.block_dense): the
+# scores turned residual, in the thread's reused buffer (kernels.rowchunks.chunk_buffer)
+_CHUNK_ARRAYS = 1
+
+
+def _target_row_bytes(store: Any, k: int) -> int:
+    """Bytes of one row's targets and weight as a block holds them: class ids, ``k``
+    float32 values, or tags (CSR; counted as ``k`` int32 ids and values, since the store
+    does not say how many a row has)."""
+    kind = getattr(store, "target_kind", None)
+    if kind == "classes":
+        return 8 + 4
+    return 8 * max(k, 1) + 4
+
+
 def plan_blocks(
     store: Any,
     *,
@@ -395,18 +418,37 @@ def plan_blocks(
 
     nnz_row = nnz / n if n else 0.0
     csr_row = nnz_row * (4 + idx) + 8
-    # decoded CSR, the read buffers (about as large again), dense temporaries
-    per_row = 2 * csr_row + f8 * (q + 2 * k + r + p) + (f8 * k if use_dense else 0)
+    # per row of a block in flight: the decoded CSR rows and targets, the read buffers
+    # (about as large again), X [U, Psi] and R [V, Omega]; the scores and the residual
+    # live in cache-sized row chunks (kernels.products.block_dense), fixed below, except
+    # with the dense gradient, which keeps the block's residual whole. Measured at 12 M
+    # rows, 1 GB: counting two n_b x k arrays per row too (the residual before it was
+    # chunked) held the pass to 10,500-row blocks and 765 MiB of a 954 MiB budget.
+    per_row = (2 * (csr_row + _target_row_bytes(store, k)) + f8 * (q + r + p)
+               + (f8 * k if use_dense else 0))
+    # the row chunks: every thread's n_c x k arrays, n_c at most a block's rows
+    chunk_rows = dense_chunk_rows(k)
+    chunk_row = threads * _CHUNK_ARRAYS * f8 * k
     # the projections fit when they leave room for blocks of 128 rows (smaller blocks
     # cost more per row in overhead than the scratch files would; common practice, no source)
     min_rows = min(n, 128) if n else 1
-    proj_fit = (fixed + proj_bytes + inflight * per_row * min_rows) <= B
+    proj_fit = (fixed + proj_bytes + inflight * per_row * min_rows
+                + chunk_row * min(min_rows, chunk_rows)) <= B
     cache = keep_projections and proj_fit
     room = B - fixed - (proj_bytes if cache else 0)
 
+    # and a block's X [U, Psi] and R [V, Omega] stay within MAX_BLOCK_DENSE_BYTES
+    dense_cap = int(MAX_BLOCK_DENSE_BYTES // (f8 * (q + r + p))) if q + r + p else n
+
     def _rows(per_row: float, room: float) -> int:
-        rows = int(room // (inflight * per_row)) if per_row > 0 else n
-        rows = min(rows, int(max_block_bytes // csr_row) if csr_row > 0 else n, max(n, 1))
+        if per_row <= 0:
+            rows = n
+        else:
+            rows = int((room - chunk_row * chunk_rows) // (inflight * per_row))
+            if rows < chunk_rows:  # the chunks are as small as the blocks
+                rows = int(room // (inflight * per_row + chunk_row))
+        rows = min(rows, int(max_block_bytes // csr_row) if csr_row > 0 else n, dense_cap,
+                   max(n, 1))
         return max(rows, 1)
 
 
@@ -422,8 +464,9 @@ def plan_blocks(
         else:
             transposed = 0
     blocks = inflight * int(math.ceil(rows * per_row)) + transposed
+    chunks = chunk_row * min(rows, chunk_rows)
     breakdown = {"model": model, "accumulators": accum, "blocks": blocks,
-                 "partials": inflight * partial,
+                 "partials": inflight * partial, "chunks": chunks,
                  "dense_gradient": dense_total, "projections": proj_bytes if cache else 0}
     return Plan(
         budget=B_total, floor=floor, block_rows=rows, block_csr_bytes=int(rows * csr_row),

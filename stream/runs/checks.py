@@ -68,7 +68,8 @@ def fixed_memory(src: Any, *, power_size: int, expand_size: int, backend: str = 
     plan = plan_blocks(src, budget=_UNBOUNDED, rank=int(rank), omega_cols=int(power_size),
                        psi_cols=int(expand_size), keep_projections=False,
                        dense_gradient=bool(dense_gradient), backend=backend)
-    parts = {k: v for k, v in plan.breakdown.items() if k not in ("blocks", "projections")}
+    parts = {k: v for k, v in plan.breakdown.items()
+             if k not in ("blocks", "chunks", "projections")}  # these shrink with the blocks
     return int(sum(parts.values())), parts
 
 
