@@ -170,6 +170,8 @@ class GreedySolver(MemoryPlanning):
         self._binding = pass_fn is None and (config.memory is not None
                                              or cgroup_limit() is not None)
         self._mode = "none"
+        self._rss_pass = 0  # the resident high-water mark right after the last pass
+        self._block_rows: int | None = None  # rows per block of the last pass
         self.state = state if state is not None else self.initial_state()
         self._check_state(self.state)
         self._rng = generator_from(self.state.rng_state)
@@ -355,9 +357,11 @@ class GreedySolver(MemoryPlanning):
                 kept=0 if sample is None else self._kept_bytes(len(sample), q))
             if mode == "blocks":
                 rows = min(rows, self._refine_block_rows(plan, q))
+        self._block_rows = rows
         res = self._pass_fn(self.source, req, backend=cfg.backend, block_rows=rows,
                             block_bytes=cfg.block_bytes, profile=prof, progress=self.progress,
                             should_stop=self._should_stop)
+        self._rss_pass = peak_resident()  # the high-water mark before the after-pass work
         if self._binding:
             # the pass's blocks are gone: hand their pages back before the d-row work
             # that follows (Ritz steps, next blocks, the refinement's set-up) allocates
@@ -772,7 +776,8 @@ class GreedySolver(MemoryPlanning):
                    else None,
                    mb_per_s=(nbytes / 2**20) / wall if wall > 0 else 0.0,
                    phase_after=st.phase, path_index=st.path_index,
-                   dense_gradient=self.dense, rss_peak=peak_resident())
+                   dense_gradient=self.dense, rss_peak=peak_resident(),
+                   rss_after_pass=self._rss_pass, block_rows=self._block_rows)
         rec.setdefault("atoms_added", 0)
         self._history.append(rec)
 
