@@ -334,6 +334,26 @@ def test_plan_blocks_respects_budget():
         plan_blocks(src, budget=10_000, rank=8)
 
 
+def test_plan_blocks_caps_dense_block_bytes_and_counts_targets_by_kind():
+    """The planner's own rules (no outside reference; the cap is a measured trade-off,
+    see MAX_BLOCK_DENSE_BYTES): with room to spare, a block's X [U, Psi] and
+    R [V, Omega] stay within the cap; within a tight budget, rows of k float32 target
+    values leave smaller blocks than rows of one class id; every plan fits its budget."""
+    from ranktide.passes.budget import MAX_BLOCK_DENSE_BYTES
+
+    roomy = plan_blocks(_Shape(2_000_000, 3000, 50, 2_000_000 * 40), budget=8 * 2**30,
+                        rank=8, omega_cols=6, psi_cols=22)
+    width = (8 + 22) + (8 + 6)  # X [U, Psi] and R [V, Omega]
+    assert roomy.block_rows == MAX_BLOCK_DENSE_BYTES // (8 * width)
+    plans = {}
+    for kind in ("classes", "values"):
+        src = _Shape(200_000, 3000, 500, 200_000 * 40)
+        src.target_kind = kind
+        plans[kind] = plan_blocks(src, budget=64 * 2**20, rank=8, omega_cols=6, psi_cols=6)
+        assert plans[kind].peak_bytes <= plans[kind].budget
+    assert plans["values"].block_rows < plans["classes"].block_rows
+
+
 def test_plan_dense_gradient_and_projections_rules():
     X, y, w = _data(n=1000, d=600, k=50)
     src = MemorySource(X, y, weights=w)
