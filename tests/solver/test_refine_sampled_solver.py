@@ -157,3 +157,24 @@ def test_an_unchecked_refinement_that_raised_the_objective_makes_the_rest_check_
     assert all(h["objective_after"] <= h["objective_pass"] for h in later)
     con = solve_conic(X, y, loss="softmax", lam=res.lam, n_outputs=4)
     assert res.objective == pytest.approx(con.objective, rel=1e-6)
+
+
+def test_a_run_stopped_after_an_unchecked_refinement_says_its_objective_is_predicted():
+    """Stopped by max_passes right after a refinement the next pass would have checked:
+    the result keeps the refined model, its objective is the sample's prediction (finite,
+    the recorded one), and the message says so; the same run given one more pass
+    measures that model's objective, and its check records the measured decrease."""
+    X, y = _problem("softmax", n=300, d=20, k=4, seed=8)
+    kw = dict(loss="softmax", lam_scale=0.15, tol=1e-7, seed=1, dense_gradient=False,
+              refine_sample_rows=60)
+    res = GreedySolver((X, y), SolverConfig(max_passes=6, **kw)).run()
+    assert res.status == "max_passes"
+    last = res.history[-1]
+    assert last["refine_checked"] is False
+    assert np.isfinite(res.objective) and res.objective == last["objective_after"]
+    assert "predicted decrease" in res.message
+    more = GreedySolver((X, y), SolverConfig(max_passes=7, **kw)).run()
+    measured = more.history[-1]["objective_pass"]
+    # the check's own figure: the measured decrease over the predicted one
+    assert more.history[-1]["refine_check_decrease"] == pytest.approx(
+        last["objective_pass"] - measured, rel=1e-9)
