@@ -153,6 +153,24 @@ def test_dask_pass_is_the_serial_pass_bit_for_bit(tmp_path, client):
                                           err_msg=name)
 
 
+def test_dask_pass_keeps_the_same_row_sample_as_serial(tmp_path, client):
+    # Reference: the serial backend's kept rows (themselves checked against scipy's
+    # X @ [U, Psi] in tests/passes/test_gradient.py).
+    from dataclasses import replace
+
+    path, req = _problem(tmp_path)
+    rows = np.array([0, 399, 400, 1234, 2999])
+    req = replace(req, sample_rows=rows)
+    serial = gradient_pass(path, req, backend="serial", block_rows=400)
+    dist = gradient_pass(path, req, backend="dask", block_rows=400)
+    for res in (serial, dist):
+        assert np.array_equal(np.concatenate([p.rows for p in res.projections]), rows)
+    np.testing.assert_array_equal(np.concatenate([p.XQ for p in dist.projections]),
+                                  np.concatenate([p.XQ for p in serial.projections]))
+    np.testing.assert_array_equal(np.concatenate([p.targets for p in dist.projections]),
+                                  np.concatenate([p.targets for p in serial.projections]))
+
+
 def test_dask_pass_profile_has_every_block(tmp_path, client):
     path, req = _problem(tmp_path)
     res = gradient_pass(path, req, backend="dask", block_rows=500, profile=True)
