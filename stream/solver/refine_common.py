@@ -58,7 +58,7 @@ class RefineSettings:
     stall : float
         Also stop once the decrease of F over the last ``check_every`` steps is
         at most this fraction of its decrease since the start (the solver
-        passes 0.5, see ``ranktide.solver.greedy._INNER_STALL``). Default 0.0
+        passes 0.5, see ``ranktide.solver.outer_refine._INNER_STALL``). Default 0.0
         (never). A quadratic loss (``Loss.quadratic``) takes exact steps and
         stops by its certificate alone: the test is off for it.
     should_stop : callable, optional
