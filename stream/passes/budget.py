@@ -420,7 +420,7 @@ def plan_blocks(
     csr_row = nnz_row * (4 + idx) + 8
     # per row of a block in flight: the decoded CSR rows and targets, the read buffers
     # (about as large again), X [U, Psi] and R [V, Omega]; the scores and the residual
-    # live in cache-sized row chunks (kernels.products.block_dense), fixed below, except
+    # live in cache-sized row chunks (kernels.products.block_dense), counted below, except
     # with the dense gradient, which keeps the block's residual whole. Measured at 12 M
     # rows, 1 GB: counting two n_b x k arrays per row too (the residual before it was
     # chunked) held the pass to 10,500-row blocks and 765 MiB of a 954 MiB budget.
