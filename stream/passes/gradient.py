@@ -48,7 +48,7 @@ from ranktide.kernels.sparse import csr_t_matmul_accumulate
 from ranktide.losses import check_loss_source, get_loss
 from ranktide.passes.engine import PassProfile, phase, run_pass
 from ranktide.passes.kernel_path import CHOOSER
-from ranktide.passes.projections import write_projection_block
+from ranktide.passes.projections import take_rows, write_projection_block
 from ranktide.store.memory_source import as_source
 
 __all__ = [
@@ -433,13 +433,9 @@ def block_products_kernels(block: Any, st: _State) -> _Partial:
 
 def _sampled_projection(block: Any, XQ: np.ndarray, sample: np.ndarray) -> Projection:
     """The block's rows among ``sample`` (sorted global indices), as copies of their own."""
-    start, stop = int(block.start), int(block.stop)
-    a, e = np.searchsorted(sample, [start, stop])
-    rows = sample[a:e]
-    local = rows - start
-    w = block.weights
-    return Projection(start=start, stop=stop, XQ=XQ[local], targets=block.targets[local],
-                      weights=None if w is None else np.asarray(w)[local], rows=rows.copy())
+    rows, XQ_s, T, W = take_rows(sample, int(block.start), XQ, block.targets, block.weights)
+    return Projection(start=int(block.start), stop=int(block.stop), XQ=XQ_s, targets=T,
+                      weights=W, rows=rows)
 
 
 def _add_term(acc: _Partial, name: str, X: Any, D: np.ndarray) -> None:

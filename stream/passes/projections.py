@@ -17,8 +17,32 @@ import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError, StoreError
 
-__all__ = ["MemoryProjections", "ScratchProjections", "write_projection_block",
+__all__ = ["take_rows", "MemoryProjections", "ScratchProjections", "write_projection_block",
            "read_projection_block"]
+
+
+def take_rows(sample: np.ndarray, start: int, XQ: np.ndarray, targets: Any,
+              weights: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, Any, Any]:
+    """The rows of one block (its first row is ``start``) among ``sample``.
+
+    Parameters
+    ----------
+    sample : (m,) int64, sorted global row indices
+    start : int
+    XQ : (n_b, q) array
+    targets : the block's class ids, value rows or CSR tag rows
+    weights : (n_b,) array or None
+
+    Returns
+    -------
+    rows : the global indices taken (a copy), and those rows of ``XQ``, ``targets``
+    and ``weights`` (copies)
+    """
+    a, e = np.searchsorted(sample, [start, start + XQ.shape[0]])
+    rows = np.array(sample[a:e])
+    local = rows - start
+    return (rows, XQ[local], targets[local],
+            None if weights is None else np.asarray(weights)[local])
 
 
 class MemoryProjections:

@@ -17,6 +17,8 @@ from __future__ import annotations
 
 from typing import Any
 
+from ranktide.solver.refinement import sample_outcome
+
 __all__ = ["hold_unchecked", "check_last_refinement", "clear_unchecked"]
 
 
@@ -32,8 +34,7 @@ def clear_unchecked(st: Any) -> None:
     st.unchecked_from, st.unchecked_predicted, st.unchecked_rows = None, None, 0
 
 
-def check_last_refinement(st: Any, objective: float,
-                          stall_tol: float | None) -> tuple[dict, bool]:
+def check_last_refinement(st: Any, objective: float) -> dict:
     """Check the last refinement against this pass's full ``objective``.
 
     Parameters
@@ -42,35 +43,26 @@ def check_last_refinement(st: Any, objective: float,
         With ``unchecked_from`` set (nothing is checked when it is None).
     objective : float
         The full objective this pass measured at the refined model.
-    stall_tol : float or None
-        ``SolverConfig.stall_tol``.
 
     Returns
     -------
-    record : dict
-        ``refine_check_ratio`` (decrease over prediction), ``refine_check_decrease``
-        and ``refine_check_rose`` when the objective went up; empty when
-        nothing was pending.
-    stalled : bool
-        The refinement (not the first at this lam) lowered the objective by
-        at most ``stall_tol`` of it.
+    dict
+        ``refine_check_before`` (the objective before the refinement),
+        ``refine_check_ratio`` (decrease over prediction),
+        ``refine_check_decrease``, and ``refine_check_rose`` when the objective
+        went up; empty when nothing was pending. The sample grows by the rule of
+        :func:`ranktide.solver.refinement.sample_outcome`.
     """
     if st.unchecked_from is None:
-        return {}, False
+        return {}
     before, predicted, rows = st.unchecked_from, st.unchecked_predicted or 0.0, st.unchecked_rows
     clear_unchecked(st)
     decrease = before - float(objective)
-    ratio = decrease / predicted if predicted > 0 else (1.0 if decrease >= 0 else 0.0)
-    rec: dict = {"refine_check_ratio": float(ratio), "refine_check_decrease": float(decrease)}
+    ratio, grown = sample_outcome(decrease, predicted, rows)
+    st.refine_sample_rows = max(int(st.refine_sample_rows), grown)
+    rec: dict = {"refine_check_before": float(before), "refine_check_ratio": ratio,
+                 "refine_check_decrease": float(decrease)}
     if decrease < 0:
         rec["refine_check_rose"] = True
-        st.refine_sample_rows = max(int(st.refine_sample_rows), 4 * rows)
         st.check_at_once = True
-        return rec, False
-    if ratio < 0.5:
-        st.refine_sample_rows = max(int(st.refine_sample_rows), 2 * rows)
-    # the refinement ran after the previous pass: not the first at this lam when that
-    # pass was the second or later
-    stalled = (stall_tol is not None and st.step_passes >= 3 and before > 0
-               and decrease <= stall_tol * before)
-    return rec, bool(stalled)
+    return rec

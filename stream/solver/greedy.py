@@ -471,8 +471,10 @@ class GreedySolver(OuterRefinement, MemoryPlanning):
                 self._finish_record(rec, res, prof, t0, refine_info=None)
                 return rec
         F = res.loss + st.lam * float(np.sum(req.s))
-        checked, stalled = check_last_refinement(st, F, cfg.stall_tol)
+        checked = check_last_refinement(st, F)
         rec.update(checked)
+        # the refinement the pass checked ran after the previous pass (lag 1)
+        stalled = bool(checked) and self._stalled(checked["refine_check_before"], F, lag=1)
         gap_fw = gap_estimate(inner=res.inner, nuclear=float(np.sum(req.s)), objective=F,
                               lam=st.lam, sigma1=sigma1)
         gap_du = dual_gap(objective=F, conjugate=res.conjugate, scale=req.dual_scale,
@@ -518,12 +520,13 @@ class GreedySolver(OuterRefinement, MemoryPlanning):
         self._finish_record(rec, res, prof, t0, refine_info=info)
         return rec
 
-    def _stalled(self, F: float, F_after: float) -> bool:
-        """This outer iteration lowered ``F`` by at most ``stall_tol`` of it (not on the
-        first pass at this lam, whose decrease reflects the lam change)."""
+    def _stalled(self, F: float, F_after: float, *, lag: int = 0) -> bool:
+        """A refinement lowered ``F`` by at most ``stall_tol`` of it, and not by going up
+        (not the refinement after the first pass at this lam, whose decrease reflects the
+        lam change; ``lag``: the refinement ran that many passes ago)."""
         tol = self.config.stall_tol
-        return (tol is not None and self.state.step_passes >= 2 and F > 0
-                and F - F_after <= tol * F)
+        return (tol is not None and self.state.step_passes - lag >= 2 and F > 0
+                and 0.0 <= F - F_after <= tol * F)
 
     def _at_b0(self, req) -> bool:
         """The pass's gradient is ``G(0, b0)``: no atoms and no refinement yet, intercept set

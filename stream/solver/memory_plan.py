@@ -155,11 +155,18 @@ class MemoryPlanning:
             return "scratch"
         return "blocks"
 
-    def _krylov_bytes(self) -> int:
-        """Bytes the plan holds for the lam_max products (three copies of each, see
-        :meth:`_held_bytes`); free again once the first refinement starts."""
+    def _krylov_bytes(self, copies: int = 3) -> int:
+        """Bytes of ``copies`` copies of the lam_max products (the plan of the step's peak
+        holds three, see :meth:`_held_bytes`); free again once the first refinement starts."""
         st = self.state
-        return 3 * 8 * (st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size)
+        return copies * 8 * (st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size)
+
+    def _refine_room(self, plan: Plan, spent: int = 0) -> int:
+        """Bytes the budget leaves the refinement under ``plan`` once the pass's blocks and
+        accumulators are gone: less the model and the projections kept in memory, plus
+        ``spent`` bytes the plan held that are free again."""
+        return (plan.work_bytes - plan.breakdown.get("model", 0)
+                - plan.breakdown.get("projections", 0) + int(spent))
 
     def _sample_plan(self, q: int, held: int) -> tuple[int, Plan | None]:
         """Rows of a sample the pass keeps for a refinement checked by the next pass
@@ -168,8 +175,7 @@ class MemoryPlanning:
         st = self.state
         lean = self._plan(rank=st.rank, omega=st.Omega.shape[1], psi=st.Psi.shape[1],
                           keep=False, dense=self.dense, extra=held)
-        room = lean.work_bytes - lean.breakdown.get("model", 0) + self._krylov_bytes()
-        rows = self._sample_rows(q, room)
+        rows = self._sample_rows(q, self._refine_room(lean, self._krylov_bytes()))
         if not rows:
             return 0, None
         kept = self._kept_bytes(rows, q)
@@ -214,8 +220,8 @@ class MemoryPlanning:
         against 19-22 s for the passes before it.
         """
         st = self.state
-        kry = st.K_R.size + st.K_GR.size + st.K_L.size + st.K_GtL.size
-        held = 8 * (self.d * int(sum(st.U_prev_cols[:depth])) + (1 if during else 3) * kry)
+        held = (8 * self.d * int(sum(st.U_prev_cols[:depth]))
+                + self._krylov_bytes(1 if during else 3))
         before = (self._before or {}).values()
         if during:
             now = {id(getattr(st, name)) for name in _ARRAYS}

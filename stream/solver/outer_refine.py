@@ -118,11 +118,8 @@ class OuterRefinement:
             blocks = ScratchProjections.from_files([p.path for p in proj], self.k)
         elif mode != "sample":
             blocks = MemoryProjections([(p.XQ, p.targets, p.weights) for p in proj])
-        # what the budget leaves beside the floor, the model and the cached projections
-        # (the pass's blocks and accumulators are gone)
-        room = self.plan.work_bytes - self.plan.breakdown.get("model", 0) \
-            - self.plan.breakdown.get("projections", 0) + spent
-        rows = self._sample_rows(q, room) if mode != "sample" else 0
+        rows = self._sample_rows(q, self._refine_room(self.plan, spent)) if mode != "sample" \
+            else 0
         bar = RefineBar(self.progress, st.passes)
         hook = self.refine_progress
 

@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 from ranktide.errors import ConfigError
+from ranktide.passes.projections import take_rows
 from ranktide.solver.apg import Curvature
 from ranktide.solver.refine import make_oracle, rows_for_loss
 from ranktide.solver.refine_common import (
@@ -175,14 +176,12 @@ def gather_rows(blocks: Iterable, rows: np.ndarray) -> tuple[np.ndarray, Any, An
     parts, tparts, wparts = [], [], []
     start = 0
     for XQ, targets, w in blocks:
-        stop = start + XQ.shape[0]
-        a, b = np.searchsorted(rows, [start, stop])
-        local = rows[a:b] - start
-        if local.size:
-            parts.append(XQ[local])
-            tparts.append(targets[local])
-            wparts.append(None if w is None else np.asarray(w)[local])
-        start = stop
+        taken, XQ_s, T, W = take_rows(rows, start, XQ, targets, w)
+        if taken.size:
+            parts.append(XQ_s)
+            tparts.append(T)
+            wparts.append(W)
+        start += XQ.shape[0]
     return stack_rows(parts, tparts, wparts)
 
 

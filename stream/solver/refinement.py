@@ -34,7 +34,8 @@ from ranktide.solver.refine_sample import (
 from ranktide.solver.refine_stream import refine_streamed
 from tqdm import tqdm
 
-__all__ = ["DEFAULT_SAMPLE_ROWS", "MIN_SAMPLE_ROWS", "sample_rows", "refine_projections",
+__all__ = ["DEFAULT_SAMPLE_ROWS", "MIN_SAMPLE_ROWS", "sample_rows", "sample_outcome",
+           "refine_projections",
            "refine_kept_sample", "backtrack", "RefineBar"]
 
 #: Most rows of the automatic sample. Each inner step then costs ``m q k`` whatever ``n`` is;
@@ -102,6 +103,32 @@ def sample_rows(*, n: int, q: int, k: int, loss: str | Loss, budget: int,
     else:
         m = max(int(configured), int(grown))
     return 0 if 2 * m > n else m
+
+
+def sample_outcome(decrease: float, predicted: float, rows: int) -> tuple[float, int]:
+    """How a sampled refinement's predicted decrease carried over, and the sample's next size.
+
+    Parameters
+    ----------
+    decrease : float
+        The full objective's decrease at the answer (negative: it went up).
+    predicted : float
+        The surrogate's predicted decrease (>= 0).
+    rows : int
+        The sample's rows.
+
+    Returns
+    -------
+    ratio : float
+        ``decrease / predicted`` (1 or 0 when nothing was predicted).
+    next_rows : int
+        Four times ``rows`` when the objective went up, twice when less than
+        half of the prediction carried over, else ``rows``.
+    """
+    ratio = decrease / predicted if predicted > 0 else (1.0 if decrease >= 0 else 0.0)
+    if decrease < 0:
+        return float(ratio), 4 * int(rows)
+    return float(ratio), (2 if ratio < 0.5 else 1) * int(rows)
 
 
 #: Step lengths tried along a sampled answer that raised the full objective. Each try is one
@@ -209,14 +236,11 @@ def refine_projections(
     nuc = float(res.s.sum())
     F = full_objective(blocks, res.N, res.b, nuc, cfg)
     decrease = objective - F
-    ratio = decrease / out.predicted if out.predicted > 0 else (1.0 if decrease >= 0 else 0.0)
-    info = {"refine_sample_rows": rows, "refine_sample_ratio": float(ratio),
-            "refine_fallback": False, "refine_sample_next": rows}
+    ratio, grown = sample_outcome(decrease, out.predicted, rows)
+    info = {"refine_sample_rows": rows, "refine_sample_ratio": ratio,
+            "refine_fallback": False, "refine_sample_next": grown}
     if decrease >= 0:
-        if ratio < 0.5:
-            info["refine_sample_next"] = 2 * rows
         return replace(res, objective=F, loss=F - cfg.lam * nuc), info
-    info["refine_sample_next"] = 4 * rows
     shorter = backtrack(blocks, N0, b0, res, objective, cfg)
     if shorter is not None:
         info["refine_backtrack"] = shorter[1]

@@ -178,3 +178,16 @@ def test_a_run_stopped_after_an_unchecked_refinement_says_its_objective_is_predi
     # the check's own figure: the measured decrease over the predicted one
     assert more.history[-1]["refine_check_decrease"] == pytest.approx(
         last["objective_pass"] - measured, rel=1e-9)
+
+
+def test_sample_outcome_rule():
+    # the project's own rule (common practice, no source): the share of the predicted
+    # decrease that carried over; the sample quadruples when the objective went up and
+    # doubles when less than half carried over
+    from ranktide.solver.refinement import sample_outcome
+
+    assert sample_outcome(0.9, 1.0, 100) == (0.9, 100)
+    assert sample_outcome(0.3, 1.0, 100) == (0.3, 200)
+    assert sample_outcome(-0.1, 1.0, 100) == (-0.1, 400)
+    assert sample_outcome(0.0, 0.0, 100) == (1.0, 100)
+    assert sample_outcome(-1e-9, 0.0, 100) == (0.0, 400)
